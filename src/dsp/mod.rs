@@ -1,0 +1,18 @@
+//! Signal processing: pure functions and per-channel state that turn blocks
+//! of samples into spectra, band values and overall levels. Nothing here
+//! touches sockets, files or HTTP.
+//!
+//! - `window`: analysis windows and their figures of merit
+//! - `spectrum`: block → single-sided power spectrum (plan made once)
+//! - `average`: linear, exponential and peak-hold averaging
+//! - `bands`: band RMS / peak from a spectrum, with unit conversion and
+//!   integration
+//! - `stats`: time-domain overall levels
+//! - `worker`: the OS threads that own channels and run the above
+
+pub mod average;
+pub mod bands;
+pub mod spectrum;
+pub mod stats;
+pub mod window;
+pub mod worker;

@@ -1,0 +1,239 @@
+//! DSP workers: dedicated OS threads, each owning a fixed set of channels.
+//!
+//! Per channel the worker drains the ring straight into the block buffer,
+//! frames blocks with the configured overlap, computes a spectrum per block,
+//! averages, evaluates bands and overall levels, and publishes one snapshot
+//! per averaged result. A discontinuity mark drops the partly filled block.
+//!
+//! Steady state allocates nothing: the snapshot is recycled when no reader
+//! still holds the previous one (`Arc::get_mut`), and a new one is allocated
+//! only when a reader does.
+
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::Arc;
+use std::thread::{self, JoinHandle, Thread};
+use std::time::Duration;
+
+use crate::counters::GapReason;
+use crate::dsp::average::Averager;
+use crate::dsp::bands::{BandPlan, BandValue};
+use crate::dsp::spectrum::SpectrumEngine;
+use crate::dsp::stats;
+use crate::ring::{Mark, ReadEvent, RingReader};
+use crate::snapshot::{unix_now_ns, ChannelShared, ChannelSnapshot};
+
+/// Blocks one channel may compute before the worker moves to the next, so a
+/// backlog on one channel does not starve the others.
+const MAX_BLOCKS_PER_TURN: usize = 16;
+
+/// How long an idle worker sleeps when no source wakes it.
+const IDLE_PARK: Duration = Duration::from_millis(20);
+
+/// The processing state of one channel.
+pub struct ChannelDsp {
+    shared: Arc<ChannelShared>,
+    reader: RingReader,
+    engine: SpectrumEngine,
+    averager: Averager,
+    bands: Vec<BandPlan>,
+    frame: Vec<f32>,
+    filled: usize,
+    /// Stream index of `frame[0]`.
+    frame_first_sample: u64,
+    /// Stream index of the next sample read.
+    next_sample: u64,
+    /// Latest time anchor: (stream index, ns since epoch).
+    anchor: (u64, u64),
+    power: Vec<f32>,
+    band_values: Vec<BandValue>,
+    spare: Option<Arc<ChannelSnapshot>>,
+    seq: u64,
+}
+
+impl ChannelDsp {
+    pub fn new(shared: Arc<ChannelShared>, reader: RingReader) -> ChannelDsp {
+        let spec = shared.spec.clone();
+        let engine = SpectrumEngine::new(spec.window, spec.block, spec.nfft, spec.detrend);
+        let nbw = engine.noise_bandwidth_lines();
+        let bands: Vec<BandPlan> = spec
+            .bands
+            .iter()
+            .map(|b| BandPlan::new(&spec, b, nbw))
+            .collect();
+        ChannelDsp {
+            averager: Averager::new(spec.averaging, spec.average_count, spec.bins()),
+            band_values: vec![BandValue::default(); bands.len()],
+            power: vec![0.0; spec.bins()],
+            frame: vec![0.0; spec.block],
+            bands,
+            engine,
+            filled: 0,
+            frame_first_sample: 0,
+            next_sample: 0,
+            anchor: (0, 0),
+            spare: None,
+            seq: 0,
+            reader,
+            shared,
+        }
+    }
+
+    /// Processes what the ring holds (up to a bounded number of blocks).
+    /// Returns true if it did any work.
+    pub fn poll(&mut self) -> bool {
+        let mut worked = false;
+        let mut blocks = 0;
+        while blocks < MAX_BLOCKS_PER_TURN {
+            match self.reader.read(&mut self.frame[self.filled..]) {
+                ReadEvent::Empty => break,
+                ReadEvent::Mark(m) => {
+                    worked = true;
+                    self.on_mark(m);
+                }
+                ReadEvent::Samples(n) => {
+                    worked = true;
+                    if self.filled == 0 {
+                        self.frame_first_sample = self.next_sample;
+                    }
+                    self.filled += n;
+                    self.next_sample += n as u64;
+                    self.shared
+                        .counters
+                        .samples_processed
+                        .fetch_add(n as u64, Ordering::Relaxed);
+                    if self.filled == self.frame.len() {
+                        self.block_ready();
+                        blocks += 1;
+                    }
+                }
+            }
+        }
+        worked
+    }
+
+    fn on_mark(&mut self, m: Mark) {
+        if let Some(reason) = m.gap {
+            // No block may span a gap: start the block over.
+            self.filled = 0;
+            if reason == GapReason::Restart {
+                self.averager.reset();
+            }
+        }
+        self.next_sample = m.first_sample;
+        self.anchor = (m.first_sample, m.timestamp_ns);
+    }
+
+    fn timestamp_of(&self, sample: u64) -> u64 {
+        let (s0, t0) = self.anchor;
+        let dt = (sample as f64 - s0 as f64) * 1e9 / self.shared.spec.sample_rate_hz;
+        (t0 as f64 + dt).max(0.0) as u64
+    }
+
+    fn block_ready(&mut self) {
+        self.engine.compute(&self.frame, &mut self.power);
+        self.shared.counters.blocks.fetch_add(1, Ordering::Relaxed);
+        if self.averager.push(&self.power) {
+            self.publish();
+        }
+        // Slide by one hop; the overlap stays for the next block.
+        let hop = self.shared.spec.hop.min(self.frame.len());
+        self.frame.copy_within(hop.., 0);
+        self.filled = self.frame.len() - hop;
+        self.frame_first_sample += hop as u64;
+    }
+
+    fn publish(&mut self) {
+        let avg = self.averager.result();
+        for (v, plan) in self.band_values.iter_mut().zip(&self.bands) {
+            *v = plan.evaluate(avg);
+        }
+        self.seq += 1;
+        let mut arc = match self.spare.take() {
+            // Recycle the previous snapshot unless a reader still holds it.
+            Some(a) if Arc::strong_count(&a) == 1 && Arc::weak_count(&a) == 0 => a,
+            _ => Arc::new(ChannelSnapshot::default()),
+        };
+        let Some(snap) = Arc::get_mut(&mut arc) else {
+            return; // unreachable: either recycled unique or freshly made
+        };
+        snap.seq = self.seq;
+        snap.published_unix_ns = unix_now_ns();
+        snap.first_sample = self.frame_first_sample;
+        snap.timestamp_ns = self.timestamp_of(self.frame_first_sample);
+        snap.averages = self.averager.result_averages();
+        snap.overall = stats::overall(&self.frame);
+        snap.power.clear();
+        snap.power.extend_from_slice(avg);
+        snap.bands.clear();
+        snap.bands.extend_from_slice(&self.band_values);
+        snap.waveform.clear();
+        snap.waveform.extend_from_slice(&self.frame);
+        self.spare = self.shared.snapshot.swap(Some(arc));
+        self.shared.counters.spectra.fetch_add(1, Ordering::Relaxed);
+    }
+}
+
+/// Running worker threads.
+pub struct Workers {
+    stop: Arc<AtomicBool>,
+    handles: Vec<JoinHandle<()>>,
+}
+
+impl Workers {
+    /// Starts `n` workers and deals the channels out round-robin. Returns the
+    /// workers and, per channel (in the given order), the thread to unpark
+    /// when new samples arrive.
+    pub fn start(n: usize, channels: Vec<ChannelDsp>) -> std::io::Result<(Workers, Vec<Thread>)> {
+        let n = n.max(1).min(channels.len().max(1));
+        let stop = Arc::new(AtomicBool::new(false));
+        let count = channels.len();
+        let mut sets: Vec<Vec<(usize, ChannelDsp)>> = (0..n).map(|_| Vec::new()).collect();
+        for (i, ch) in channels.into_iter().enumerate() {
+            sets[i % n].push((i, ch));
+        }
+        let mut handles = Vec::new();
+        let mut wakers: Vec<Option<Thread>> = vec![None; count];
+        for (w, set) in sets.into_iter().enumerate() {
+            let stop = stop.clone();
+            let ids: Vec<usize> = set.iter().map(|(i, _)| *i).collect();
+            let handle = thread::Builder::new()
+                .name(format!("bandwatch-dsp-{w}"))
+                .spawn(move || {
+                    let mut chans: Vec<ChannelDsp> = set.into_iter().map(|(_, c)| c).collect();
+                    worker_loop(&mut chans, &stop);
+                })?;
+            for i in ids {
+                wakers[i] = Some(handle.thread().clone());
+            }
+            handles.push(handle);
+        }
+        let wakers = wakers
+            .into_iter()
+            .map(|t| t.unwrap_or_else(|| thread::current()))
+            .collect();
+        Ok((Workers { stop, handles }, wakers))
+    }
+
+    /// Asks every worker to stop and waits for them.
+    pub fn stop(self) {
+        self.stop.store(true, Ordering::Relaxed);
+        for h in &self.handles {
+            h.thread().unpark();
+        }
+        for h in self.handles {
+            let _ = h.join();
+        }
+    }
+}
+
+fn worker_loop(chans: &mut [ChannelDsp], stop: &AtomicBool) {
+    while !stop.load(Ordering::Relaxed) {
+        let mut worked = false;
+        for ch in chans.iter_mut() {
+            worked |= ch.poll();
+        }
+        if !worked {
+            thread::park_timeout(IDLE_PARK);
+        }
+    }
+}

@@ -1,0 +1,151 @@
+//! What the DSP workers publish and the HTTP side reads.
+//!
+//! Each channel has one `ChannelShared`: its validated spec, its counters,
+//! and the latest `ChannelSnapshot` behind an `ArcSwapOption`. A worker
+//! replaces the snapshot with one atomic swap; readers take a cheap `load`
+//! and never block the worker. A snapshot is immutable once published.
+
+use std::collections::HashMap;
+use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
+use std::sync::Arc;
+use std::time::{SystemTime, UNIX_EPOCH};
+
+use arc_swap::ArcSwapOption;
+
+use crate::config::{ChannelSpec, Config};
+use crate::counters::ChannelCounters;
+use crate::dsp::bands::BandValue;
+use crate::dsp::stats::Overall;
+use crate::dsp::window::Window;
+
+/// The latest results of one channel.
+#[derive(Debug, Clone, Default)]
+pub struct ChannelSnapshot {
+    /// Counts publications of this channel, from 1.
+    pub seq: u64,
+    /// When the worker published it, ns since the Unix epoch.
+    pub published_unix_ns: u64,
+    /// Stream index of the first sample of the newest block in the average.
+    pub first_sample: u64,
+    /// Time of that sample, ns since the Unix epoch.
+    pub timestamp_ns: u64,
+    /// Blocks in this average.
+    pub averages: u32,
+    /// Averaged single-sided power spectrum, units² per line, amplitude
+    /// corrected (see `dsp::spectrum`); nfft/2 + 1 lines.
+    pub power: Vec<f32>,
+    /// One per band of the spec, same order.
+    pub bands: Vec<BandValue>,
+    /// Time-domain levels of the newest block.
+    pub overall: Overall,
+    /// The newest block, in channel units.
+    pub waveform: Vec<f32>,
+}
+
+/// Everything the rest of the process knows about one channel.
+pub struct ChannelShared {
+    pub spec: Arc<ChannelSpec>,
+    /// Window figures, for converting the power spectrum to other scalings.
+    pub window_enbw_bins: f64,
+    pub window_coherent_gain: f64,
+    pub counters: Arc<ChannelCounters>,
+    pub snapshot: ArcSwapOption<ChannelSnapshot>,
+}
+
+impl ChannelShared {
+    pub fn new(spec: ChannelSpec) -> ChannelShared {
+        let w = Window::new(spec.window, spec.block);
+        ChannelShared {
+            window_enbw_bins: w.enbw_bins(),
+            window_coherent_gain: w.coherent_gain(),
+            spec: Arc::new(spec),
+            counters: Arc::new(ChannelCounters::default()),
+            snapshot: ArcSwapOption::empty(),
+        }
+    }
+
+    /// Noise bandwidth in Hz: ENBW·fs/block. Density = power / this.
+    pub fn noise_bandwidth_hz(&self) -> f64 {
+        self.window_enbw_bins * self.spec.sample_rate_hz / self.spec.block as f64
+    }
+
+    pub fn latest(&self) -> Option<Arc<ChannelSnapshot>> {
+        self.snapshot.load_full()
+    }
+}
+
+/// Live state of one source, written by its task.
+pub struct SourceShared {
+    pub name: String,
+    pub kind: &'static str,
+    pub connected: AtomicBool,
+    pub frames: AtomicU64,
+    pub bytes: AtomicU64,
+    /// Time of the last frame or batch, ns since the Unix epoch (0: never).
+    pub last_frame_unix_ns: AtomicU64,
+}
+
+impl SourceShared {
+    pub fn new(name: &str, kind: &'static str) -> SourceShared {
+        SourceShared {
+            name: name.to_string(),
+            kind,
+            connected: AtomicBool::new(false),
+            frames: AtomicU64::new(0),
+            bytes: AtomicU64::new(0),
+            last_frame_unix_ns: AtomicU64::new(0),
+        }
+    }
+
+    pub fn is_connected(&self) -> bool {
+        self.connected.load(Ordering::Relaxed)
+    }
+}
+
+/// The read side of the whole pipeline, handed to HTTP.
+pub struct AppState {
+    pub channels: Vec<Arc<ChannelShared>>,
+    pub by_name: HashMap<String, usize>,
+    pub sources: Vec<Arc<SourceShared>>,
+    pub started_unix_ns: u64,
+}
+
+impl AppState {
+    pub fn new(config: &Config) -> AppState {
+        let channels: Vec<Arc<ChannelShared>> = config
+            .channels
+            .iter()
+            .map(|c| Arc::new(ChannelShared::new(c.clone())))
+            .collect();
+        let by_name = channels
+            .iter()
+            .enumerate()
+            .map(|(i, c)| (c.spec.name.clone(), i))
+            .collect();
+        let sources = config
+            .sources
+            .iter()
+            .map(|s| Arc::new(SourceShared::new(&s.name, s.kind.as_str())))
+            .collect();
+        AppState {
+            channels,
+            by_name,
+            sources,
+            started_unix_ns: unix_now_ns(),
+        }
+    }
+
+    pub fn channel(&self, name: &str) -> Option<&Arc<ChannelShared>> {
+        self.by_name.get(name).map(|&i| &self.channels[i])
+    }
+
+    pub fn source(&self, name: &str) -> Option<&Arc<SourceShared>> {
+        self.sources.iter().find(|s| s.name == name)
+    }
+}
+
+pub fn unix_now_ns() -> u64 {
+    SystemTime::now()
+        .duration_since(UNIX_EPOCH)
+        .map_or(0, |d| d.as_nanos() as u64)
+}
