@@ -20,10 +20,12 @@
 pub mod config;
 pub mod counters;
 pub mod dsp;
+pub mod frame;
 pub mod http;
 pub mod ring;
 pub mod snapshot;
 pub mod source;
+pub mod tools;
 pub mod units;
 
 use std::future::Future;

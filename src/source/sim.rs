@@ -228,7 +228,8 @@ pub async fn run(
             sim.fill_counts(frame);
             let ts = start_ns + (sent as f64 * 1e9 / fs) as u64;
             out.write_interleaved(sent, ts, frame);
-            note_frame(&state, (frame.len() * 3) as u64);
+            note_frame(&state);
+            state.bytes.fetch_add((frame.len() * 3) as u64, Ordering::Relaxed);
             sent += n as u64;
         }
         out.wake();
