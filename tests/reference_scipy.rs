@@ -59,9 +59,15 @@ const SIGNALS: [&str; 9] = [
 ];
 
 fn fixture(name: &str) -> Value {
-    let path: PathBuf = [env!("CARGO_MANIFEST_DIR"), "tests", "reference", "fixtures", name]
-        .iter()
-        .collect();
+    let path: PathBuf = [
+        env!("CARGO_MANIFEST_DIR"),
+        "tests",
+        "reference",
+        "fixtures",
+        name,
+    ]
+    .iter()
+    .collect();
     let text = std::fs::read_to_string(&path).unwrap_or_else(|e| panic!("{path:?}: {e}"));
     serde_json::from_str(&text).unwrap_or_else(|e| panic!("{path:?}: {e}"))
 }
@@ -155,7 +161,11 @@ fn check_signal(name: &str) -> (Worst, Worst) {
     let doc = fixture(&format!("welch_{name}.json"));
     assert_eq!(doc["fs_hz"].as_f64(), Some(FS), "{name}: sample rate");
     assert_eq!(doc["channel_unit"], "g");
-    assert_eq!(doc["low_cut_hz"].as_f64(), Some(2.0), "bandwatch's default low cut");
+    assert_eq!(
+        doc["low_cut_hz"].as_f64(),
+        Some(2.0),
+        "bandwatch's default low cut"
+    );
     let x = f32_from_hex(doc["samples_f32_hex"].as_str().expect("samples"));
     assert_eq!(x.len() as u64, doc["n_samples"].as_u64().expect("n"));
     let mut worst = (Worst::default(), Worst::default());
@@ -172,9 +182,15 @@ fn check_signal(name: &str) -> (Worst, Worst) {
             other => panic!("detrend {other}"),
         };
         let segments = case["segments"].as_u64().expect("segments") as usize;
-        let what = format!("{name} {window} block {block} overlap {noverlap} nfft {nfft} detrend {detrend}");
+        let what = format!(
+            "{name} {window} block {block} overlap {noverlap} nfft {nfft} detrend {detrend}"
+        );
         // welch's segment count for this record length and step.
-        assert_eq!(segments, (x.len() - noverlap) / (block - noverlap), "{what}: K");
+        assert_eq!(
+            segments,
+            (x.len() - noverlap) / (block - noverlap),
+            "{what}: K"
+        );
         let spec = Chan {
             window,
             block,
@@ -186,7 +202,11 @@ fn check_signal(name: &str) -> (Worst, Worst) {
         }
         .spec();
         assert_eq!(spec.bins(), nfft / 2 + 1);
-        assert_eq!(spec.df_hz(), case["df_hz"].as_f64().expect("df"), "{what}: df");
+        assert_eq!(
+            spec.df_hz(),
+            case["df_hz"].as_f64().expect("df"),
+            "{what}: df"
+        );
         let r = run(&spec, &x);
         assert_eq!(r.averages as usize, segments);
         let enbw = r.engine.window().enbw_bins();
@@ -209,7 +229,13 @@ fn check_signal(name: &str) -> (Worst, Worst) {
         let density = f64s(&case["density"]);
         let lines = case.get("density_bins").map(usizes);
         let peak_d = peak * to_density;
-        let w = compare(&format!("{what} 'density'"), &ours_d, &density, lines.as_deref(), peak_d);
+        let w = compare(
+            &format!("{what} 'density'"),
+            &ours_d,
+            &density,
+            lines.as_deref(),
+            peak_d,
+        );
         worst.0.merge(w);
 
         // Band RMS² against Σ density·df over the band's lines.
@@ -314,7 +340,10 @@ fn welch_dc_and_nyquist_are_single_not_doubled() {
             }
             .spec();
             let ours = run(&spec, &x).averaged[line] as f64;
-            assert!((ours - want).abs() < 1e-4 * want, "{window} line {line}: {ours}");
+            assert!(
+                (ours - want).abs() < 1e-4 * want,
+                "{window} line {line}: {ours}"
+            );
         }
     }
 }
@@ -331,8 +360,16 @@ fn windows_match_scipy_get_window() {
         let cg = want["coherent_gain"].as_f64().expect("cg");
         let enbw = want["enbw_bins"].as_f64().expect("enbw");
         // f32 coefficients: the sums agree far better than one f32 ulp.
-        assert!((w.coherent_gain() / cg - 1.0).abs() < 1e-6, "{k:?} CG {}", w.coherent_gain());
-        assert!((w.enbw_bins() / enbw - 1.0).abs() < 1e-6, "{k:?} ENBW {}", w.enbw_bins());
+        assert!(
+            (w.coherent_gain() / cg - 1.0).abs() < 1e-6,
+            "{k:?} CG {}",
+            w.coherent_gain()
+        );
+        assert!(
+            (w.enbw_bins() / enbw - 1.0).abs() < 1e-6,
+            "{k:?} ENBW {}",
+            w.enbw_bins()
+        );
         for (i, v) in usizes(&want["sample_index"])
             .into_iter()
             .zip(f64s(&want["samples"]))
@@ -358,10 +395,19 @@ fn realfft_matches_numpy_rfft_and_irfft() {
     let mut input = x.clone();
     let mut spec = fwd.make_output_vec();
     fwd.process(&mut input, &mut spec).expect("forward");
-    let scale = re.iter().zip(&im).map(|(a, b)| a.hypot(*b)).fold(0.0, f64::max);
+    let scale = re
+        .iter()
+        .zip(&im)
+        .map(|(a, b)| a.hypot(*b))
+        .fold(0.0, f64::max);
     for (k, c) in spec.iter().enumerate() {
         let err = (c.re as f64 - re[k]).hypot(c.im as f64 - im[k]);
-        assert!(err < 1e-6 * scale, "rfft[{k}] = {c}, numpy {} {}", re[k], im[k]);
+        assert!(
+            err < 1e-6 * scale,
+            "rfft[{k}] = {c}, numpy {} {}",
+            re[k],
+            im[k]
+        );
     }
     // Inverse of numpy's spectrum: realfft does not normalise, numpy's
     // irfft divides by n.
@@ -393,6 +439,10 @@ fn realfft_matches_numpy_rfft_and_irfft() {
         let c = if k == 0 || k == n / 2 { 1.0 } else { 2.0 };
         let want = c * (re[k] * re[k] + im[k] * im[k]) / (n * n) as f64;
         let err = (p[k] as f64 - want).abs();
-        assert!(err <= RTOL * want + FLOOR * pmax * 10.0, "P[{k}] = {}, numpy {want}", p[k]);
+        assert!(
+            err <= RTOL * want + FLOOR * pmax * 10.0,
+            "P[{k}] = {}, numpy {want}",
+            p[k]
+        );
     }
 }

@@ -62,7 +62,11 @@ impl Chan<'_> {
         }
         let config = parse_str(&text).unwrap_or_else(|e| panic!("config {text}: {e:?}"));
         let spec = config.channels.into_iter().next().expect("one channel");
-        assert_eq!(spec.hop, self.block - self.noverlap, "hop of the test channel");
+        assert_eq!(
+            spec.hop,
+            self.block - self.noverlap,
+            "hop of the test channel"
+        );
         spec
     }
 }
