@@ -691,7 +691,7 @@ pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
                 let last = (b.hi_hz / df).floor();
                 if first > last {
                     issues.add(
-                        format!("{bpath}"),
+                        bpath.to_string(),
                         format!(
                             "{}–{} Hz holds no spectral line (lines are {df:.4} Hz apart); widen it or raise nfft",
                             b.lo_hz, b.hi_hz

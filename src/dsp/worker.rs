@@ -209,7 +209,7 @@ impl Workers {
         }
         let wakers = wakers
             .into_iter()
-            .map(|t| t.unwrap_or_else(|| thread::current()))
+            .map(|t| t.unwrap_or_else(thread::current))
             .collect();
         Ok((Workers { stop, handles }, wakers))
     }
