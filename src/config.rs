@@ -29,8 +29,84 @@ pub struct RawConfig {
     pub dsp: RawDsp,
     #[serde(rename = "source", default)]
     pub sources: Vec<RawSource>,
+    #[serde(rename = "machine", default)]
+    pub machines: Vec<RawMachine>,
     #[serde(rename = "channel", default)]
     pub channels: Vec<RawChannel>,
+}
+
+/// A machine train whose running speed order bands follow.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawMachine {
+    pub name: String,
+    pub speed: RawSpeed,
+    #[serde(rename = "bearing", default)]
+    pub bearings: Vec<RawBearing>,
+}
+
+/// Where a machine's running speed comes from.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(tag = "kind", rename_all = "kebab-case", deny_unknown_fields)]
+pub enum RawSpeed {
+    /// A constant speed.
+    Fixed { rpm: f64 },
+    /// Measured from a tachometer channel's pulse train.
+    Tach {
+        channel: String,
+        #[serde(default = "default_ppr")]
+        pulses_per_rev: u32,
+        /// Edge threshold, in the tach channel's unit.
+        threshold: f64,
+        /// Half-width of the Schmitt trigger around the threshold.
+        #[serde(default)]
+        hysteresis: f64,
+        /// Revolutions the speed is averaged over.
+        #[serde(default = "default_average_revs")]
+        average_revs: u32,
+        /// Speed is unknown when no pulse came for this long.
+        #[serde(default = "default_stale")]
+        stale_s: f64,
+    },
+    /// The largest line of a channel's spectrum within a search range.
+    Peak {
+        channel: String,
+        min_hz: f64,
+        max_hz: f64,
+        /// Speed is unknown when no spectrum came for this long.
+        #[serde(default = "default_stale")]
+        stale_s: f64,
+    },
+}
+
+fn default_ppr() -> u32 {
+    1
+}
+fn default_average_revs() -> u32 {
+    8
+}
+fn default_stale() -> f64 {
+    2.0
+}
+
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawBearing {
+    pub name: String,
+    /// Number of rolling elements.
+    pub elements: u32,
+    pub element_diameter_mm: f64,
+    pub pitch_diameter_mm: f64,
+    #[serde(default)]
+    pub contact_angle_deg: f64,
+}
+
+/// Band-pass of a channel's envelope analysis, around a resonance.
+#[derive(Debug, Clone, Copy, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawEnvelope {
+    pub lo_hz: f64,
+    pub hi_hz: f64,
 }
 
 #[derive(Debug, Clone, Deserialize)]
@@ -276,6 +352,11 @@ pub struct RawChannel {
     /// (acceleration -> velocity -> displacement).
     #[serde(default = "default_low_cut")]
     pub integration_low_cut_hz: f64,
+    /// Machine whose speed this channel's order bands follow.
+    pub machine: Option<String>,
+    /// Envelope analysis band-pass; bands with `spectrum = "envelope"` read
+    /// the envelope spectrum.
+    pub envelope: Option<RawEnvelope>,
     #[serde(rename = "band", default)]
     pub bands: Vec<RawBand>,
 }
@@ -360,8 +441,22 @@ impl Measure {
 #[serde(deny_unknown_fields)]
 pub struct RawBand {
     pub name: String,
-    pub lo_hz: f64,
-    pub hi_hz: f64,
+    /// Fixed edges in Hz (give these, or `orders`, or `bearing`).
+    pub lo_hz: Option<f64>,
+    pub hi_hz: Option<f64>,
+    /// Edges in orders of the channel's machine speed.
+    pub orders: Option<[f64; 2]>,
+    /// A bearing of the channel's machine, with `defect`.
+    pub bearing: Option<String>,
+    pub defect: Option<crate::dsp::orders::Defect>,
+    /// Width of a bearing band in orders, centred on the defect frequency.
+    pub width_orders: Option<f64>,
+    /// Bearing bands: also the 2nd … k-th harmonic (energy summed).
+    #[serde(default = "default_harmonics")]
+    pub harmonics: u32,
+    /// "raw" (default) or "envelope" (the channel's envelope spectrum).
+    #[serde(default)]
+    pub spectrum: SpectrumKind,
     #[serde(default = "default_measure")]
     pub measure: Measure,
     /// Unit of the band's value; a velocity or displacement unit on an
@@ -371,6 +466,28 @@ pub struct RawBand {
 
 fn default_measure() -> Measure {
     Measure::Rms
+}
+
+fn default_harmonics() -> u32 {
+    1
+}
+
+/// Which spectrum a band reads.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Default)]
+#[serde(rename_all = "kebab-case")]
+pub enum SpectrumKind {
+    #[default]
+    Raw,
+    Envelope,
+}
+
+impl SpectrumKind {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            SpectrumKind::Raw => "raw",
+            SpectrumKind::Envelope => "envelope",
+        }
+    }
 }
 
 // ---------------------------------------------------------------------------
@@ -383,7 +500,56 @@ pub struct Config {
     pub workers: usize,
     pub ring_seconds: f64,
     pub sources: Vec<SourceSpec>,
+    pub machines: Vec<MachineSpec>,
     pub channels: Vec<ChannelSpec>,
+}
+
+#[derive(Debug, Clone)]
+pub struct MachineSpec {
+    pub name: String,
+    pub speed: SpeedSource,
+    pub bearings: Vec<(String, crate::dsp::orders::BearingGeometry)>,
+}
+
+#[derive(Debug, Clone, PartialEq)]
+pub enum SpeedSource {
+    Fixed {
+        hz: f64,
+    },
+    Tach {
+        channel: String,
+        pulses_per_rev: u32,
+        threshold: f64,
+        hysteresis: f64,
+        average_revs: u32,
+        stale_s: f64,
+    },
+    Peak {
+        channel: String,
+        min_hz: f64,
+        max_hz: f64,
+        stale_s: f64,
+    },
+}
+
+impl SpeedSource {
+    pub fn as_str(&self) -> &'static str {
+        match self {
+            SpeedSource::Fixed { .. } => "fixed",
+            SpeedSource::Tach { .. } => "tach",
+            SpeedSource::Peak { .. } => "peak",
+        }
+    }
+}
+
+/// Where a band's edges come from.
+#[derive(Debug, Clone, PartialEq)]
+pub enum BandEdges {
+    /// Fixed, in Hz.
+    Hz { lo: f64, hi: f64 },
+    /// Windows in orders of running speed, [lo, hi] each (several for
+    /// bearing harmonics); lines of all windows count once.
+    Orders { windows: Vec<(f64, f64)> },
 }
 
 #[derive(Debug, Clone)]
@@ -479,6 +645,8 @@ pub struct ChannelSpec {
     pub averaging: AveragingMode,
     pub average_count: u32,
     pub integration_low_cut_hz: f64,
+    pub machine: Option<String>,
+    pub envelope: Option<(f64, f64)>,
     pub bands: Vec<BandSpec>,
 }
 
@@ -499,10 +667,12 @@ impl ChannelSpec {
 #[derive(Debug, Clone)]
 pub struct BandSpec {
     pub name: String,
-    pub lo_hz: f64,
-    pub hi_hz: f64,
+    pub edges: BandEdges,
     pub measure: Measure,
     pub unit: Unit,
+    pub spectrum: SpectrumKind,
+    /// For bearing bands: (bearing, defect), for the API.
+    pub bearing: Option<(String, crate::dsp::orders::Defect)>,
 }
 
 // ---------------------------------------------------------------------------
@@ -993,6 +1163,38 @@ pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
             );
         }
 
+        let machine = match &c.machine {
+            None => None,
+            Some(m) => {
+                let found = raw.machines.iter().find(|x| &x.name == m);
+                if found.is_none() {
+                    issues.add(format!("{path}.machine"), format!("unknown machine {m:?}"));
+                }
+                found
+            }
+        };
+        let envelope = match c.envelope {
+            None => None,
+            Some(e) => {
+                if !(e.lo_hz.is_finite()
+                    && e.hi_hz.is_finite()
+                    && e.lo_hz > 0.0
+                    && e.lo_hz < e.hi_hz)
+                {
+                    issues.add(
+                        format!("{path}.envelope"),
+                        format!("{}–{} Hz: need 0 < lo_hz < hi_hz", e.lo_hz, e.hi_hz),
+                    );
+                } else if fs.is_finite() && e.hi_hz > nyquist {
+                    issues.add(
+                        format!("{path}.envelope.hi_hz"),
+                        format!("{} Hz is above Nyquist {nyquist} Hz", e.hi_hz),
+                    );
+                }
+                Some((e.lo_hz, e.hi_hz))
+            }
+        };
+
         // Bands.
         let df = fs / nfft as f64;
         let mut bands = Vec::new();
@@ -1008,51 +1210,7 @@ pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
                     "duplicate band name in this channel",
                 );
             }
-            let mut edges_ok = true;
-            if !(b.lo_hz.is_finite() && b.lo_hz >= 0.0) {
-                issues.add(
-                    format!("{bpath}.lo_hz"),
-                    format!("{} must be >= 0 Hz", b.lo_hz),
-                );
-                edges_ok = false;
-            }
-            if !b.hi_hz.is_finite() {
-                issues.add(format!("{bpath}.hi_hz"), "must be finite");
-                edges_ok = false;
-            }
-            if edges_ok && b.lo_hz >= b.hi_hz {
-                issues.add(
-                    format!("{bpath}.lo_hz"),
-                    format!(
-                        "{} Hz is not below hi_hz {} Hz (lo must be < hi)",
-                        b.lo_hz, b.hi_hz
-                    ),
-                );
-                edges_ok = false;
-            }
-            if edges_ok && fs.is_finite() && b.hi_hz > nyquist {
-                issues.add(
-                    format!("{bpath}.hi_hz"),
-                    format!(
-                        "{} Hz is above Nyquist {nyquist} Hz (a tone above Nyquist folds back; filter it out before the converter)",
-                        b.hi_hz
-                    ),
-                );
-                edges_ok = false;
-            }
-            if edges_ok && df.is_finite() {
-                let first = (b.lo_hz / df).ceil();
-                let last = (b.hi_hz / df).floor();
-                if first > last {
-                    issues.add(
-                        bpath.clone(),
-                        format!(
-                            "{}–{} Hz holds no spectral line (lines are {df:.4} Hz apart); widen it or raise nfft",
-                            b.lo_hz, b.hi_hz
-                        ),
-                    );
-                }
-            }
+            let edges = band_edges(&mut issues, &bpath, b, fs, df, machine);
             let band_unit = match &b.unit {
                 None => unit,
                 Some(s) => match Unit::parse(s) {
@@ -1080,13 +1238,33 @@ pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
                     );
                 }
             }
-            if let Some(bu) = band_unit {
+            if b.spectrum == SpectrumKind::Envelope {
+                if c.envelope.is_none() {
+                    issues.add(
+                        format!("{bpath}.spectrum"),
+                        "reads the envelope spectrum, but the channel has no [channel.envelope]",
+                    );
+                }
+                if let (Some(cu), Some(bu)) = (unit, band_unit) {
+                    if cu.quantity != bu.quantity {
+                        issues.add(
+                            format!("{bpath}.unit"),
+                            format!(
+                                "an envelope band is in the channel's quantity ({}), not {bu}",
+                                cu.quantity.as_str()
+                            ),
+                        );
+                    }
+                }
+            }
+            if let (Some(bu), Some(edges)) = (band_unit, edges) {
                 bands.push(BandSpec {
                     name: b.name.clone(),
-                    lo_hz: b.lo_hz,
-                    hi_hz: b.hi_hz,
+                    edges,
                     measure: b.measure,
                     unit: bu,
+                    spectrum: b.spectrum,
+                    bearing: b.bearing.clone().zip(b.defect),
                 });
             }
         }
@@ -1109,10 +1287,14 @@ pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
                 averaging: c.averaging.mode,
                 average_count: c.averaging.count,
                 integration_low_cut_hz: c.integration_low_cut_hz,
+                machine: c.machine.clone(),
+                envelope,
                 bands,
             });
         }
     }
+
+    let machines = validate_machines(&mut issues, raw);
 
     match (issues.0.is_empty(), listen) {
         (true, Some(listen)) => Ok(Config {
@@ -1120,10 +1302,280 @@ pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
             workers,
             ring_seconds: raw.dsp.ring_seconds,
             sources,
+            machines,
             channels,
         }),
         _ => Err(issues.0),
     }
+}
+
+fn validate_machines(issues: &mut Issues, raw: &RawConfig) -> Vec<MachineSpec> {
+    use crate::dsp::orders::BearingGeometry;
+    let mut out = Vec::new();
+    let mut names = HashSet::new();
+    let channel = |name: &str| raw.channels.iter().any(|c| c.name == name);
+    for m in &raw.machines {
+        let path = format!("machine {:?}", m.name);
+        if m.name.is_empty() {
+            issues.add("machine.name", "must not be empty");
+        }
+        if !names.insert(m.name.clone()) {
+            issues.add(format!("{path}.name"), "duplicate machine name");
+        }
+        let speed = match &m.speed {
+            RawSpeed::Fixed { rpm } => {
+                if !(rpm.is_finite() && *rpm > 0.0) {
+                    issues.add(
+                        format!("{path}.speed.rpm"),
+                        format!("{rpm} must be above 0"),
+                    );
+                }
+                SpeedSource::Fixed { hz: rpm / 60.0 }
+            }
+            RawSpeed::Tach {
+                channel: ch,
+                pulses_per_rev,
+                threshold,
+                hysteresis,
+                average_revs,
+                stale_s,
+            } => {
+                if !channel(ch) {
+                    issues.add(
+                        format!("{path}.speed.channel"),
+                        format!("unknown channel {ch:?}"),
+                    );
+                }
+                if *pulses_per_rev == 0 {
+                    issues.add(format!("{path}.speed.pulses_per_rev"), "must be at least 1");
+                }
+                if !threshold.is_finite() || !hysteresis.is_finite() || *hysteresis < 0.0 {
+                    issues.add(
+                        format!("{path}.speed.threshold"),
+                        "threshold and hysteresis must be finite, hysteresis >= 0",
+                    );
+                }
+                if *average_revs == 0 {
+                    issues.add(format!("{path}.speed.average_revs"), "must be at least 1");
+                }
+                if !(stale_s.is_finite() && *stale_s > 0.0) {
+                    issues.add(format!("{path}.speed.stale_s"), "must be above 0");
+                }
+                SpeedSource::Tach {
+                    channel: ch.clone(),
+                    pulses_per_rev: *pulses_per_rev,
+                    threshold: *threshold,
+                    hysteresis: *hysteresis,
+                    average_revs: *average_revs,
+                    stale_s: *stale_s,
+                }
+            }
+            RawSpeed::Peak {
+                channel: ch,
+                min_hz,
+                max_hz,
+                stale_s,
+            } => {
+                if !channel(ch) {
+                    issues.add(
+                        format!("{path}.speed.channel"),
+                        format!("unknown channel {ch:?}"),
+                    );
+                }
+                if !(min_hz.is_finite() && max_hz.is_finite() && *min_hz > 0.0 && min_hz < max_hz) {
+                    issues.add(
+                        format!("{path}.speed.min_hz"),
+                        format!("{min_hz}–{max_hz} Hz: need 0 < min_hz < max_hz"),
+                    );
+                }
+                if !(stale_s.is_finite() && *stale_s > 0.0) {
+                    issues.add(format!("{path}.speed.stale_s"), "must be above 0");
+                }
+                SpeedSource::Peak {
+                    channel: ch.clone(),
+                    min_hz: *min_hz,
+                    max_hz: *max_hz,
+                    stale_s: *stale_s,
+                }
+            }
+        };
+        let mut bearings = Vec::new();
+        for b in &m.bearings {
+            let bp = format!("{path} bearing {:?}", b.name);
+            if b.elements < 3 {
+                issues.add(
+                    format!("{bp}.elements"),
+                    format!("{} is fewer than 3", b.elements),
+                );
+            }
+            let (d, dp) = (b.element_diameter_mm, b.pitch_diameter_mm);
+            if !(d.is_finite() && dp.is_finite() && d > 0.0 && d < dp) {
+                issues.add(
+                    format!("{bp}.element_diameter_mm"),
+                    format!("{d} mm must be above 0 and below pitch_diameter_mm {dp} mm"),
+                );
+            }
+            if !(b.contact_angle_deg.is_finite() && (0.0..90.0).contains(&b.contact_angle_deg)) {
+                issues.add(
+                    format!("{bp}.contact_angle_deg"),
+                    "must be in 0 to 90 degrees",
+                );
+            }
+            bearings.push((
+                b.name.clone(),
+                BearingGeometry {
+                    elements: b.elements,
+                    element_diameter: d,
+                    pitch_diameter: dp,
+                    contact_angle_deg: b.contact_angle_deg,
+                },
+            ));
+        }
+        out.push(MachineSpec {
+            name: m.name.clone(),
+            speed,
+            bearings,
+        });
+    }
+    out
+}
+
+/// Checks a band's edges: fixed Hz, orders, or a bearing defect.
+fn band_edges(
+    issues: &mut Issues,
+    bpath: &str,
+    b: &RawBand,
+    fs: f64,
+    df: f64,
+    machine: Option<&RawMachine>,
+) -> Option<BandEdges> {
+    let nyquist = fs / 2.0;
+    let given = [
+        b.lo_hz.is_some() || b.hi_hz.is_some(),
+        b.orders.is_some(),
+        b.bearing.is_some(),
+    ];
+    if given.iter().filter(|g| **g).count() != 1 {
+        issues.add(
+            bpath.to_string(),
+            "give exactly one of lo_hz/hi_hz, orders, or bearing (with defect)",
+        );
+        return None;
+    }
+    if b.harmonics != 1 && b.bearing.is_none() {
+        issues.add(
+            format!("{bpath}.harmonics"),
+            "only applies to bearing bands",
+        );
+    }
+    if b.width_orders.is_some() && b.bearing.is_none() {
+        issues.add(
+            format!("{bpath}.width_orders"),
+            "only applies to bearing bands",
+        );
+    }
+    if b.defect.is_some() && b.bearing.is_none() {
+        issues.add(format!("{bpath}.defect"), "needs bearing");
+    }
+    if let (Some(lo), Some(hi)) = (b.lo_hz, b.hi_hz) {
+        if !(lo.is_finite() && lo >= 0.0) {
+            issues.add(format!("{bpath}.lo_hz"), format!("{lo} must be >= 0 Hz"));
+            return None;
+        }
+        if !hi.is_finite() {
+            issues.add(format!("{bpath}.hi_hz"), "must be finite");
+            return None;
+        }
+        if lo >= hi {
+            issues.add(
+                format!("{bpath}.lo_hz"),
+                format!("{lo} Hz is not below hi_hz {hi} Hz (lo must be < hi)"),
+            );
+            return None;
+        }
+        if fs.is_finite() && hi > nyquist {
+            issues.add(
+                format!("{bpath}.hi_hz"),
+                format!("{hi} Hz is above Nyquist {nyquist} Hz (a tone above Nyquist folds back; filter it out before the converter)"),
+            );
+            return None;
+        }
+        if df.is_finite() && (lo / df).ceil() > (hi / df).floor() {
+            issues.add(
+                bpath.to_string(),
+                format!("{lo}–{hi} Hz holds no spectral line (lines are {df:.4} Hz apart); widen it or raise nfft"),
+            );
+            return None;
+        }
+        return Some(BandEdges::Hz { lo, hi });
+    }
+    if b.lo_hz.is_some() != b.hi_hz.is_some() {
+        issues.add(bpath.to_string(), "lo_hz and hi_hz go together");
+        return None;
+    }
+    let Some(m) = machine else {
+        issues.add(
+            bpath.to_string(),
+            "an order or bearing band needs the channel's `machine`",
+        );
+        return None;
+    };
+    if let Some([lo, hi]) = b.orders {
+        if !(lo.is_finite() && hi.is_finite() && lo >= 0.0 && lo < hi) {
+            issues.add(
+                format!("{bpath}.orders"),
+                format!("[{lo}, {hi}]: need 0 <= lo < hi"),
+            );
+            return None;
+        }
+        return Some(BandEdges::Orders {
+            windows: vec![(lo, hi)],
+        });
+    }
+    let name = b.bearing.as_deref().unwrap_or_default();
+    let Some(bearing) = m.bearings.iter().find(|x| x.name == name) else {
+        issues.add(
+            format!("{bpath}.bearing"),
+            format!("machine {:?} has no bearing {name:?}", m.name),
+        );
+        return None;
+    };
+    let Some(defect) = b.defect else {
+        issues.add(
+            format!("{bpath}.defect"),
+            "is required with bearing (bpfo, bpfi, bsf, ftf)",
+        );
+        return None;
+    };
+    let width = b.width_orders.unwrap_or(0.1);
+    if !(width.is_finite() && width > 0.0) {
+        issues.add(
+            format!("{bpath}.width_orders"),
+            format!("{width} must be above 0"),
+        );
+        return None;
+    }
+    if !(1..=50).contains(&b.harmonics) {
+        issues.add(
+            format!("{bpath}.harmonics"),
+            format!("{} is out of range 1 to 50", b.harmonics),
+        );
+        return None;
+    }
+    let g = crate::dsp::orders::BearingGeometry {
+        elements: bearing.elements,
+        element_diameter: bearing.element_diameter_mm,
+        pitch_diameter: bearing.pitch_diameter_mm,
+        contact_angle_deg: bearing.contact_angle_deg,
+    };
+    let centre = g.order_of(defect);
+    let windows = (1..=b.harmonics)
+        .map(|h| {
+            let c = centre * h as f64;
+            ((c - width / 2.0).max(0.0), c + width / 2.0)
+        })
+        .collect();
+    Some(BandEdges::Orders { windows })
 }
 
 fn socket_addr(issues: &mut Issues, path: &str, text: &str) -> SocketAddr {

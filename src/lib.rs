@@ -74,7 +74,7 @@ impl Pipeline {
             let capacity = (config.ring_seconds * spec.sample_rate_hz).ceil() as usize;
             let capacity = capacity.max(2 * spec.block);
             let (w, r) = channel_ring(capacity, spec.sample_rate_hz, ch.counters.clone());
-            dsps.push(ChannelDsp::new(ch.clone(), r));
+            dsps.push(ChannelDsp::with_machines(ch.clone(), r, &state.machines));
             writers.push(w);
         }
         let (workers, wakers) = Workers::start(config.workers, dsps).map_err(RunError::Workers)?;

@@ -12,7 +12,7 @@ use std::time::{SystemTime, UNIX_EPOCH};
 
 use arc_swap::ArcSwapOption;
 
-use crate::config::{ChannelSpec, Config};
+use crate::config::{ChannelSpec, Config, MachineSpec, SpeedSource};
 use crate::counters::ChannelCounters;
 use crate::dsp::bands::BandValue;
 use crate::dsp::stats::Overall;
@@ -34,6 +34,11 @@ pub struct ChannelSnapshot {
     /// Averaged single-sided power spectrum, units² per line, amplitude
     /// corrected (see `dsp::spectrum`); nfft/2 + 1 lines.
     pub power: Vec<f32>,
+    /// Averaged power spectrum of the envelope (empty without envelope
+    /// analysis), same scaling and lines as `power`.
+    pub envelope_power: Vec<f32>,
+    /// Running speed the order bands used, Hz (None: unknown or no machine).
+    pub speed_hz: Option<f64>,
     /// One per band of the spec, same order.
     pub bands: Vec<BandValue>,
     /// Time-domain levels of the newest block.
@@ -145,8 +150,50 @@ impl SourceShared {
     }
 }
 
+/// A machine's running speed, written by whichever worker measures it.
+pub struct MachineShared {
+    pub spec: MachineSpec,
+    speed_bits: AtomicU64,
+    updated_unix_ns: AtomicU64,
+}
+
+impl MachineShared {
+    pub fn new(spec: MachineSpec) -> MachineShared {
+        MachineShared {
+            spec,
+            speed_bits: AtomicU64::new(f64::NAN.to_bits()),
+            updated_unix_ns: AtomicU64::new(0),
+        }
+    }
+
+    /// Records a measured speed.
+    pub fn set_speed_hz(&self, hz: f64) {
+        self.speed_bits.store(hz.to_bits(), Ordering::Relaxed);
+        self.updated_unix_ns.store(unix_now_ns(), Ordering::Relaxed);
+    }
+
+    /// The current speed, or None when it is unknown or stale.
+    pub fn speed_hz(&self) -> Option<f64> {
+        let stale_s = match &self.spec.speed {
+            SpeedSource::Fixed { hz } => return Some(*hz),
+            SpeedSource::Tach { stale_s, .. } | SpeedSource::Peak { stale_s, .. } => *stale_s,
+        };
+        let v = f64::from_bits(self.speed_bits.load(Ordering::Relaxed));
+        let age_s = unix_now_ns().saturating_sub(self.updated_unix_ns.load(Ordering::Relaxed))
+            as f64
+            * 1e-9;
+        (v.is_finite() && age_s <= stale_s).then_some(v)
+    }
+
+    /// When the speed was last measured, ns since the Unix epoch (0: never).
+    pub fn updated_unix_ns(&self) -> u64 {
+        self.updated_unix_ns.load(Ordering::Relaxed)
+    }
+}
+
 /// The read side of the whole pipeline, handed to HTTP.
 pub struct AppState {
+    pub machines: Vec<Arc<MachineShared>>,
     pub channels: Vec<Arc<ChannelShared>>,
     pub by_name: HashMap<String, usize>,
     pub sources: Vec<Arc<SourceShared>>,
@@ -171,6 +218,11 @@ impl AppState {
             .map(|s| Arc::new(SourceShared::new(&s.name, s.kind.as_str())))
             .collect();
         AppState {
+            machines: config
+                .machines
+                .iter()
+                .map(|m| Arc::new(MachineShared::new(m.clone())))
+                .collect(),
             channels,
             by_name,
             sources,
@@ -180,6 +232,10 @@ impl AppState {
 
     pub fn channel(&self, name: &str) -> Option<&Arc<ChannelShared>> {
         self.by_name.get(name).map(|&i| &self.channels[i])
+    }
+
+    pub fn machine(&self, name: &str) -> Option<&Arc<MachineShared>> {
+        self.machines.iter().find(|m| m.spec.name == name)
     }
 
     pub fn source(&self, name: &str) -> Option<&Arc<SourceShared>> {

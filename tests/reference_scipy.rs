@@ -246,7 +246,11 @@ fn check_signal(name: &str) -> (Worst, Worst) {
                 .unwrap_or_else(|| panic!("{what}: band {}", band.name));
             // The floor scales with the largest line weight of the band
             // (1 for g; (1000·g/2πf)² at the band's lowest line for mm/s).
-            let lowest = (band.lo_hz / spec.df_hz()).ceil().max(1.0) * spec.df_hz();
+            let lo_hz = match band.edges {
+                bandwatch::config::BandEdges::Hz { lo, .. } => lo,
+                _ => panic!("{what}: fixture bands are in Hz"),
+            };
+            let lowest = (lo_hz / spec.df_hz()).ceil().max(1.0) * spec.df_hz();
             let wmax = line_factor(spec.unit, band.unit, lowest, spec.integration_low_cut_hz);
             let scale = total * wmax * wmax;
             let got = value * value;

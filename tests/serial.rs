@@ -22,7 +22,7 @@ kind = "serial"
 device = "{device}"
 baud = 115200
 framing = "{framing}"
-channels = 3
+channels = 4
 sample_rate_hz = 25600
 reopen_ms = 50
 [[channel]]

@@ -59,7 +59,7 @@ averaging = {{ mode = "none" }}
 }
 
 fn udp_source(port: u16) -> String {
-    format!("[[source]]\nname = \"daq\"\nkind = \"udp\"\nlisten = \"127.0.0.1:{port}\"\nchannels = 3\nsample_rate_hz = 25600\n")
+    format!("[[source]]\nname = \"daq\"\nkind = \"udp\"\nlisten = \"127.0.0.1:{port}\"\nchannels = 4\nsample_rate_hz = 25600\n")
 }
 
 async fn wait_for(what: &str, secs: u64, mut ok: impl FnMut() -> bool) {
@@ -191,8 +191,8 @@ async fn udp_frame_with_wrong_channel_count_or_rate_is_rejected() {
     )
     .expect("frame");
     let rate = encode(
-        &Header::new(SampleFormat::F32, 3, 4, 0, 0, 48_000.0),
-        SampleSlice::F32(&[0.0; 12]),
+        &Header::new(SampleFormat::F32, 4, 4, 0, 0, 48_000.0),
+        SampleSlice::F32(&[0.0; 16]),
     )
     .expect("frame");
     wait_for("rejections", 10, || {
@@ -218,7 +218,7 @@ async fn udp_frame_with_wrong_channel_count_or_rate_is_rejected() {
 async fn tcp_listen_counts_crc_errors_and_resyncs() {
     let port = free_tcp_port();
     let cfg = config_with(&format!(
-        "[[source]]\nname = \"daq\"\nkind = \"tcp-listen\"\nlisten = \"127.0.0.1:{port}\"\nchannels = 3\nsample_rate_hz = 25600\n"
+        "[[source]]\nname = \"daq\"\nkind = \"tcp-listen\"\nlisten = \"127.0.0.1:{port}\"\nchannels = 4\nsample_rate_hz = 25600\n"
     ));
     let p = Pipeline::start(&cfg).expect("pipeline");
     let s = src(&p.state);
@@ -252,12 +252,12 @@ async fn tcp_sender_that_dies_mid_frame_and_comes_back() {
     use tokio::io::AsyncWriteExt;
     let port = free_tcp_port();
     let cfg = config_with(&format!(
-        "[[source]]\nname = \"daq\"\nkind = \"tcp-listen\"\nlisten = \"127.0.0.1:{port}\"\nchannels = 3\nsample_rate_hz = 25600\n"
+        "[[source]]\nname = \"daq\"\nkind = \"tcp-listen\"\nlisten = \"127.0.0.1:{port}\"\nchannels = 4\nsample_rate_hz = 25600\n"
     ));
     let p = Pipeline::start(&cfg).expect("pipeline");
     let s = src(&p.state);
-    let h = |first| Header::new(SampleFormat::F32, 3, S as u32, first, 0, 25_600.0);
-    let body = vec![0.25f32; 3 * S as usize];
+    let h = |first| Header::new(SampleFormat::F32, 4, S as u32, first, 0, 25_600.0);
+    let body = vec![0.25f32; 4 * S as usize];
     let f0 = encode(&h(0), SampleSlice::F32(&body)).expect("frame");
     let f1 = encode(&h(S), SampleSlice::F32(&body)).expect("frame");
     let mut c = loop {
@@ -300,7 +300,7 @@ async fn tcp_sender_that_dies_mid_frame_and_comes_back() {
 async fn tcp_listen_refuses_a_second_connection() {
     let port = free_tcp_port();
     let cfg = config_with(&format!(
-        "[[source]]\nname = \"daq\"\nkind = \"tcp-listen\"\nlisten = \"127.0.0.1:{port}\"\nchannels = 3\nsample_rate_hz = 25600\non_second_connection = \"refuse\"\n"
+        "[[source]]\nname = \"daq\"\nkind = \"tcp-listen\"\nlisten = \"127.0.0.1:{port}\"\nchannels = 4\nsample_rate_hz = 25600\non_second_connection = \"refuse\"\n"
     ));
     let p = Pipeline::start(&cfg).expect("pipeline");
     let s = src(&p.state);
@@ -331,18 +331,18 @@ async fn tcp_connect_reconnects_after_the_daq_drops() {
         .expect("bind");
     let port = daq.local_addr().expect("addr").port();
     let cfg = config_with(&format!(
-        "[[source]]\nname = \"daq\"\nkind = \"tcp-connect\"\naddress = \"127.0.0.1:{port}\"\nchannels = 3\nsample_rate_hz = 25600\nreconnect_min_ms = 20\nreconnect_max_ms = 200\n"
+        "[[source]]\nname = \"daq\"\nkind = \"tcp-connect\"\naddress = \"127.0.0.1:{port}\"\nchannels = 4\nsample_rate_hz = 25600\nreconnect_min_ms = 20\nreconnect_max_ms = 200\n"
     ));
     let p = Pipeline::start(&cfg).expect("pipeline");
     let s = src(&p.state);
-    let body = vec![0.1f32; 3 * S as usize];
+    let body = vec![0.1f32; 4 * S as usize];
     for round in 0..2u64 {
         let (mut c, _) = tokio::time::timeout(Duration::from_secs(10), daq.accept())
             .await
             .expect("daemon dials in time")
             .expect("accept");
         let f = encode(
-            &Header::new(SampleFormat::F32, 3, S as u32, 0, 0, 25_600.0),
+            &Header::new(SampleFormat::F32, 4, S as u32, 0, 0, 25_600.0),
             SampleSlice::F32(&body),
         )
         .expect("frame");

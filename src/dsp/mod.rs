@@ -8,11 +8,17 @@
 //! - `bands`: band RMS / peak from a spectrum, with unit conversion and
 //!   integration
 //! - `stats`: time-domain overall levels
+//! - `orders`: bearing defect frequencies in orders of running speed
+//! - `speed`: running speed from a tach pulse train or a tracked peak
+//! - `envelope`: band-pass + analytic signal → envelope (demodulation)
 //! - `worker`: the OS threads that own channels and run the above
 
 pub mod average;
 pub mod bands;
+pub mod envelope;
+pub mod orders;
 pub mod spectrum;
+pub mod speed;
 pub mod stats;
 pub mod window;
 pub mod worker;

@@ -14,13 +14,31 @@ use std::sync::Arc;
 use std::thread::{self, JoinHandle, Thread};
 use std::time::Duration;
 
+use crate::config::{SpectrumKind, SpeedSource};
 use crate::counters::GapReason;
 use crate::dsp::average::Averager;
-use crate::dsp::bands::{BandPlan, BandValue};
+use crate::dsp::bands::{BandPlan, BandValue, WeightCache};
+use crate::dsp::envelope::EnvelopeEngine;
 use crate::dsp::spectrum::SpectrumEngine;
+use crate::dsp::speed::{track_peak, TachDetector};
 use crate::dsp::stats;
 use crate::ring::{Mark, ReadEvent, RingReader};
-use crate::snapshot::{unix_now_ns, ChannelShared, ChannelSnapshot};
+use crate::snapshot::{unix_now_ns, ChannelShared, ChannelSnapshot, MachineShared};
+
+/// Envelope analysis state of a channel.
+struct EnvelopeState {
+    engine: EnvelopeEngine,
+    spectrum: SpectrumEngine,
+    averager: Averager,
+    signal: Vec<f32>,
+    power: Vec<f32>,
+}
+
+/// A channel whose data measures a machine's speed.
+enum SpeedRole {
+    Tach(Arc<MachineShared>, TachDetector),
+    Peak(Arc<MachineShared>, usize, usize),
+}
 
 /// Blocks one channel may compute before the worker moves to the next, so a
 /// backlog on one channel does not starve the others.
@@ -36,6 +54,11 @@ pub struct ChannelDsp {
     engine: SpectrumEngine,
     averager: Averager,
     bands: Vec<BandPlan>,
+    /// Which spectrum each band reads.
+    band_spectrum: Vec<SpectrumKind>,
+    machine: Option<Arc<MachineShared>>,
+    envelope: Option<Box<EnvelopeState>>,
+    speed_roles: Vec<SpeedRole>,
     frame: Vec<f32>,
     filled: usize,
     /// Stream index of `frame[0]`.
@@ -53,15 +76,81 @@ pub struct ChannelDsp {
 
 impl ChannelDsp {
     pub fn new(shared: Arc<ChannelShared>, reader: RingReader) -> ChannelDsp {
+        Self::with_machines(shared, reader, &[])
+    }
+
+    /// A channel that may follow (or measure) the speed of `machines`.
+    pub fn with_machines(
+        shared: Arc<ChannelShared>,
+        reader: RingReader,
+        machines: &[Arc<MachineShared>],
+    ) -> ChannelDsp {
         let spec = shared.spec.clone();
         let engine = SpectrumEngine::new(spec.window, spec.block, spec.nfft, spec.detrend);
         let nbw = engine.noise_bandwidth_lines();
+        let mut cache = WeightCache::default();
         let bands: Vec<BandPlan> = spec
             .bands
             .iter()
-            .map(|b| BandPlan::new(&spec, b, nbw))
+            .map(|b| BandPlan::with_weights(&spec, b, nbw, cache.get(&spec, b.unit)))
+            .collect();
+        let machine = spec
+            .machine
+            .as_ref()
+            .and_then(|m| machines.iter().find(|x| &x.spec.name == m).cloned());
+        let envelope = spec.envelope.map(|(lo, hi)| {
+            Box::new(EnvelopeState {
+                engine: EnvelopeEngine::new(spec.block, spec.sample_rate_hz, lo, hi),
+                spectrum: SpectrumEngine::new(
+                    spec.window,
+                    spec.block,
+                    spec.nfft,
+                    crate::config::Detrend::Mean,
+                ),
+                averager: Averager::new(spec.averaging, spec.average_count, spec.bins()),
+                signal: vec![0.0; spec.block],
+                power: vec![0.0; spec.bins()],
+            })
+        });
+        let df = spec.df_hz();
+        let speed_roles = machines
+            .iter()
+            .filter_map(|m| match &m.spec.speed {
+                SpeedSource::Tach {
+                    channel,
+                    pulses_per_rev,
+                    threshold,
+                    hysteresis,
+                    average_revs,
+                    ..
+                } if *channel == spec.name => Some(SpeedRole::Tach(
+                    m.clone(),
+                    TachDetector::new(
+                        spec.sample_rate_hz,
+                        *pulses_per_rev,
+                        *threshold,
+                        *hysteresis,
+                        *average_revs,
+                    ),
+                )),
+                SpeedSource::Peak {
+                    channel,
+                    min_hz,
+                    max_hz,
+                    ..
+                } if *channel == spec.name => Some(SpeedRole::Peak(
+                    m.clone(),
+                    (min_hz / df).ceil() as usize,
+                    (max_hz / df).floor() as usize,
+                )),
+                _ => None,
+            })
             .collect();
         ChannelDsp {
+            band_spectrum: spec.bands.iter().map(|b| b.spectrum).collect(),
+            machine,
+            envelope,
+            speed_roles,
             averager: Averager::new(spec.averaging, spec.average_count, spec.bins()),
             band_values: vec![BandValue::default(); bands.len()],
             power: vec![0.0; spec.bins()],
@@ -107,6 +196,16 @@ impl ChannelDsp {
                     if self.filled == 0 {
                         self.frame_first_sample = self.next_sample;
                     }
+                    for role in &mut self.speed_roles {
+                        if let SpeedRole::Tach(m, t) = role {
+                            let new = &self.frame[self.filled..self.filled + n];
+                            if t.push(self.next_sample, new) > 0 {
+                                if let Some(hz) = t.speed_hz() {
+                                    m.set_speed_hz(hz);
+                                }
+                            }
+                        }
+                    }
                     self.filled += n;
                     self.next_sample += n as u64;
                     self.shared
@@ -127,8 +226,16 @@ impl ChannelDsp {
         if let Some(reason) = m.gap {
             // No block may span a gap: start the block over.
             self.filled = 0;
+            for role in &mut self.speed_roles {
+                if let SpeedRole::Tach(_, t) = role {
+                    t.reset();
+                }
+            }
             if reason == GapReason::Restart {
                 self.averager.reset();
+                if let Some(e) = &mut self.envelope {
+                    e.averager.reset();
+                }
             }
         }
         self.next_sample = m.first_sample;
@@ -144,6 +251,13 @@ impl ChannelDsp {
     fn block_ready(&mut self) {
         self.engine.compute(&self.frame, &mut self.power);
         self.shared.counters.blocks.fetch_add(1, Ordering::Relaxed);
+        if let Some(e) = &mut self.envelope {
+            e.engine.envelope(&self.frame, &mut e.signal);
+            e.spectrum.compute(&e.signal, &mut e.power);
+            // Same mode and count as the raw averager: both are ready on
+            // the same block.
+            e.averager.push(&e.power);
+        }
         if self.averager.push(&self.power) {
             self.publish();
         }
@@ -156,8 +270,27 @@ impl ChannelDsp {
 
     fn publish(&mut self) {
         let avg = self.averager.result();
-        for (v, plan) in self.band_values.iter_mut().zip(&self.bands) {
-            *v = plan.evaluate(avg);
+        let df = self.shared.spec.df_hz();
+        for role in &self.speed_roles {
+            if let SpeedRole::Peak(m, lo, hi) = role {
+                if let Some(k) = track_peak(avg, *lo, *hi) {
+                    m.set_speed_hz(k * df);
+                }
+            }
+        }
+        let speed = self.machine.as_ref().and_then(|m| m.speed_hz());
+        let env = self.envelope.as_ref().map(|e| e.averager.result());
+        for ((v, plan), kind) in self
+            .band_values
+            .iter_mut()
+            .zip(&self.bands)
+            .zip(&self.band_spectrum)
+        {
+            let p = match (kind, env) {
+                (SpectrumKind::Envelope, Some(e)) => e,
+                _ => avg,
+            };
+            *v = plan.evaluate_at(p, speed);
         }
         self.seq += 1;
         let mut arc = match self.spare.take() {
@@ -176,6 +309,11 @@ impl ChannelDsp {
         snap.overall = stats::overall(&self.frame);
         snap.power.clear();
         snap.power.extend_from_slice(avg);
+        snap.envelope_power.clear();
+        if let Some(e) = env {
+            snap.envelope_power.extend_from_slice(e);
+        }
+        snap.speed_hz = speed;
         snap.bands.clear();
         snap.bands.extend_from_slice(&self.band_values);
         snap.waveform.clear();

@@ -8,7 +8,9 @@
 //! deterministic for a seed and never shortcuts to spectra.
 //!
 //! Channel order (the `index` of a channel in the config):
-//! 0 `motor-de`, 1 `pump-de`, 2 `pump-nde`.
+//! 0 `motor-de`, 1 `pump-de`, 2 `pump-nde` (accelerometers, 100 mV/g),
+//! 3 `tach` (a once-per-rev optical pick-up: 4 V for 10 % of a turn,
+//! 0 V otherwise, into the same converter).
 
 use std::f64::consts::PI;
 use std::sync::atomic::Ordering;
@@ -23,7 +25,11 @@ use crate::snapshot::{unix_now_ns, SourceShared};
 use crate::source::{note_frame, SourceOutputs};
 
 /// Channels the scenario produces.
-pub const CHANNELS: usize = 3;
+pub const CHANNELS: usize = 4;
+/// Index of the tachometer channel.
+pub const TACH_INDEX: usize = 3;
+/// Tach pulse height, volts.
+pub const TACH_VOLTS: f64 = 4.0;
 /// Shaft speed: 1485 rpm.
 pub const SHAFT_HZ: f64 = 1485.0 / 60.0;
 /// Impeller vanes.
@@ -106,6 +112,8 @@ pub struct PumpSim {
     next_impact: f64,
     /// Active ringing impacts: (start time s, amplitude g).
     ringing: Vec<(f64, f64)>,
+    /// Shaft angle in turns, for the tach.
+    shaft: f64,
 }
 
 /// Decay time constant of the resonance rung by an impact.
@@ -131,9 +139,10 @@ impl PumpSim {
                 Tone::new(x1, fs, 1.4, &mut rng),
                 Tone::new(vp, fs, 1.1, &mut rng),
             ],
-            noise_g: [0.02, 0.03, 0.025],
+            noise_g: [0.02, 0.03, 0.025, 0.0],
             next_impact: 0.0,
             ringing: Vec::with_capacity(8),
+            shaft: 0.0,
             rng,
         }
     }
@@ -150,7 +159,7 @@ impl PumpSim {
         0.02 + 3.0 * Self::severity(t)
     }
 
-    /// Next instant, in g, for the three channels.
+    /// Next instant: g for the accelerometers, volts for the tach.
     pub fn next_instant(&mut self) -> [f64; CHANNELS] {
         let t = self.n as f64 / self.fs;
         self.n += 1;
@@ -171,7 +180,12 @@ impl PumpSim {
             de += amp * (-dt / RING_TAU_S).exp() * (2.0 * PI * RESONANCE_HZ * dt).sin();
         }
 
-        let mut out = [motor, de, nde];
+        let tach = if self.shaft < 0.1 { TACH_VOLTS } else { 0.0 };
+        self.shaft += SHAFT_HZ / self.fs;
+        if self.shaft >= 1.0 {
+            self.shaft -= 1.0;
+        }
+        let mut out = [motor, de, nde, tach];
         for (v, sd) in out.iter_mut().zip(self.noise_g) {
             *v += sd * self.rng.normal();
         }
@@ -183,8 +197,13 @@ impl PumpSim {
         const FULL: f64 = 8_388_607.0;
         for instant in out.chunks_exact_mut(CHANNELS) {
             let g = self.next_instant();
-            for (dst, v) in instant.iter_mut().zip(g) {
-                let counts = (v * SENSITIVITY_V_PER_G / VOLTS_PER_COUNT).round();
+            for (c, (dst, v)) in instant.iter_mut().zip(g).enumerate() {
+                let volts = if c == TACH_INDEX {
+                    v
+                } else {
+                    v * SENSITIVITY_V_PER_G
+                };
+                let counts = (volts / VOLTS_PER_COUNT).round();
                 *dst = counts.clamp(-FULL - 1.0, FULL) as i32;
             }
         }

@@ -20,7 +20,7 @@ use crate::config::SIM_SAMPLE_RATE_HZ;
 use crate::frame::bwf1::{encode_into, Header};
 use crate::frame::{SampleFormat, SampleSlice};
 use crate::snapshot::unix_now_ns;
-use crate::source::sim::{PumpSim, CHANNELS, SENSITIVITY_V_PER_G, VOLTS_PER_COUNT};
+use crate::source::sim::{PumpSim, CHANNELS, SENSITIVITY_V_PER_G, TACH_INDEX, VOLTS_PER_COUNT};
 use crate::tools::Endpoint;
 
 /// Every Nth frame gets the fault; 0 = never.
@@ -78,13 +78,21 @@ impl FrameMaker {
         self.sim.fill_counts(&mut self.counts);
         let first = self.next_sample;
         self.next_sample += s as u64;
+        // Values in units: g for the accelerometers, volts for the tach.
         let g_per_count = VOLTS_PER_COUNT / SENSITIVITY_V_PER_G;
+        let unit_per_count = |c: usize| {
+            if c % CHANNELS == TACH_INDEX {
+                VOLTS_PER_COUNT
+            } else {
+                g_per_count
+            }
+        };
         match self.format {
             WireFormat::Lines => {
                 for instant in self.counts.chunks_exact(CHANNELS) {
                     let mut sep = "";
-                    for &c in instant {
-                        let v = (c as f64 * g_per_count) as f32;
+                    for (i, &c) in instant.iter().enumerate() {
+                        let v = (c as f64 * unit_per_count(i)) as f32;
                         let _ = write!(out, "{sep}{v}");
                         sep = ",";
                     }
@@ -104,8 +112,12 @@ impl FrameMaker {
                 let slice = match format {
                     SampleFormat::F32 | SampleFormat::F64 => {
                         self.scratch_f32.clear();
-                        self.scratch_f32
-                            .extend(self.counts.iter().map(|&c| (c as f64 * g_per_count) as f32));
+                        self.scratch_f32.extend(
+                            self.counts
+                                .iter()
+                                .enumerate()
+                                .map(|(i, &c)| (c as f64 * unit_per_count(i)) as f32),
+                        );
                         SampleSlice::F32(&self.scratch_f32)
                     }
                     SampleFormat::I16 => {
