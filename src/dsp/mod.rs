@@ -11,11 +11,13 @@
 //! - `orders`: bearing defect frequencies in orders of running speed
 //! - `speed`: running speed from a tach pulse train or a tracked peak
 //! - `envelope`: band-pass + analytic signal → envelope (demodulation)
+//! - `filter`: band-limited time signal of a block (for the waveform API)
 //! - `worker`: the OS threads that own channels and run the above
 
 pub mod average;
 pub mod bands;
 pub mod envelope;
+pub mod filter;
 pub mod orders;
 pub mod spectrum;
 pub mod speed;
