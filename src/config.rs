@@ -11,6 +11,7 @@ use std::path::{Path, PathBuf};
 use serde::Deserialize;
 
 use crate::dsp::window::WindowKind;
+use crate::frame::SampleFormat;
 use crate::units::{convertible, Unit};
 
 /// Sample rate of the built-in pump scenario (DESIGN.md, demo scenario).
@@ -80,6 +81,141 @@ pub enum RawSource {
         #[serde(default = "default_speed")]
         speed: f64,
     },
+    /// bandwatch dials the DAQ box and reconnects when the link drops.
+    TcpConnect {
+        name: String,
+        /// "host:port" of the DAQ box.
+        address: String,
+        /// "bwf1" (default), "lines" or "raw".
+        #[serde(default = "default_framing")]
+        framing: String,
+        /// Channels in one instant (checked against BWF1 headers).
+        channels: usize,
+        /// Samples per second per channel (checked against BWF1 headers).
+        sample_rate_hz: f64,
+        /// Sample format of `raw` framing: "i16", "i24", "i32", "f32", "f64".
+        sample_format: Option<String>,
+        /// Largest BWF1 frame accepted, bytes.
+        #[serde(default = "default_max_frame")]
+        max_frame_bytes: usize,
+        /// First wait before reconnecting, doubled after each failure.
+        #[serde(default = "default_backoff_min")]
+        reconnect_min_ms: u64,
+        /// Longest wait between reconnects.
+        #[serde(default = "default_backoff_max")]
+        reconnect_max_ms: u64,
+    },
+    /// The DAQ box dials bandwatch.
+    TcpListen {
+        name: String,
+        /// Address to listen on, e.g. "0.0.0.0:7700".
+        listen: String,
+        /// "bwf1" (default), "lines" or "raw".
+        #[serde(default = "default_framing")]
+        framing: String,
+        /// Channels in one instant (checked against BWF1 headers).
+        channels: usize,
+        /// Samples per second per channel (checked against BWF1 headers).
+        sample_rate_hz: f64,
+        /// Sample format of `raw` framing: "i16", "i24", "i32", "f32", "f64".
+        sample_format: Option<String>,
+        /// Largest BWF1 frame accepted, bytes.
+        #[serde(default = "default_max_frame")]
+        max_frame_bytes: usize,
+        /// What a second connection does while one is active.
+        #[serde(default)]
+        on_second_connection: SecondConnection,
+    },
+    /// One BWF1 frame per datagram.
+    Udp {
+        name: String,
+        listen: String,
+        channels: usize,
+        sample_rate_hz: f64,
+        /// Largest datagram accepted; bigger ones are counted as truncated.
+        #[serde(default = "default_max_datagram")]
+        max_datagram_bytes: usize,
+    },
+    /// A serial line (RS-232/485, USB adapter).
+    Serial {
+        name: String,
+        /// e.g. "/dev/ttyUSB0".
+        device: String,
+        baud: u32,
+        #[serde(default = "default_data_bits")]
+        data_bits: u8,
+        #[serde(default)]
+        parity: Parity,
+        #[serde(default = "default_stop_bits")]
+        stop_bits: u8,
+        #[serde(default)]
+        flow_control: FlowControl,
+        /// "bwf1" (default), "lines" or "raw".
+        #[serde(default = "default_framing")]
+        framing: String,
+        /// Channels in one instant (checked against BWF1 headers).
+        channels: usize,
+        /// Samples per second per channel (checked against BWF1 headers).
+        sample_rate_hz: f64,
+        /// Sample format of `raw` framing: "i16", "i24", "i32", "f32", "f64".
+        sample_format: Option<String>,
+        /// Largest BWF1 frame accepted, bytes.
+        #[serde(default = "default_max_frame")]
+        max_frame_bytes: usize,
+        /// Wait between attempts to reopen a vanished port.
+        #[serde(default = "default_backoff_min")]
+        reopen_ms: u64,
+    },
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Default)]
+#[serde(rename_all = "kebab-case")]
+pub enum SecondConnection {
+    /// Keep the active connection; close the newcomer.
+    #[default]
+    Refuse,
+    /// Close the active connection; the newcomer takes over.
+    Replace,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Default)]
+#[serde(rename_all = "kebab-case")]
+pub enum Parity {
+    #[default]
+    None,
+    Odd,
+    Even,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Default)]
+#[serde(rename_all = "kebab-case")]
+pub enum FlowControl {
+    #[default]
+    None,
+    Software,
+    Hardware,
+}
+
+fn default_backoff_min() -> u64 {
+    200
+}
+fn default_backoff_max() -> u64 {
+    10_000
+}
+fn default_max_datagram() -> usize {
+    65_507
+}
+fn default_data_bits() -> u8 {
+    8
+}
+fn default_stop_bits() -> u8 {
+    1
+}
+fn default_framing() -> String {
+    "bwf1".to_string()
+}
+fn default_max_frame() -> usize {
+    16 << 20
 }
 
 fn default_scenario() -> String {
@@ -95,7 +231,11 @@ fn default_speed() -> f64 {
 impl RawSource {
     pub fn name(&self) -> &str {
         match self {
-            RawSource::Sim { name, .. } => name,
+            RawSource::Sim { name, .. }
+            | RawSource::TcpConnect { name, .. }
+            | RawSource::TcpListen { name, .. }
+            | RawSource::Udp { name, .. }
+            | RawSource::Serial { name, .. } => name,
         }
     }
 }
@@ -257,15 +397,67 @@ pub struct SourceSpec {
 
 #[derive(Debug, Clone)]
 pub enum SourceKind {
-    Sim { seed: u64, speed: f64 },
+    Sim {
+        seed: u64,
+        speed: f64,
+    },
+    TcpConnect {
+        address: String,
+        stream: StreamSpec,
+        backoff: Backoff,
+    },
+    TcpListen {
+        listen: SocketAddr,
+        stream: StreamSpec,
+        on_second_connection: SecondConnection,
+    },
+    Udp {
+        listen: SocketAddr,
+        max_datagram_bytes: usize,
+    },
+    Serial {
+        device: String,
+        baud: u32,
+        data_bits: u8,
+        parity: Parity,
+        stop_bits: u8,
+        flow_control: FlowControl,
+        stream: StreamSpec,
+        reopen_ms: u64,
+    },
 }
 
 impl SourceKind {
     pub fn as_str(&self) -> &'static str {
         match self {
             SourceKind::Sim { .. } => "sim",
+            SourceKind::TcpConnect { .. } => "tcp-connect",
+            SourceKind::TcpListen { .. } => "tcp-listen",
+            SourceKind::Udp { .. } => "udp",
+            SourceKind::Serial { .. } => "serial",
         }
     }
+}
+
+/// How bytes on a stream transport become samples.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Framing {
+    Bwf1,
+    Lines,
+    Raw(SampleFormat),
+}
+
+#[derive(Debug, Clone)]
+pub struct StreamSpec {
+    pub framing: Framing,
+    pub max_frame_bytes: usize,
+}
+
+/// Reconnect waits: doubling from `min_ms` to `max_ms`, with jitter.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Backoff {
+    pub min_ms: u64,
+    pub max_ms: u64,
 }
 
 #[derive(Debug, Clone)]
@@ -469,6 +661,144 @@ pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
                     kind: SourceKind::Sim {
                         seed: *seed,
                         speed: *speed,
+                    },
+                });
+            }
+            RawSource::TcpConnect {
+                name,
+                address,
+                framing,
+                channels,
+                sample_rate_hz,
+                sample_format,
+                max_frame_bytes,
+                reconnect_min_ms,
+                reconnect_max_ms,
+            } => {
+                if !address.contains(':') {
+                    issues.add(
+                        format!("{path}.address"),
+                        format!("{address:?} is not \"host:port\""),
+                    );
+                }
+                if *reconnect_min_ms == 0 || reconnect_min_ms > reconnect_max_ms {
+                    issues.add(
+                        format!("{path}.reconnect_min_ms"),
+                        format!(
+                            "{reconnect_min_ms} must be > 0 and <= reconnect_max_ms {reconnect_max_ms}"
+                        ),
+                    );
+                }
+                let stream = stream_spec(&mut issues, &path, framing, sample_format.as_deref(), *max_frame_bytes);
+                check_shape(&mut issues, &path, *channels, *sample_rate_hz);
+                sources.push(SourceSpec {
+                    name: name.clone(),
+                    sample_rate_hz: *sample_rate_hz,
+                    channels: *channels,
+                    kind: SourceKind::TcpConnect {
+                        address: address.clone(),
+                        stream,
+                        backoff: Backoff {
+                            min_ms: *reconnect_min_ms,
+                            max_ms: *reconnect_max_ms,
+                        },
+                    },
+                });
+            }
+            RawSource::TcpListen {
+                name,
+                listen,
+                framing,
+                channels,
+                sample_rate_hz,
+                sample_format,
+                max_frame_bytes,
+                on_second_connection,
+            } => {
+                let addr = socket_addr(&mut issues, &format!("{path}.listen"), listen);
+                let stream = stream_spec(&mut issues, &path, framing, sample_format.as_deref(), *max_frame_bytes);
+                check_shape(&mut issues, &path, *channels, *sample_rate_hz);
+                sources.push(SourceSpec {
+                    name: name.clone(),
+                    sample_rate_hz: *sample_rate_hz,
+                    channels: *channels,
+                    kind: SourceKind::TcpListen {
+                        listen: addr,
+                        stream,
+                        on_second_connection: *on_second_connection,
+                    },
+                });
+            }
+            RawSource::Udp {
+                name,
+                listen,
+                channels,
+                sample_rate_hz,
+                max_datagram_bytes,
+            } => {
+                let addr = socket_addr(&mut issues, &format!("{path}.listen"), listen);
+                check_shape(&mut issues, &path, *channels, *sample_rate_hz);
+                if !(64..=65_507).contains(max_datagram_bytes) {
+                    issues.add(
+                        format!("{path}.max_datagram_bytes"),
+                        format!("{max_datagram_bytes} is out of range 64 to 65507"),
+                    );
+                }
+                sources.push(SourceSpec {
+                    name: name.clone(),
+                    sample_rate_hz: *sample_rate_hz,
+                    channels: *channels,
+                    kind: SourceKind::Udp {
+                        listen: addr,
+                        max_datagram_bytes: *max_datagram_bytes,
+                    },
+                });
+            }
+            RawSource::Serial {
+                name,
+                device,
+                baud,
+                data_bits,
+                parity,
+                stop_bits,
+                flow_control,
+                framing,
+                channels,
+                sample_rate_hz,
+                sample_format,
+                max_frame_bytes,
+                reopen_ms,
+            } => {
+                if device.is_empty() {
+                    issues.add(format!("{path}.device"), "must not be empty");
+                }
+                if *baud == 0 {
+                    issues.add(format!("{path}.baud"), "must be > 0");
+                }
+                if !(5..=8).contains(data_bits) {
+                    issues.add(format!("{path}.data_bits"), format!("{data_bits} is not 5, 6, 7 or 8"));
+                }
+                if !(1..=2).contains(stop_bits) {
+                    issues.add(format!("{path}.stop_bits"), format!("{stop_bits} is not 1 or 2"));
+                }
+                if *reopen_ms == 0 {
+                    issues.add(format!("{path}.reopen_ms"), "must be > 0");
+                }
+                let stream = stream_spec(&mut issues, &path, framing, sample_format.as_deref(), *max_frame_bytes);
+                check_shape(&mut issues, &path, *channels, *sample_rate_hz);
+                sources.push(SourceSpec {
+                    name: name.clone(),
+                    sample_rate_hz: *sample_rate_hz,
+                    channels: *channels,
+                    kind: SourceKind::Serial {
+                        device: device.clone(),
+                        baud: *baud,
+                        data_bits: *data_bits,
+                        parity: *parity,
+                        stop_bits: *stop_bits,
+                        flow_control: *flow_control,
+                        stream,
+                        reopen_ms: *reopen_ms,
                     },
                 });
             }
@@ -691,7 +1021,7 @@ pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
                 let last = (b.hi_hz / df).floor();
                 if first > last {
                     issues.add(
-                        format!("{bpath}"),
+                        bpath.clone(),
                         format!(
                             "{}–{} Hz holds no spectral line (lines are {df:.4} Hz apart); widen it or raise nfft",
                             b.lo_hz, b.hi_hz
@@ -769,6 +1099,86 @@ pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
             channels,
         }),
         _ => Err(issues.0),
+    }
+}
+
+fn socket_addr(issues: &mut Issues, path: &str, text: &str) -> SocketAddr {
+    match text.parse::<SocketAddr>() {
+        Ok(a) => a,
+        Err(_) => {
+            issues.add(
+                path,
+                format!("{text:?} is not an IP address with a port (e.g. \"127.0.0.1:7700\")"),
+            );
+            SocketAddr::from(([127, 0, 0, 1], 0))
+        }
+    }
+}
+
+fn check_shape(issues: &mut Issues, path: &str, channels: usize, rate: f64) {
+    if !(1..=1024).contains(&channels) {
+        issues.add(format!("{path}.channels"), format!("{channels} is out of range 1 to 1024"));
+    }
+    if !(rate.is_finite() && rate > 0.0 && rate <= 10e6) {
+        issues.add(
+            format!("{path}.sample_rate_hz"),
+            format!("{rate} must be a finite number above 0 and at most 10 MHz"),
+        );
+    }
+}
+
+fn parse_format(s: &str) -> Option<SampleFormat> {
+    SampleFormat::ALL.into_iter().find(|f| f.as_str() == s)
+}
+
+fn stream_spec(
+    issues: &mut Issues,
+    path: &str,
+    framing: &str,
+    sample_format: Option<&str>,
+    max_frame_bytes: usize,
+) -> StreamSpec {
+    let framing = match (framing, sample_format) {
+        ("bwf1", None) => Framing::Bwf1,
+        ("lines", None) => Framing::Lines,
+        ("raw", Some(f)) => match parse_format(f) {
+            Some(f) => Framing::Raw(f),
+            None => {
+                issues.add(
+                    format!("{path}.sample_format"),
+                    format!("unknown sample format {f:?} (known: i16, i24, i32, f32, f64)"),
+                );
+                Framing::Raw(SampleFormat::F32)
+            }
+        },
+        ("raw", None) => {
+            issues.add(format!("{path}.sample_format"), "is required with framing = \"raw\"");
+            Framing::Raw(SampleFormat::F32)
+        }
+        ("bwf1" | "lines", Some(_)) => {
+            issues.add(
+                format!("{path}.sample_format"),
+                "only applies to framing = \"raw\" (BWF1 frames carry their format)",
+            );
+            Framing::Bwf1
+        }
+        (other, _) => {
+            issues.add(
+                format!("{path}.framing"),
+                format!("unknown framing {other:?} (known: \"bwf1\", \"lines\", \"raw\")"),
+            );
+            Framing::Bwf1
+        }
+    };
+    if !(64..=(256 << 20)).contains(&max_frame_bytes) {
+        issues.add(
+            format!("{path}.max_frame_bytes"),
+            format!("{max_frame_bytes} is out of range 64 to 268435456"),
+        );
+    }
+    StreamSpec {
+        framing,
+        max_frame_bytes,
     }
 }
 

@@ -10,6 +10,7 @@
 //! Module map:
 //! - [`config`]: the TOML file, validation with field paths
 //! - [`units`]: engineering units, SI conversion, integration factors
+//! - [`frame`]: wire framings (BWF1, lines, raw): bytes to samples, pure code
 //! - [`source`]: sample producers (the built-in `sim`), scaling to units
 //! - [`ring`]: per-channel SPSC ring with discontinuity marks
 //! - [`counters`]: per-channel counters shared by the stages
@@ -20,10 +21,12 @@
 pub mod config;
 pub mod counters;
 pub mod dsp;
+pub mod frame;
 pub mod http;
 pub mod ring;
 pub mod snapshot;
 pub mod source;
+pub mod tools;
 pub mod units;
 
 use std::future::Future;

@@ -38,6 +38,67 @@ enum Command {
         #[arg(long)]
         config: PathBuf,
     },
+    /// Act as a DAQ box: stream the demo pump over BWF1 (or lines).
+    Send {
+        /// tcp://HOST:PORT (dial), tcp-serve://HOST:PORT (listen, for a
+        /// tcp-connect daemon), udp://HOST:PORT, or serial:PATH.
+        #[arg(long)]
+        to: bandwatch::tools::Endpoint,
+        /// Only "demo" (the P2 pump) exists.
+        #[arg(long, default_value = "demo")]
+        scenario: String,
+        /// Play this many times faster than real time.
+        #[arg(long, default_value_t = 1.0)]
+        rate_x: f64,
+        /// Seconds of signal to send (default: until interrupted).
+        #[arg(long)]
+        seconds: Option<f64>,
+        /// Sample format: f32 (values in g), i24, i32 or i16 (counts), f64.
+        #[arg(long, default_value = "f32")]
+        format: String,
+        /// "bwf1" or "lines" (text, values in g; TCP or serial only).
+        #[arg(long, default_value = "bwf1")]
+        framing: String,
+        /// Instants per frame.
+        #[arg(long, default_value_t = 256)]
+        frame_samples: usize,
+        #[arg(long, default_value_t = 2)]
+        seed: u64,
+        /// Do not send every Nth frame.
+        #[arg(long, default_value_t = 0)]
+        drop_every: u64,
+        /// Flip a byte in every Nth frame.
+        #[arg(long, default_value_t = 0)]
+        corrupt_every: u64,
+        /// Send every Nth frame twice.
+        #[arg(long, default_value_t = 0)]
+        duplicate_every: u64,
+        /// Send every Nth frame after the one that follows it.
+        #[arg(long, default_value_t = 0)]
+        reorder_every: u64,
+    },
+    /// Store a raw stream as received.
+    Record {
+        /// tcp://HOST:PORT (dial), tcp-serve://HOST:PORT (listen),
+        /// udp://BIND:PORT, or serial:PATH.
+        #[arg(long)]
+        from: bandwatch::tools::Endpoint,
+        #[arg(long)]
+        out: PathBuf,
+        /// Stop after this many seconds (default: until the peer closes or ctrl-c).
+        #[arg(long)]
+        seconds: Option<f64>,
+    },
+    /// Run a recorded stream through the pipeline as fast as possible and
+    /// print one JSON line per spectrum.
+    Replay {
+        file: PathBuf,
+        #[arg(long)]
+        config: PathBuf,
+        /// Source of the config the file feeds (default: the first network or serial one).
+        #[arg(long)]
+        source: Option<String>,
+    },
 }
 
 fn main() -> ExitCode {
@@ -60,6 +121,114 @@ fn main() -> ExitCode {
                 ExitCode::from(2)
             }
         },
+        Command::Send {
+            to,
+            scenario,
+            rate_x,
+            seconds,
+            format,
+            framing,
+            frame_samples,
+            seed,
+            drop_every,
+            corrupt_every,
+            duplicate_every,
+            reorder_every,
+        } => {
+            use bandwatch::frame::SampleFormat;
+            use bandwatch::tools::send::{send, Faults, SendOptions, WireFormat};
+            if scenario != "demo" {
+                eprintln!("unknown scenario {scenario:?} (known: demo)");
+                return ExitCode::from(2);
+            }
+            if !(rate_x.is_finite() && rate_x > 0.0) {
+                eprintln!("--rate-x must be a number above 0");
+                return ExitCode::from(2);
+            }
+            let wire = match framing.as_str() {
+                "lines" => WireFormat::Lines,
+                "bwf1" => match SampleFormat::ALL.into_iter().find(|f| f.as_str() == format) {
+                    Some(f) => WireFormat::Bwf1(f),
+                    None => {
+                        eprintln!("unknown --format {format:?} (i16, i24, i32, f32, f64)");
+                        return ExitCode::from(2);
+                    }
+                },
+                other => {
+                    eprintln!("unknown --framing {other:?} (bwf1, lines)");
+                    return ExitCode::from(2);
+                }
+            };
+            let opts = SendOptions {
+                to,
+                format: wire,
+                rate_x,
+                seconds,
+                frame_samples,
+                seed,
+                faults: Faults {
+                    drop_every,
+                    corrupt_every,
+                    duplicate_every,
+                    reorder_every,
+                },
+            };
+            block_on(async move {
+                match send(opts, shutdown_signal()).await {
+                    Ok(r) => {
+                        println!("{}", serde_json::to_string(&r).unwrap_or_default());
+                        ExitCode::SUCCESS
+                    }
+                    Err(e) => {
+                        eprintln!("send: {e}");
+                        ExitCode::FAILURE
+                    }
+                }
+            })
+        }
+        Command::Record { from, out, seconds } => block_on(async move {
+            match bandwatch::tools::record::record(&from, &out, seconds, shutdown_signal()).await {
+                Ok(r) => {
+                    println!("{}", serde_json::to_string(&r).unwrap_or_default());
+                    ExitCode::SUCCESS
+                }
+                Err(e) => {
+                    eprintln!("record: {e}");
+                    ExitCode::FAILURE
+                }
+            }
+        }),
+        Command::Replay {
+            file,
+            config,
+            source,
+        } => {
+            let cfg = match bandwatch::config::load(&config) {
+                Ok(c) => c,
+                Err(e) => {
+                    eprintln!("{e}");
+                    return ExitCode::from(2);
+                }
+            };
+            let stdout = std::io::stdout();
+            let mut lock = std::io::BufWriter::new(stdout.lock());
+            match bandwatch::tools::replay::replay(&cfg, &file, source.as_deref(), &mut lock) {
+                Ok(state) => {
+                    let rejected = state.rejected();
+                    tracing::info!(
+                        frames = bandwatch::snapshot::SourceShared::get(&state.frames),
+                        missing = bandwatch::snapshot::SourceShared::get(&state.samples_missing),
+                        ?rejected,
+                        "replay done"
+                    );
+                    ExitCode::SUCCESS
+                }
+                Err(e) => {
+                    eprintln!("replay: {e}");
+                    ExitCode::FAILURE
+                }
+            }
+        }
         Command::Run { config, listen } => {
             let mut cfg = match bandwatch::config::load(&config) {
                 Ok(c) => c,
@@ -84,6 +253,16 @@ fn main() -> ExitCode {
                 }
             };
             rt.block_on(run(cfg))
+        }
+    }
+}
+
+fn block_on<F: std::future::Future<Output = ExitCode>>(f: F) -> ExitCode {
+    match tokio::runtime::Builder::new_current_thread().enable_all().build() {
+        Ok(rt) => rt.block_on(f),
+        Err(e) => {
+            eprintln!("cannot start the async runtime: {e}");
+            ExitCode::FAILURE
         }
     }
 }

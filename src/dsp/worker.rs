@@ -48,6 +48,7 @@ pub struct ChannelDsp {
     band_values: Vec<BandValue>,
     spare: Option<Arc<ChannelSnapshot>>,
     seq: u64,
+    blocks_per_turn: usize,
 }
 
 impl ChannelDsp {
@@ -73,9 +74,20 @@ impl ChannelDsp {
             anchor: (0, 0),
             spare: None,
             seq: 0,
+            blocks_per_turn: MAX_BLOCKS_PER_TURN,
             reader,
             shared,
         }
+    }
+
+    /// Limits how many blocks one [`poll`](Self::poll) computes (at least
+    /// 1); `replay` sets 1 so that it sees every published spectrum.
+    pub fn set_blocks_per_turn(&mut self, n: usize) {
+        self.blocks_per_turn = n.max(1);
+    }
+
+    pub fn shared(&self) -> &Arc<ChannelShared> {
+        &self.shared
     }
 
     /// Processes what the ring holds (up to a bounded number of blocks).
@@ -83,7 +95,7 @@ impl ChannelDsp {
     pub fn poll(&mut self) -> bool {
         let mut worked = false;
         let mut blocks = 0;
-        while blocks < MAX_BLOCKS_PER_TURN {
+        while blocks < self.blocks_per_turn {
             match self.reader.read(&mut self.frame[self.filled..]) {
                 ReadEvent::Empty => break,
                 ReadEvent::Mark(m) => {
@@ -209,7 +221,7 @@ impl Workers {
         }
         let wakers = wakers
             .into_iter()
-            .map(|t| t.unwrap_or_else(|| thread::current()))
+            .map(|t| t.unwrap_or_else(thread::current))
             .collect();
         Ok((Workers { stop, handles }, wakers))
     }

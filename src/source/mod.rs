@@ -7,7 +7,13 @@
 //! the same samples.
 //!
 //! - `sim`: the built-in P2 pump scenario, paced in real time
+//! - `net`: `tcp-connect`, `tcp-listen`, `udp` readers (BWF1, lines, raw)
+//! - `serial`: serial lines via tokio-serial
+//! - `framed`: frame checks, sequence tracking and counting for all of them
 
+pub mod framed;
+pub mod net;
+pub mod serial;
 pub mod sim;
 
 use std::sync::atomic::Ordering;
@@ -139,15 +145,16 @@ pub fn spawn_all(
             SourceKind::Sim { seed, speed } => {
                 tokio::spawn(sim::run(spec.sample_rate_hz, seed, speed, out, state, stop))
             }
+            _ => tokio::spawn(net::run(spec, out, state, stop)),
         });
     }
     tasks
 }
 
-/// Records that a source delivered a frame or batch now.
-pub(crate) fn note_frame(state: &SourceShared, bytes: u64) {
+/// Records that a source delivered a good frame or batch now. (Bytes are
+/// counted where they are read, good or bad.)
+pub(crate) fn note_frame(state: &SourceShared) {
     state.frames.fetch_add(1, Ordering::Relaxed);
-    state.bytes.fetch_add(bytes, Ordering::Relaxed);
     state
         .last_frame_unix_ns
         .store(unix_now_ns(), Ordering::Relaxed);

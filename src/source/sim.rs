@@ -113,7 +113,7 @@ const RING_TAU_S: f64 = 0.0012;
 
 impl PumpSim {
     pub fn new(fs: f64, seed: u64) -> PumpSim {
-        let mut rng = Rng(seed ^ 0x5032_5f70_756d_70); // "P2_pump"
+        let mut rng = Rng(seed ^ 0x0050_325f_7075_6d70); // "P2_pump"
         let x1 = SHAFT_HZ;
         let vp = VANES * SHAFT_HZ;
         PumpSim {
@@ -228,7 +228,8 @@ pub async fn run(
             sim.fill_counts(frame);
             let ts = start_ns + (sent as f64 * 1e9 / fs) as u64;
             out.write_interleaved(sent, ts, frame);
-            note_frame(&state, (frame.len() * 3) as u64);
+            note_frame(&state);
+            state.bytes.fetch_add((frame.len() * 3) as u64, Ordering::Relaxed);
             sent += n as u64;
         }
         out.wake();

@@ -1,0 +1,881 @@
+//! BWF1: the project's binary frame. A 36-byte header, `S·C` samples
+//! interleaved by instant, then a CRC-32 over everything before it.
+//!
+//! ```text
+//! offset  bytes  field
+//!      0      4  magic "BWF1"
+//!      4      1  version (1)
+//!      5      1  sample format code (see SampleFormat::code)
+//!      6      2  channels C, 1..=1024              (u16 LE)
+//!      8      4  samples per channel S, 1..=65536  (u32 LE)
+//!     12      8  first_sample                      (u64 LE)
+//!     20      8  timestamp_ns, 0 = unknown         (u64 LE)
+//!     28      8  sample_rate_hz, finite, > 0       (f64 LE)
+//!     36  S·C·w  samples
+//!    end      4  CRC-32/IEEE (crc32fast) over bytes 0..end (u32 LE)
+//! ```
+//!
+//! Decoding is check-then-parse. The [`StreamDecoder`] validates a header
+//! as soon as its 36 bytes are there, and refuses a frame larger than its
+//! `max_frame_bytes` before it waits for (or buffers) the body: so a header
+//! announcing half a gigabyte costs nothing. After a bad header or a bad CRC
+//! it drops one byte and scans for the next magic (a resync). It never
+//! reserves memory on the word of a header; its buffer only holds bytes
+//! that were pushed and not yet consumed.
+
+use super::{encode_samples, EncodeError, SampleFormat, SampleSlice, Samples};
+
+/// The four bytes every frame starts with.
+pub const MAGIC: [u8; 4] = *b"BWF1";
+/// The one version this decoder speaks.
+pub const VERSION: u8 = 1;
+/// Bytes before the samples.
+pub const HEADER_BYTES: usize = 36;
+/// Bytes of the trailing CRC.
+pub const CRC_BYTES: usize = 4;
+/// Largest channel count a header may announce.
+pub const MAX_CHANNELS: u16 = 1024;
+/// Largest samples-per-channel a header may announce.
+pub const MAX_SAMPLES_PER_CHANNEL: u32 = 65536;
+/// Default limit on one frame's size for a stream decoder: 16 MiB, about
+/// 5 s of 16 channels of i32 at 51.2 kHz. Larger frames are refused.
+pub const DEFAULT_MAX_FRAME_BYTES: usize = 16 << 20;
+
+// Field offsets inside the header, for error reports.
+const OFF_VERSION: u64 = 4;
+const OFF_FORMAT: u64 = 5;
+const OFF_CHANNELS: u64 = 6;
+const OFF_SAMPLES: u64 = 8;
+const OFF_RATE: u64 = 28;
+
+/// A frame's header fields, as on the wire.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Header {
+    /// Always [`VERSION`] for frames this module accepts or writes.
+    pub version: u8,
+    /// How each sample is stored.
+    pub format: SampleFormat,
+    /// Channels per instant, C (1..=1024).
+    pub channels: u16,
+    /// Instants in this frame, S (1..=65536).
+    pub samples_per_channel: u32,
+    /// Stream index of this frame's first instant; the next frame should
+    /// start at `first_sample + samples_per_channel`.
+    pub first_sample: u64,
+    /// Time of the first instant, ns since the Unix epoch; 0 = unknown (the
+    /// receiver stamps on arrival).
+    pub timestamp_ns: u64,
+    /// Sampling rate of every channel in the frame.
+    pub sample_rate_hz: f64,
+}
+
+impl Header {
+    /// A version-1 header.
+    pub fn new(
+        format: SampleFormat,
+        channels: u16,
+        samples_per_channel: u32,
+        first_sample: u64,
+        timestamp_ns: u64,
+        sample_rate_hz: f64,
+    ) -> Header {
+        Header {
+            version: VERSION,
+            format,
+            channels,
+            samples_per_channel,
+            first_sample,
+            timestamp_ns,
+            sample_rate_hz,
+        }
+    }
+
+    /// Samples in the frame, all channels: C·S.
+    pub fn sample_count(&self) -> u64 {
+        u64::from(self.channels) * u64::from(self.samples_per_channel)
+    }
+
+    /// Bytes of the sample section: C·S·width.
+    pub fn body_bytes(&self) -> u64 {
+        self.sample_count() * self.format.width() as u64
+    }
+
+    /// Bytes of the whole frame: header, samples and CRC.
+    pub fn frame_bytes(&self) -> u64 {
+        HEADER_BYTES as u64 + self.body_bytes() + CRC_BYTES as u64
+    }
+
+    /// Checks every field against the spec; `offset` is the stream offset
+    /// of the frame's first byte, used in the error.
+    ///
+    /// # Errors
+    /// The first field out of range, in wire order.
+    pub fn validate(&self, offset: u64) -> Result<(), FrameError> {
+        if self.version != VERSION {
+            return Err(FrameError::UnsupportedVersion {
+                offset: offset + OFF_VERSION,
+                version: self.version,
+            });
+        }
+        if !(1..=MAX_CHANNELS).contains(&self.channels) {
+            return Err(FrameError::BadChannelCount {
+                offset: offset + OFF_CHANNELS,
+                count: self.channels,
+            });
+        }
+        if !(1..=MAX_SAMPLES_PER_CHANNEL).contains(&self.samples_per_channel) {
+            return Err(FrameError::BadSampleCount {
+                offset: offset + OFF_SAMPLES,
+                count: self.samples_per_channel,
+            });
+        }
+        if !(self.sample_rate_hz.is_finite() && self.sample_rate_hz > 0.0) {
+            return Err(FrameError::BadSampleRate {
+                offset: offset + OFF_RATE,
+                rate: self.sample_rate_hz,
+            });
+        }
+        Ok(())
+    }
+
+    /// Reads and validates a header from the first [`HEADER_BYTES`] of
+    /// `bytes`. `offset` is the stream offset of `bytes[0]`.
+    ///
+    /// # Errors
+    /// [`FrameError::Truncated`] if fewer than 36 bytes are given, else the
+    /// first bad field in wire order (magic, version, format, channels,
+    /// samples, rate), with its own offset.
+    pub fn parse(bytes: &[u8], offset: u64) -> Result<Header, FrameError> {
+        let Some(h) = bytes.get(..HEADER_BYTES) else {
+            return Err(FrameError::Truncated {
+                offset: offset + bytes.len() as u64,
+                needed: HEADER_BYTES as u64,
+                available: bytes.len() as u64,
+            });
+        };
+        if h[0..4] != MAGIC {
+            return Err(FrameError::BadMagic { offset });
+        }
+        let version = h[4];
+        if version != VERSION {
+            return Err(FrameError::UnsupportedVersion {
+                offset: offset + OFF_VERSION,
+                version,
+            });
+        }
+        let Some(format) = SampleFormat::from_code(h[5]) else {
+            return Err(FrameError::BadFormat {
+                offset: offset + OFF_FORMAT,
+                code: h[5],
+            });
+        };
+        let header = Header {
+            version,
+            format,
+            channels: u16::from_le_bytes([h[6], h[7]]),
+            samples_per_channel: u32::from_le_bytes([h[8], h[9], h[10], h[11]]),
+            first_sample: u64::from_le_bytes([
+                h[12], h[13], h[14], h[15], h[16], h[17], h[18], h[19],
+            ]),
+            timestamp_ns: u64::from_le_bytes([
+                h[20], h[21], h[22], h[23], h[24], h[25], h[26], h[27],
+            ]),
+            sample_rate_hz: f64::from_le_bytes([
+                h[28], h[29], h[30], h[31], h[32], h[33], h[34], h[35],
+            ]),
+        };
+        header.validate(offset)?;
+        Ok(header)
+    }
+
+    /// Appends the 36 header bytes to `out` (no validation).
+    pub fn write_to(&self, out: &mut Vec<u8>) {
+        out.extend_from_slice(&MAGIC);
+        out.push(self.version);
+        out.push(self.format.code());
+        out.extend_from_slice(&self.channels.to_le_bytes());
+        out.extend_from_slice(&self.samples_per_channel.to_le_bytes());
+        out.extend_from_slice(&self.first_sample.to_le_bytes());
+        out.extend_from_slice(&self.timestamp_ns.to_le_bytes());
+        out.extend_from_slice(&self.sample_rate_hz.to_le_bytes());
+    }
+}
+
+/// One decoded frame.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Frame {
+    pub header: Header,
+    /// `channels · samples_per_channel` samples, interleaved by instant.
+    pub samples: Samples,
+}
+
+/// What was wrong with a frame. Offsets count bytes from the start of the
+/// stream (stream decoder, since its creation or last [`StreamDecoder::finish`])
+/// or of the datagram.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum FrameError {
+    /// `offset`: where a frame was expected to start.
+    #[error("byte {offset}: bad magic, expected \"BWF1\"")]
+    BadMagic { offset: u64 },
+    /// `offset`: of the version byte.
+    #[error("byte {offset}: version {version} is not supported (only 1)")]
+    UnsupportedVersion { offset: u64, version: u8 },
+    /// `offset`: of the format byte.
+    #[error("byte {offset}: sample format code {code} is unknown (1..=5)")]
+    BadFormat { offset: u64, code: u8 },
+    /// `offset`: of the channel count field.
+    #[error("byte {offset}: channel count {count} is outside 1..=1024")]
+    BadChannelCount { offset: u64, count: u16 },
+    /// `offset`: of the samples-per-channel field.
+    #[error("byte {offset}: samples per channel {count} is outside 1..=65536")]
+    BadSampleCount { offset: u64, count: u32 },
+    /// `offset`: of the sample rate field.
+    #[error("byte {offset}: sample rate {rate} Hz is not a finite number > 0")]
+    BadSampleRate { offset: u64, rate: f64 },
+    /// `offset`: of the frame start; `bytes` is the announced frame size.
+    #[error("byte {offset}: frame of {bytes} bytes exceeds the limit of {limit} bytes")]
+    TooLarge { offset: u64, bytes: u64, limit: u64 },
+    /// `offset`: of the frame start; `expected` is the CRC stored in the
+    /// frame, `actual` the CRC computed over its bytes.
+    #[error("byte {offset}: CRC mismatch, frame says {expected:#010x}, bytes give {actual:#010x}")]
+    CrcMismatch {
+        offset: u64,
+        expected: u32,
+        actual: u32,
+    },
+    /// `offset`: where the input ended; `needed` bytes were required from
+    /// the frame start, `available` were there.
+    #[error("byte {offset}: input ends inside a frame ({available} of {needed} bytes)")]
+    Truncated {
+        offset: u64,
+        needed: u64,
+        available: u64,
+    },
+    /// `offset`: of the first byte after the frame (datagrams only).
+    #[error("byte {offset}: {extra} bytes after the end of the frame")]
+    TrailingBytes { offset: u64, extra: u64 },
+}
+
+/// The kind of a [`FrameError`], for counting and metric labels.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum RejectReason {
+    BadMagic,
+    UnsupportedVersion,
+    BadFormat,
+    BadChannelCount,
+    BadSampleCount,
+    BadSampleRate,
+    TooLarge,
+    CrcMismatch,
+    Truncated,
+    TrailingBytes,
+}
+
+impl RejectReason {
+    pub const ALL: [RejectReason; 10] = [
+        RejectReason::BadMagic,
+        RejectReason::UnsupportedVersion,
+        RejectReason::BadFormat,
+        RejectReason::BadChannelCount,
+        RejectReason::BadSampleCount,
+        RejectReason::BadSampleRate,
+        RejectReason::TooLarge,
+        RejectReason::CrcMismatch,
+        RejectReason::Truncated,
+        RejectReason::TrailingBytes,
+    ];
+
+    /// Snake-case name, usable as a metric label value.
+    pub const fn as_str(self) -> &'static str {
+        match self {
+            RejectReason::BadMagic => "bad_magic",
+            RejectReason::UnsupportedVersion => "unsupported_version",
+            RejectReason::BadFormat => "bad_format",
+            RejectReason::BadChannelCount => "bad_channel_count",
+            RejectReason::BadSampleCount => "bad_sample_count",
+            RejectReason::BadSampleRate => "bad_sample_rate",
+            RejectReason::TooLarge => "too_large",
+            RejectReason::CrcMismatch => "crc_mismatch",
+            RejectReason::Truncated => "truncated",
+            RejectReason::TrailingBytes => "trailing_bytes",
+        }
+    }
+}
+
+impl FrameError {
+    pub fn reason(&self) -> RejectReason {
+        match self {
+            FrameError::BadMagic { .. } => RejectReason::BadMagic,
+            FrameError::UnsupportedVersion { .. } => RejectReason::UnsupportedVersion,
+            FrameError::BadFormat { .. } => RejectReason::BadFormat,
+            FrameError::BadChannelCount { .. } => RejectReason::BadChannelCount,
+            FrameError::BadSampleCount { .. } => RejectReason::BadSampleCount,
+            FrameError::BadSampleRate { .. } => RejectReason::BadSampleRate,
+            FrameError::TooLarge { .. } => RejectReason::TooLarge,
+            FrameError::CrcMismatch { .. } => RejectReason::CrcMismatch,
+            FrameError::Truncated { .. } => RejectReason::Truncated,
+            FrameError::TrailingBytes { .. } => RejectReason::TrailingBytes,
+        }
+    }
+
+    /// The byte offset the error names.
+    pub fn offset(&self) -> u64 {
+        match *self {
+            FrameError::BadMagic { offset }
+            | FrameError::UnsupportedVersion { offset, .. }
+            | FrameError::BadFormat { offset, .. }
+            | FrameError::BadChannelCount { offset, .. }
+            | FrameError::BadSampleCount { offset, .. }
+            | FrameError::BadSampleRate { offset, .. }
+            | FrameError::TooLarge { offset, .. }
+            | FrameError::CrcMismatch { offset, .. }
+            | FrameError::Truncated { offset, .. }
+            | FrameError::TrailingBytes { offset, .. } => offset,
+        }
+    }
+}
+
+/// Counters of one decoder, for metrics. Monotonic, never reset.
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
+pub struct DecoderStats {
+    /// Bytes handed to the decoder.
+    pub bytes_in: u64,
+    /// Good frames returned.
+    pub frames: u64,
+    /// Bytes of the good frames (header, samples, CRC).
+    pub frame_bytes: u64,
+    /// Frames whose CRC did not match (also in `rejected(CrcMismatch)`).
+    pub crc_errors: u64,
+    /// Times a scan after an error found the next magic.
+    pub resyncs: u64,
+    /// Bytes dropped: bad frames, junk between frames, a partial frame at
+    /// the end of a stream. For a stream decoder,
+    /// `bytes_in == frame_bytes + bytes_skipped + buffered()`.
+    pub bytes_skipped: u64,
+    rejected: [u64; RejectReason::ALL.len()],
+}
+
+impl DecoderStats {
+    /// Frames (or stretches of input) rejected for `reason`.
+    pub fn rejected(&self, reason: RejectReason) -> u64 {
+        self.rejected[reason as usize]
+    }
+
+    /// All rejections, every reason.
+    pub fn rejected_total(&self) -> u64 {
+        self.rejected.iter().sum()
+    }
+
+    fn count(&mut self, err: &FrameError) {
+        self.rejected[err.reason() as usize] += 1;
+        if err.reason() == RejectReason::CrcMismatch {
+            self.crc_errors += 1;
+        }
+    }
+}
+
+/// Appends one frame to `out`.
+///
+/// `samples` must hold `channels · samples_per_channel` values interleaved
+/// by instant, in the type that matches `header.format` (`I32` for i24).
+///
+/// # Errors
+/// An invalid header ([`EncodeError::Header`]), a wrong sample count or
+/// type, an i24 value out of range. On error `out` is left as it was.
+pub fn encode_into(
+    header: &Header,
+    samples: SampleSlice<'_>,
+    out: &mut Vec<u8>,
+) -> Result<(), EncodeError> {
+    header.validate(0).map_err(EncodeError::Header)?;
+    if samples.len() as u64 != header.sample_count() {
+        return Err(EncodeError::CountMismatch {
+            expected: header.sample_count(),
+            given: samples.len(),
+        });
+    }
+    let start = out.len();
+    // Size is known and checked; usize holds it on 32- and 64-bit targets
+    // (at most 512 MiB + 40).
+    out.reserve(header.frame_bytes() as usize);
+    header.write_to(out);
+    if let Err(e) = encode_samples(header.format, samples, out) {
+        out.truncate(start);
+        return Err(e);
+    }
+    let crc = crc32fast::hash(&out[start..]);
+    out.extend_from_slice(&crc.to_le_bytes());
+    Ok(())
+}
+
+/// One frame as a new vector. See [`encode_into`].
+///
+/// # Errors
+/// As [`encode_into`].
+pub fn encode(header: &Header, samples: SampleSlice<'_>) -> Result<Vec<u8>, EncodeError> {
+    let mut out = Vec::new();
+    encode_into(header, samples, &mut out)?;
+    Ok(out)
+}
+
+/// Decodes a datagram that must hold exactly one frame.
+///
+/// # Errors
+/// Any header error; [`FrameError::Truncated`] if the datagram is shorter
+/// than the frame it announces, [`FrameError::TrailingBytes`] if longer,
+/// [`FrameError::CrcMismatch`]. Offsets are from the datagram's start.
+pub fn decode_datagram(datagram: &[u8]) -> Result<Frame, FrameError> {
+    let mut samples = Samples::default();
+    let header = decode_datagram_into(datagram, &mut samples)?;
+    Ok(Frame { header, samples })
+}
+
+/// As [`decode_datagram`], decoding the samples into a reused buffer.
+/// `samples` is only changed when the frame is good.
+///
+/// # Errors
+/// As [`decode_datagram`].
+pub fn decode_datagram_into(datagram: &[u8], samples: &mut Samples) -> Result<Header, FrameError> {
+    let n = datagram.len().min(MAGIC.len());
+    if datagram[..n] != MAGIC[..n] {
+        return Err(FrameError::BadMagic { offset: 0 });
+    }
+    let header = Header::parse(datagram, 0)?;
+    let total = header.frame_bytes();
+    let len = datagram.len() as u64;
+    if len < total {
+        return Err(FrameError::Truncated {
+            offset: len,
+            needed: total,
+            available: len,
+        });
+    }
+    if len > total {
+        return Err(FrameError::TrailingBytes {
+            offset: total,
+            extra: len - total,
+        });
+    }
+    let frame = checked_frame(datagram, &header, 0)?;
+    samples.decode_from(header.format, frame);
+    Ok(header)
+}
+
+/// Checks the CRC of a complete frame (`bytes.len() == frame_bytes`) and
+/// returns its sample section.
+fn checked_frame<'a>(
+    bytes: &'a [u8],
+    header: &Header,
+    offset: u64,
+) -> Result<&'a [u8], FrameError> {
+    let crc_at = bytes.len() - CRC_BYTES;
+    let (covered, tail) = bytes.split_at(crc_at);
+    let expected = u32::from_le_bytes([tail[0], tail[1], tail[2], tail[3]]);
+    let actual = crc32fast::hash(covered);
+    if expected != actual {
+        return Err(FrameError::CrcMismatch {
+            offset,
+            expected,
+            actual,
+        });
+    }
+    debug_assert_eq!(bytes.len() as u64, header.frame_bytes());
+    Ok(&covered[HEADER_BYTES..])
+}
+
+/// A datagram decoder that keeps [`DecoderStats`] (UDP sources).
+#[derive(Debug, Default)]
+pub struct DatagramDecoder {
+    stats: DecoderStats,
+}
+
+impl DatagramDecoder {
+    pub fn new() -> DatagramDecoder {
+        DatagramDecoder::default()
+    }
+
+    /// Decodes one datagram into `samples`, counting the outcome. A bad
+    /// datagram counts whole in `bytes_skipped`.
+    ///
+    /// # Errors
+    /// As [`decode_datagram`].
+    pub fn decode(&mut self, datagram: &[u8], samples: &mut Samples) -> Result<Header, FrameError> {
+        let len = datagram.len() as u64;
+        self.stats.bytes_in += len;
+        match decode_datagram_into(datagram, samples) {
+            Ok(h) => {
+                self.stats.frames += 1;
+                self.stats.frame_bytes += len;
+                Ok(h)
+            }
+            Err(e) => {
+                self.stats.count(&e);
+                self.stats.bytes_skipped += len;
+                Err(e)
+            }
+        }
+    }
+
+    pub fn stats(&self) -> &DecoderStats {
+        &self.stats
+    }
+}
+
+/// Incremental decoder for a byte stream of frames (TCP, serial, a file).
+///
+/// Push bytes as they arrive, then call [`StreamDecoder::next_frame_into`]
+/// until it returns `Ok(None)`. An `Err` reports one bad frame or one run of
+/// junk; the decoder has already stepped past it, so keep calling.
+#[derive(Debug)]
+pub struct StreamDecoder {
+    /// Pushed bytes; `buf[start..]` are not consumed yet.
+    buf: Vec<u8>,
+    /// First unconsumed byte in `buf`.
+    start: usize,
+    /// Stream offset of `buf[0]`, for error reports.
+    base: u64,
+    /// Frames announcing more bytes than this are refused from their header.
+    max_frame_bytes: usize,
+    /// After an error: looking for the next magic.
+    scanning: bool,
+    stats: DecoderStats,
+}
+
+impl Default for StreamDecoder {
+    fn default() -> Self {
+        StreamDecoder::new()
+    }
+}
+
+enum Step {
+    /// Need more bytes.
+    Wait,
+    /// Found a good frame of this many bytes; samples at `HEADER_BYTES..`.
+    Frame(Header, usize),
+    /// A bad frame or junk at the current position.
+    Bad(FrameError),
+    /// Scanning: drop this many bytes; `true` if a magic follows them.
+    Skip(usize, bool),
+}
+
+impl StreamDecoder {
+    /// A decoder with [`DEFAULT_MAX_FRAME_BYTES`].
+    pub fn new() -> StreamDecoder {
+        StreamDecoder::with_max_frame_bytes(DEFAULT_MAX_FRAME_BYTES)
+    }
+
+    /// A decoder that refuses frames larger than `max_frame_bytes` (header,
+    /// samples and CRC), so it never buffers more than that for one frame.
+    pub fn with_max_frame_bytes(max_frame_bytes: usize) -> StreamDecoder {
+        StreamDecoder {
+            buf: Vec::new(),
+            start: 0,
+            base: 0,
+            max_frame_bytes,
+            scanning: false,
+            stats: DecoderStats::default(),
+        }
+    }
+
+    /// The frame size limit.
+    pub fn max_frame_bytes(&self) -> usize {
+        self.max_frame_bytes
+    }
+
+    /// Appends bytes from the transport. Consumed bytes are compacted away
+    /// first (amortised: only when they outweigh the rest), so the buffer
+    /// stays within about twice the unconsumed bytes plus this push.
+    pub fn push(&mut self, bytes: &[u8]) {
+        self.stats.bytes_in += bytes.len() as u64;
+        if self.start == self.buf.len() {
+            self.base += self.start as u64;
+            self.buf.clear();
+            self.start = 0;
+        } else if self.start > 0 && self.start >= self.buf.len() - self.start {
+            self.base += self.start as u64;
+            self.buf.drain(..self.start);
+            self.start = 0;
+        }
+        self.buf.extend_from_slice(bytes);
+    }
+
+    /// The next frame, decoded into a new [`Samples`]. See
+    /// [`StreamDecoder::next_frame_into`].
+    ///
+    /// # Errors
+    /// As [`StreamDecoder::next_frame_into`].
+    pub fn next_frame(&mut self) -> Result<Option<Frame>, FrameError> {
+        let mut samples = Samples::default();
+        Ok(self
+            .next_frame_into(&mut samples)?
+            .map(|header| Frame { header, samples }))
+    }
+
+    /// The next good frame's header, with its samples decoded into
+    /// `samples` (reused: no allocation once it has grown to a frame's
+    /// size). `Ok(None)`: no complete frame buffered, push more bytes.
+    ///
+    /// # Errors
+    /// One bad frame or junk run, already counted and skipped: the decoder
+    /// scans on for the next magic at the next call. `samples` is only
+    /// changed when a good frame is returned.
+    pub fn next_frame_into(&mut self, samples: &mut Samples) -> Result<Option<Header>, FrameError> {
+        loop {
+            match self.step() {
+                Step::Wait => return Ok(None),
+                Step::Skip(n, found) => {
+                    self.skip(n);
+                    if found {
+                        self.scanning = false;
+                        self.stats.resyncs += 1;
+                    } else {
+                        return Ok(None);
+                    }
+                }
+                Step::Bad(err) => {
+                    self.stats.count(&err);
+                    // Drop the first byte of the bad frame, then scan for the
+                    // next magic: the rest of the frame may hold a good one
+                    // if the bad part was its length.
+                    self.skip(1);
+                    self.scanning = true;
+                    return Err(err);
+                }
+                Step::Frame(header, total) => {
+                    let body = &self.buf[self.start + HEADER_BYTES..self.start + total - CRC_BYTES];
+                    samples.decode_from(header.format, body);
+                    self.start += total;
+                    self.stats.frames += 1;
+                    self.stats.frame_bytes += total as u64;
+                    return Ok(Some(header));
+                }
+            }
+        }
+    }
+
+    /// Ends the stream (EOF, or before a reconnect): drops what is buffered,
+    /// counted in `bytes_skipped`, and starts offsets at 0 again. Stats are
+    /// kept.
+    ///
+    /// # Errors
+    /// [`FrameError::Truncated`] (counted) if a frame had begun and was not
+    /// complete. Leftover junk after an already reported error is dropped
+    /// without a second error.
+    pub fn finish(&mut self) -> Result<(), FrameError> {
+        let left = self.buffered();
+        let result = if left > 0 && !self.scanning {
+            let needed = if left >= HEADER_BYTES {
+                Header::parse(&self.buf[self.start..], 0)
+                    .map(|h| h.frame_bytes())
+                    .unwrap_or(HEADER_BYTES as u64)
+            } else {
+                HEADER_BYTES as u64
+            };
+            let err = FrameError::Truncated {
+                offset: self.stream_offset() + left as u64,
+                needed,
+                available: left as u64,
+            };
+            self.stats.count(&err);
+            Err(err)
+        } else {
+            Ok(())
+        };
+        self.stats.bytes_skipped += left as u64;
+        self.buf.clear();
+        self.start = 0;
+        self.base = 0;
+        self.scanning = false;
+        result
+    }
+
+    /// Counters so far.
+    pub fn stats(&self) -> &DecoderStats {
+        &self.stats
+    }
+
+    /// Bytes pushed and not yet consumed.
+    pub fn buffered(&self) -> usize {
+        self.buf.len() - self.start
+    }
+
+    /// Capacity of the internal buffer, in bytes (to check memory bounds).
+    pub fn buffer_capacity(&self) -> usize {
+        self.buf.capacity()
+    }
+
+    /// Stream offset of the next unconsumed byte.
+    pub fn stream_offset(&self) -> u64 {
+        self.base + self.start as u64
+    }
+
+    fn skip(&mut self, n: usize) {
+        self.start += n;
+        self.stats.bytes_skipped += n as u64;
+    }
+
+    /// Looks at the unconsumed bytes and says what to do; changes nothing.
+    fn step(&self) -> Step {
+        let avail = &self.buf[self.start..];
+        let offset = self.stream_offset();
+        if self.scanning {
+            return match avail.windows(MAGIC.len()).position(|w| w == MAGIC) {
+                Some(i) => Step::Skip(i, true),
+                None => Step::Skip(avail.len() - magic_prefix_suffix(avail), false),
+            };
+        }
+        // Refuse a wrong magic as soon as its first byte is there.
+        let n = avail.len().min(MAGIC.len());
+        if avail[..n] != MAGIC[..n] {
+            return Step::Bad(FrameError::BadMagic { offset });
+        }
+        if avail.len() < HEADER_BYTES {
+            return Step::Wait;
+        }
+        let header = match Header::parse(avail, offset) {
+            Ok(h) => h,
+            Err(e) => return Step::Bad(e),
+        };
+        let total = header.frame_bytes();
+        if total > self.max_frame_bytes as u64 {
+            return Step::Bad(FrameError::TooLarge {
+                offset,
+                bytes: total,
+                limit: self.max_frame_bytes as u64,
+            });
+        }
+        // total <= max_frame_bytes, a usize.
+        let total = total as usize;
+        if avail.len() < total {
+            return Step::Wait;
+        }
+        match checked_frame(&avail[..total], &header, offset) {
+            Ok(_) => Step::Frame(header, total),
+            Err(e) => Step::Bad(e),
+        }
+    }
+}
+
+/// Length of the longest suffix of `bytes` that is a proper prefix of the
+/// magic (0..=3): those bytes may begin a frame once more arrive.
+fn magic_prefix_suffix(bytes: &[u8]) -> usize {
+    (1..MAGIC.len())
+        .rev()
+        .find(|&k| bytes.len() >= k && bytes[bytes.len() - k..] == MAGIC[..k])
+        .unwrap_or(0)
+}
+
+#[cfg(test)]
+#[allow(clippy::unwrap_used)] // tests may unwrap: a panic is a failed test
+mod tests {
+    use super::*;
+
+    fn frame_i16(first: u64, values: &[i16], channels: u16) -> Vec<u8> {
+        let s = (values.len() / channels as usize) as u32;
+        let h = Header::new(SampleFormat::I16, channels, s, first, 0, 25_600.0);
+        encode(&h, SampleSlice::I16(values)).unwrap()
+    }
+
+    #[test]
+    fn layout_matches_the_spec_table() {
+        let h = Header::new(SampleFormat::I16, 2, 1, 0x0102, 0x0304, 1.0);
+        let f = encode(&h, SampleSlice::I16(&[-1, 2])).unwrap();
+        assert_eq!(f.len(), 36 + 4 + 4);
+        assert_eq!(&f[0..4], &[0x42, 0x57, 0x46, 0x31]);
+        assert_eq!(f[4], 1);
+        assert_eq!(f[5], 1);
+        assert_eq!(&f[6..8], &[2, 0]);
+        assert_eq!(&f[8..12], &[1, 0, 0, 0]);
+        assert_eq!(&f[12..14], &[0x02, 0x01]);
+        assert_eq!(&f[20..22], &[0x04, 0x03]);
+        assert_eq!(&f[28..36], &1.0f64.to_le_bytes());
+        assert_eq!(&f[36..40], &[0xFF, 0xFF, 2, 0]);
+        assert_eq!(&f[40..44], &crc32fast::hash(&f[..40]).to_le_bytes());
+    }
+
+    #[test]
+    fn magic_prefix_suffix_finds_partial_magics() {
+        assert_eq!(magic_prefix_suffix(b""), 0);
+        assert_eq!(magic_prefix_suffix(b"xxB"), 1);
+        assert_eq!(magic_prefix_suffix(b"xBW"), 2);
+        assert_eq!(magic_prefix_suffix(b"BWF"), 3);
+        assert_eq!(magic_prefix_suffix(b"BWFx"), 0);
+    }
+
+    #[test]
+    fn wrong_magic_is_refused_from_its_first_byte() {
+        let mut d = StreamDecoder::new();
+        d.push(b"X");
+        assert_eq!(d.next_frame(), Err(FrameError::BadMagic { offset: 0 }));
+        assert_eq!(d.next_frame(), Ok(None));
+        assert_eq!(d.stats().bytes_skipped, 1);
+    }
+
+    #[test]
+    fn junk_before_the_first_frame_is_skipped_and_counted() {
+        let f = frame_i16(5, &[1, 2, 3, 4], 2);
+        let mut d = StreamDecoder::new();
+        d.push(b"noise");
+        d.push(&f);
+        assert_eq!(d.next_frame(), Err(FrameError::BadMagic { offset: 0 }));
+        let got = d.next_frame().unwrap().unwrap();
+        assert_eq!(got.header.first_sample, 5);
+        assert_eq!(d.stats().resyncs, 1);
+        assert_eq!(d.stats().bytes_skipped, 5);
+        assert_eq!(d.next_frame(), Ok(None));
+    }
+
+    #[test]
+    fn finish_reports_a_partial_frame() {
+        let f = frame_i16(0, &[1, 2], 1);
+        let mut d = StreamDecoder::new();
+        d.push(&f[..40]);
+        assert_eq!(d.next_frame(), Ok(None));
+        assert_eq!(
+            d.finish(),
+            Err(FrameError::Truncated {
+                offset: 40,
+                needed: f.len() as u64,
+                available: 40
+            })
+        );
+        assert_eq!(d.stats().bytes_skipped, 40);
+        assert_eq!(d.stream_offset(), 0);
+        d.push(&f);
+        assert!(d.next_frame().unwrap().is_some());
+    }
+
+    #[test]
+    fn datagram_trailing_and_short() {
+        let f = frame_i16(0, &[1, 2], 1);
+        let mut long = f.clone();
+        long.push(0);
+        assert_eq!(
+            decode_datagram(&long),
+            Err(FrameError::TrailingBytes {
+                offset: f.len() as u64,
+                extra: 1
+            })
+        );
+        assert_eq!(
+            decode_datagram(&f[..f.len() - 1]),
+            Err(FrameError::Truncated {
+                offset: f.len() as u64 - 1,
+                needed: f.len() as u64,
+                available: f.len() as u64 - 1
+            })
+        );
+        assert!(matches!(
+            decode_datagram(&f[..10]),
+            Err(FrameError::Truncated { offset: 10, .. })
+        ));
+        assert_eq!(
+            decode_datagram(b""),
+            Err(FrameError::Truncated {
+                offset: 0,
+                needed: 36,
+                available: 0
+            })
+        );
+    }
+}

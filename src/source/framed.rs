@@ -1,0 +1,291 @@
+//! From decoded frames to the rings, for every transport: checks a frame
+//! against the source's config, follows its sequence, and counts and logs
+//! everything that is not passed on.
+//!
+//! Sequence rule (BWF1): the next frame's `first_sample` should be the
+//! previous one's plus S. Larger: the instants in between are lost (counted
+//! in `samples_missing`, and the ring marks a gap so no block spans it).
+//! Smaller: a duplicate or a late frame, dropped and counted in
+//! `frames_late`. A new connection restarts the sequence.
+
+use std::sync::atomic::Ordering;
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+
+use crate::config::{Framing, StreamSpec};
+use crate::counters::GapReason;
+use crate::frame::bwf1::{FrameError, Header, StreamDecoder};
+use crate::frame::lines::{LineBatch, LineDecoder, LineEvent};
+use crate::frame::raw::RawDecoder;
+use crate::frame::Samples;
+use crate::snapshot::{unix_now_ns, SourceShared};
+use crate::source::{note_frame, SourceOutputs};
+
+/// Error logs of one kind are written at most this often per source.
+const LOG_EVERY: Duration = Duration::from_secs(5);
+
+/// Rate limiter for repeated error logs: counts stay exact, logs are sparse.
+#[derive(Debug, Default)]
+pub struct LogLimiter {
+    last: Vec<(&'static str, Instant, u64)>,
+}
+
+impl LogLimiter {
+    /// Returns `Some(suppressed)` when a line for `key` may be logged now,
+    /// with the number of occurrences not logged since the last one.
+    pub fn allow(&mut self, key: &'static str) -> Option<u64> {
+        let now = Instant::now();
+        match self.last.iter_mut().find(|(k, ..)| *k == key) {
+            None => {
+                self.last.push((key, now, 0));
+                Some(0)
+            }
+            Some((_, t, n)) if now.duration_since(*t) >= LOG_EVERY => {
+                let s = *n;
+                *t = now;
+                *n = 0;
+                Some(s)
+            }
+            Some((.., n)) => {
+                *n += 1;
+                None
+            }
+        }
+    }
+}
+
+/// Where decoded samples go, with the checks of this source.
+pub struct FrameSink {
+    pub out: SourceOutputs,
+    pub state: Arc<SourceShared>,
+    channels: usize,
+    sample_rate_hz: f64,
+    next_sample: Option<u64>,
+    pub logs: LogLimiter,
+}
+
+impl FrameSink {
+    pub fn new(out: SourceOutputs, state: Arc<SourceShared>, sample_rate_hz: f64) -> FrameSink {
+        FrameSink {
+            channels: out.width(),
+            out,
+            state,
+            sample_rate_hz,
+            next_sample: None,
+            logs: LogLimiter::default(),
+        }
+    }
+
+    /// A new connection or a reopened port: the sequence starts over and
+    /// the rings mark a restart.
+    pub fn restart(&mut self) {
+        self.next_sample = None;
+        self.out.mark_discontinuity(GapReason::Restart);
+    }
+
+    /// Counts and logs a rejected frame or connection.
+    pub fn reject(&mut self, reason: &'static str, detail: &dyn std::fmt::Display) {
+        self.state.add_rejected(reason, 1);
+        if let Some(suppressed) = self.logs.allow(reason) {
+            tracing::warn!(source = %self.state.name, reason, suppressed, "rejected: {detail}");
+        }
+    }
+
+    /// Counts a decoder error.
+    pub fn frame_error(&mut self, e: &FrameError) {
+        if matches!(e, FrameError::CrcMismatch { .. }) {
+            self.state.crc_errors.fetch_add(1, Ordering::Relaxed);
+        }
+        self.reject(e.reason().as_str(), e);
+    }
+
+    /// Passes one BWF1 frame on, if it fits this source.
+    pub fn bwf1(&mut self, h: &Header, samples: &Samples) {
+        if h.channels as usize != self.channels {
+            let msg = format!(
+                "frame at sample {} has {} channels, the config says {}",
+                h.first_sample, h.channels, self.channels
+            );
+            self.reject("channel_count_mismatch", &msg);
+            return;
+        }
+        if (h.sample_rate_hz - self.sample_rate_hz).abs() > 1e-6 * self.sample_rate_hz {
+            let msg = format!(
+                "frame at sample {} says {} Hz, the config says {} Hz",
+                h.first_sample, h.sample_rate_hz, self.sample_rate_hz
+            );
+            self.reject("sample_rate_mismatch", &msg);
+            return;
+        }
+        let s = h.samples_per_channel as u64;
+        if let Some(next) = self.next_sample {
+            if h.first_sample < next {
+                self.state.frames_late.fetch_add(1, Ordering::Relaxed);
+                if let Some(suppressed) = self.logs.allow("late") {
+                    tracing::debug!(source = %self.state.name, first_sample = h.first_sample, expected = next, suppressed, "duplicate or late frame dropped");
+                }
+                return;
+            }
+            if h.first_sample > next {
+                let missing = h.first_sample - next;
+                self.state
+                    .samples_missing
+                    .fetch_add(missing, Ordering::Relaxed);
+                if let Some(suppressed) = self.logs.allow("gap") {
+                    tracing::warn!(source = %self.state.name, expected = next, got = h.first_sample, missing, suppressed, "gap in the sample sequence");
+                }
+            }
+        }
+        self.next_sample = Some(h.first_sample + s);
+        let ts = if h.timestamp_ns == 0 {
+            unix_now_ns()
+        } else {
+            h.timestamp_ns
+        };
+        match samples {
+            Samples::I16(v) => self.out.write_interleaved(h.first_sample, ts, v),
+            Samples::I32(v) => self.out.write_interleaved(h.first_sample, ts, v),
+            Samples::F32(v) => self.out.write_interleaved(h.first_sample, ts, v),
+            Samples::F64(v) => self.out.write_interleaved(h.first_sample, ts, v),
+        }
+        note_frame(&self.state);
+    }
+
+    /// Passes a run of instants from `lines` or `raw` framing on. These
+    /// framings carry no time: the run is stamped on arrival.
+    pub fn instants(&mut self, first_sample: u64, samples: &Samples) {
+        if samples.is_empty() {
+            return;
+        }
+        if let Some(next) = self.next_sample {
+            if first_sample > next {
+                self.state
+                    .samples_missing
+                    .fetch_add(first_sample - next, Ordering::Relaxed);
+            }
+        }
+        let ts = unix_now_ns();
+        match samples {
+            Samples::I16(v) => self.out.write_interleaved(first_sample, ts, v),
+            Samples::I32(v) => self.out.write_interleaved(first_sample, ts, v),
+            Samples::F32(v) => self.out.write_interleaved(first_sample, ts, v),
+            Samples::F64(v) => self.out.write_interleaved(first_sample, ts, v),
+        }
+        self.next_sample = Some(first_sample + (samples.len() / self.channels.max(1)) as u64);
+        note_frame(&self.state);
+    }
+}
+
+/// The decoder of a stream transport, whatever its framing.
+pub enum StreamFraming {
+    Bwf1 {
+        decoder: StreamDecoder,
+        samples: Samples,
+    },
+    Lines {
+        decoder: LineDecoder,
+        batch: LineBatch,
+        samples: Samples,
+    },
+    Raw {
+        decoder: RawDecoder,
+        samples: Samples,
+    },
+}
+
+impl StreamFraming {
+    /// # Errors
+    /// When the channel count is outside what the framing supports (the
+    /// config validation already rules that out).
+    pub fn new(spec: &StreamSpec, channels: usize) -> Result<StreamFraming, String> {
+        Ok(match spec.framing {
+            Framing::Bwf1 => StreamFraming::Bwf1 {
+                decoder: StreamDecoder::with_max_frame_bytes(spec.max_frame_bytes),
+                samples: Samples::default(),
+            },
+            Framing::Lines => StreamFraming::Lines {
+                decoder: LineDecoder::new(channels),
+                batch: LineBatch::default(),
+                samples: Samples::F64(Vec::new()),
+            },
+            Framing::Raw(format) => StreamFraming::Raw {
+                decoder: RawDecoder::new(format, channels).map_err(|e| e.to_string())?,
+                samples: Samples::default(),
+            },
+        })
+    }
+
+    /// Decodes `bytes` and passes everything complete to `sink`.
+    pub fn feed(&mut self, bytes: &[u8], sink: &mut FrameSink) {
+        match self {
+            StreamFraming::Bwf1 { decoder, samples } => {
+                let before = decoder.stats().clone();
+                decoder.push(bytes);
+                loop {
+                    match decoder.next_frame_into(samples) {
+                        Ok(Some(h)) => sink.bwf1(&h, samples),
+                        Ok(None) => break,
+                        Err(e) => sink.frame_error(&e),
+                    }
+                }
+                let after = decoder.stats();
+                sink.state
+                    .resyncs
+                    .fetch_add(after.resyncs - before.resyncs, Ordering::Relaxed);
+                sink.state.bytes_skipped.fetch_add(
+                    after.bytes_skipped - before.bytes_skipped,
+                    Ordering::Relaxed,
+                );
+            }
+            StreamFraming::Lines {
+                decoder,
+                batch,
+                samples,
+            } => {
+                decoder.feed(bytes, batch);
+                for ev in &batch.events {
+                    match ev {
+                        LineEvent::Run {
+                            first_sample,
+                            values,
+                        } => {
+                            if let Samples::F64(v) = samples {
+                                v.clear();
+                                v.extend_from_slice(&batch.values[values.clone()]);
+                            }
+                            sink.instants(*first_sample, samples);
+                        }
+                        LineEvent::Rejected(e) => {
+                            let reason = e.reason().as_str();
+                            sink.reject(reason, e);
+                        }
+                    }
+                }
+            }
+            StreamFraming::Raw { decoder, samples } => {
+                let b = decoder.feed(bytes, samples);
+                if b.instants > 0 {
+                    sink.instants(b.first_sample, samples);
+                }
+            }
+        }
+    }
+
+    /// The transport broke: drop partial frames/lines/instants (counted).
+    pub fn reset(&mut self, sink: &mut FrameSink) {
+        let dropped = match self {
+            StreamFraming::Bwf1 { decoder, .. } => {
+                let before = decoder.stats().bytes_skipped;
+                if let Err(e) = decoder.finish() {
+                    sink.frame_error(&e);
+                }
+                (decoder.stats().bytes_skipped - before) as usize
+            }
+            StreamFraming::Lines { decoder, .. } => decoder.reset(),
+            StreamFraming::Raw { decoder, .. } => decoder.reset(),
+        };
+        sink.state
+            .bytes_skipped
+            .fetch_add(dropped as u64, Ordering::Relaxed);
+    }
+}

@@ -1,0 +1,166 @@
+//! `bandwatch replay`: runs a recorded stream through the same pipeline as
+//! the daemon — the same framing, checks, scaling, rings and DSP — as fast as
+//! the CPU allows, and writes one JSON line per published spectrum. Given
+//! the same bytes, live processing and replay compute the same numbers.
+
+use std::io::{Read, Write};
+use std::path::Path;
+use std::sync::Arc;
+
+use crate::config::{Config, SourceKind, StreamSpec};
+use crate::dsp::worker::ChannelDsp;
+use crate::ring::channel_ring;
+use crate::snapshot::{ChannelShared, SourceShared};
+use crate::source::framed::{FrameSink, StreamFraming};
+use crate::source::{ChannelInput, SourceOutputs};
+
+#[derive(Debug, thiserror::Error)]
+pub enum ReplayError {
+    #[error("no source named {0:?} in the config")]
+    UnknownSource(String),
+    #[error("the config has no network or serial source to replay into")]
+    NoSource,
+    #[error("source {0:?} has no channels in the config")]
+    NoChannels(String),
+    #[error("cannot read {path}: {source}")]
+    Read {
+        path: String,
+        #[source]
+        source: std::io::Error,
+    },
+    #[error("cannot write the output: {0}")]
+    Write(#[source] std::io::Error),
+    #[error("decoder: {0}")]
+    Decoder(String),
+}
+
+/// One line of replay output.
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct ReplayLine {
+    pub channel: String,
+    pub seq: u64,
+    pub first_sample: u64,
+    pub averages: u32,
+    /// Band values in each band's unit, in config order.
+    pub bands: Vec<(String, f64)>,
+    pub rms: f64,
+    pub peak: f64,
+    pub crest_factor: f64,
+}
+
+fn stream_of(kind: &SourceKind) -> Option<StreamSpec> {
+    match kind {
+        SourceKind::TcpConnect { stream, .. }
+        | SourceKind::TcpListen { stream, .. }
+        | SourceKind::Serial { stream, .. } => Some(stream.clone()),
+        SourceKind::Udp { max_datagram_bytes, .. } => Some(StreamSpec {
+            framing: crate::config::Framing::Bwf1,
+            max_frame_bytes: *max_datagram_bytes,
+        }),
+        SourceKind::Sim { .. } => None,
+    }
+}
+
+/// Replays `file` into source `source` (default: the first non-sim one) and
+/// writes JSON lines to `out`. Returns the source's counters.
+pub fn replay(
+    config: &Config,
+    file: &Path,
+    source: Option<&str>,
+    out: &mut dyn Write,
+) -> Result<Arc<SourceShared>, ReplayError> {
+    let spec = match source {
+        Some(name) => config
+            .sources
+            .iter()
+            .find(|s| s.name == name)
+            .ok_or_else(|| ReplayError::UnknownSource(name.to_string()))?,
+        None => config
+            .sources
+            .iter()
+            .find(|s| stream_of(&s.kind).is_some())
+            .ok_or(ReplayError::NoSource)?,
+    };
+    let stream = stream_of(&spec.kind).ok_or(ReplayError::NoSource)?;
+    let mut outputs = SourceOutputs::new(spec.channels);
+    let mut dsps = Vec::new();
+    for ch in config.channels.iter().filter(|c| c.source == spec.name) {
+        let shared = Arc::new(ChannelShared::new(ch.clone()));
+        // Replay drains the ring after every read, so it never overflows;
+        // size it for the largest read plus a block.
+        let cap = 2 * ch.block + (1 << 17);
+        let (w, r) = channel_ring(cap, ch.sample_rate_hz, shared.counters.clone());
+        let mut dsp = ChannelDsp::new(shared, r);
+        dsp.set_blocks_per_turn(1);
+        dsps.push(dsp);
+        outputs.attach(
+            ch.index,
+            ChannelInput {
+                writer: w,
+                scale: ch.scale,
+                offset: ch.offset,
+                waker: std::thread::current(),
+            },
+        );
+    }
+    if dsps.is_empty() {
+        return Err(ReplayError::NoChannels(spec.name.clone()));
+    }
+    let state = Arc::new(SourceShared::new(&spec.name, spec.kind.as_str()));
+    let mut sink = FrameSink::new(outputs, state.clone(), spec.sample_rate_hz);
+    let mut framing =
+        StreamFraming::new(&stream, spec.channels).map_err(ReplayError::Decoder)?;
+    let read_err = |source| ReplayError::Read {
+        path: file.display().to_string(),
+        source,
+    };
+    let mut f = std::fs::File::open(file).map_err(read_err)?;
+    sink.restart();
+    let mut seqs = vec![0u64; dsps.len()];
+    let mut buf = vec![0u8; 65_536];
+    loop {
+        let n = f.read(&mut buf).map_err(read_err)?;
+        if n == 0 {
+            framing.reset(&mut sink);
+            break;
+        }
+        state.bytes.fetch_add(n as u64, std::sync::atomic::Ordering::Relaxed);
+        framing.feed(&buf[..n], &mut sink);
+        for (dsp, seq) in dsps.iter_mut().zip(seqs.iter_mut()) {
+            while dsp.poll() {
+                emit(dsp, seq, out)?;
+            }
+        }
+    }
+    out.flush().map_err(ReplayError::Write)?;
+    Ok(state)
+}
+
+fn emit(dsp: &ChannelDsp, seq: &mut u64, out: &mut dyn Write) -> Result<(), ReplayError> {
+    let shared = dsp.shared();
+    let Some(snap) = shared.latest() else {
+        return Ok(());
+    };
+    if snap.seq == *seq {
+        return Ok(());
+    }
+    *seq = snap.seq;
+    let line = ReplayLine {
+        channel: shared.spec.name.clone(),
+        seq: snap.seq,
+        first_sample: snap.first_sample,
+        averages: snap.averages,
+        bands: shared
+            .spec
+            .bands
+            .iter()
+            .zip(&snap.bands)
+            .map(|(b, v)| (b.name.clone(), v.value))
+            .collect(),
+        rms: snap.overall.rms,
+        peak: snap.overall.peak,
+        crest_factor: snap.overall.crest_factor,
+    };
+    let text = serde_json::to_string(&line).map_err(|e| ReplayError::Write(e.into()))?;
+    writeln!(out, "{text}").map_err(ReplayError::Write)
+}
