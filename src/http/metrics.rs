@@ -150,9 +150,16 @@ enum Fixed {
     SourceFrames,
     SourceBytes,
     SourceLastFrame,
+    SourceConnections,
+    SourceCrcErrors,
+    SourceResyncs,
+    SourceSkippedBytes,
+    SourceMissingSamples,
+    SourceLateFrames,
+    SourceRejected,
 }
 
-const FIXED: [(Fixed, &str, &str, MetricType, &[&str]); 14] = [
+const FIXED: [(Fixed, &str, &str, MetricType, &[&str]); 21] = [
     (
         Fixed::BandPeakFrequency,
         "bandwatch_band_peak_frequency_hertz",
@@ -250,6 +257,55 @@ const FIXED: [(Fixed, &str, &str, MetricType, &[&str]); 14] = [
         "Time the source received its latest frame, in seconds since the Unix epoch.",
         MetricType::GAUGE,
         &["source"],
+    ),
+    (
+        Fixed::SourceConnections,
+        "bandwatch_source_connections_total",
+        "Connections made or accepted, or ports opened, by the source.",
+        MetricType::COUNTER,
+        &["source"],
+    ),
+    (
+        Fixed::SourceCrcErrors,
+        "bandwatch_source_crc_errors_total",
+        "Frames whose CRC did not match.",
+        MetricType::COUNTER,
+        &["source"],
+    ),
+    (
+        Fixed::SourceResyncs,
+        "bandwatch_source_resyncs_total",
+        "Times the stream decoder scanned past bad bytes to the next frame.",
+        MetricType::COUNTER,
+        &["source"],
+    ),
+    (
+        Fixed::SourceSkippedBytes,
+        "bandwatch_source_skipped_bytes_total",
+        "Bytes the decoder threw away (bad frames, junk, partial frames).",
+        MetricType::COUNTER,
+        &["source"],
+    ),
+    (
+        Fixed::SourceMissingSamples,
+        "bandwatch_source_missing_samples_total",
+        "Sample instants lost in gaps of the frame sequence.",
+        MetricType::COUNTER,
+        &["source"],
+    ),
+    (
+        Fixed::SourceLateFrames,
+        "bandwatch_source_late_frames_total",
+        "Frames dropped as duplicates or late arrivals.",
+        MetricType::COUNTER,
+        &["source"],
+    ),
+    (
+        Fixed::SourceRejected,
+        "bandwatch_source_rejected_total",
+        "Frames or connections the source rejected, by reason.",
+        MetricType::COUNTER,
+        &["source", "reason"],
     ),
 ];
 
@@ -435,7 +491,14 @@ impl Collector for PipelineCollector {
                 Fixed::SourceUp
                 | Fixed::SourceFrames
                 | Fixed::SourceBytes
-                | Fixed::SourceLastFrame => Vec::with_capacity(self.app.sources.len()),
+                | Fixed::SourceLastFrame
+                | Fixed::SourceConnections
+                | Fixed::SourceCrcErrors
+                | Fixed::SourceResyncs
+                | Fixed::SourceSkippedBytes
+                | Fixed::SourceMissingSamples
+                | Fixed::SourceLateFrames
+                | Fixed::SourceRejected => Vec::with_capacity(self.app.sources.len()),
                 _ => Vec::with_capacity(n),
             })
             .collect();
@@ -529,8 +592,24 @@ impl Collector for PipelineCollector {
                 vec![label("source", &s.name), label("kind", s.kind)],
                 if s.is_connected() { 1.0 } else { 0.0 },
             ));
-            fixed[Fixed::SourceFrames as usize].push(counter(src(), s.frames.load(Relaxed)));
-            fixed[Fixed::SourceBytes as usize].push(counter(src(), s.bytes.load(Relaxed)));
+            for (f, c) in [
+                (Fixed::SourceFrames, &s.frames),
+                (Fixed::SourceBytes, &s.bytes),
+                (Fixed::SourceConnections, &s.connections),
+                (Fixed::SourceCrcErrors, &s.crc_errors),
+                (Fixed::SourceResyncs, &s.resyncs),
+                (Fixed::SourceSkippedBytes, &s.bytes_skipped),
+                (Fixed::SourceMissingSamples, &s.samples_missing),
+                (Fixed::SourceLateFrames, &s.frames_late),
+            ] {
+                fixed[f as usize].push(counter(src(), c.load(Relaxed)));
+            }
+            for (reason, n) in s.rejected() {
+                fixed[Fixed::SourceRejected as usize].push(counter(
+                    vec![label("source", &s.name), label("reason", reason)],
+                    n,
+                ));
+            }
             let last = s.last_frame_unix_ns.load(Relaxed);
             if last != 0 {
                 fixed[Fixed::SourceLastFrame as usize].push(gauge(src(), last as f64 * 1e-9));

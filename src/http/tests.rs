@@ -564,6 +564,8 @@ async fn metrics_are_si_and_complete() {
         .add_dropped(GapReason::SequenceGap, 7);
     st.sources[0].frames.store(3, Ordering::Relaxed);
     st.sources[0].bytes.store(300, Ordering::Relaxed);
+    st.sources[0].crc_errors.store(2, Ordering::Relaxed);
+    st.sources[0].add_rejected("crc_mismatch", 2);
     let r = get(&st, "/metrics").await;
     assert_eq!(r.status, StatusCode::OK);
     assert_eq!(r.content_type, "text/plain; version=0.0.4");
@@ -659,6 +661,30 @@ async fn metrics_are_si_and_complete() {
         sample(t, r#"bandwatch_source_bytes_total{source="sim"}"#),
         Some(300.0)
     );
+    assert_eq!(
+        sample(t, r#"bandwatch_source_crc_errors_total{source="sim"}"#),
+        Some(2.0)
+    );
+    assert_eq!(
+        sample(
+            t,
+            r#"bandwatch_source_rejected_total{source="sim",reason="crc_mismatch"}"#
+        ),
+        Some(2.0)
+    );
+    for name in [
+        "bandwatch_source_connections_total",
+        "bandwatch_source_resyncs_total",
+        "bandwatch_source_skipped_bytes_total",
+        "bandwatch_source_missing_samples_total",
+        "bandwatch_source_late_frames_total",
+    ] {
+        assert_eq!(
+            sample(t, &format!(r#"{name}{{source="sim"}}"#)),
+            Some(0.0),
+            "{name}"
+        );
+    }
     let build = format!(
         r#"bandwatch_build_info{{version="{}"}}"#,
         env!("CARGO_PKG_VERSION")
