@@ -689,7 +689,13 @@ pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
                         ),
                     );
                 }
-                let stream = stream_spec(&mut issues, &path, framing, sample_format.as_deref(), *max_frame_bytes);
+                let stream = stream_spec(
+                    &mut issues,
+                    &path,
+                    framing,
+                    sample_format.as_deref(),
+                    *max_frame_bytes,
+                );
                 check_shape(&mut issues, &path, *channels, *sample_rate_hz);
                 sources.push(SourceSpec {
                     name: name.clone(),
@@ -716,7 +722,13 @@ pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
                 on_second_connection,
             } => {
                 let addr = socket_addr(&mut issues, &format!("{path}.listen"), listen);
-                let stream = stream_spec(&mut issues, &path, framing, sample_format.as_deref(), *max_frame_bytes);
+                let stream = stream_spec(
+                    &mut issues,
+                    &path,
+                    framing,
+                    sample_format.as_deref(),
+                    *max_frame_bytes,
+                );
                 check_shape(&mut issues, &path, *channels, *sample_rate_hz);
                 sources.push(SourceSpec {
                     name: name.clone(),
@@ -776,15 +788,27 @@ pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
                     issues.add(format!("{path}.baud"), "must be > 0");
                 }
                 if !(5..=8).contains(data_bits) {
-                    issues.add(format!("{path}.data_bits"), format!("{data_bits} is not 5, 6, 7 or 8"));
+                    issues.add(
+                        format!("{path}.data_bits"),
+                        format!("{data_bits} is not 5, 6, 7 or 8"),
+                    );
                 }
                 if !(1..=2).contains(stop_bits) {
-                    issues.add(format!("{path}.stop_bits"), format!("{stop_bits} is not 1 or 2"));
+                    issues.add(
+                        format!("{path}.stop_bits"),
+                        format!("{stop_bits} is not 1 or 2"),
+                    );
                 }
                 if *reopen_ms == 0 {
                     issues.add(format!("{path}.reopen_ms"), "must be > 0");
                 }
-                let stream = stream_spec(&mut issues, &path, framing, sample_format.as_deref(), *max_frame_bytes);
+                let stream = stream_spec(
+                    &mut issues,
+                    &path,
+                    framing,
+                    sample_format.as_deref(),
+                    *max_frame_bytes,
+                );
                 check_shape(&mut issues, &path, *channels, *sample_rate_hz);
                 sources.push(SourceSpec {
                     name: name.clone(),
@@ -1117,7 +1141,10 @@ fn socket_addr(issues: &mut Issues, path: &str, text: &str) -> SocketAddr {
 
 fn check_shape(issues: &mut Issues, path: &str, channels: usize, rate: f64) {
     if !(1..=1024).contains(&channels) {
-        issues.add(format!("{path}.channels"), format!("{channels} is out of range 1 to 1024"));
+        issues.add(
+            format!("{path}.channels"),
+            format!("{channels} is out of range 1 to 1024"),
+        );
     }
     if !(rate.is_finite() && rate > 0.0 && rate <= 10e6) {
         issues.add(
@@ -1152,7 +1179,10 @@ fn stream_spec(
             }
         },
         ("raw", None) => {
-            issues.add(format!("{path}.sample_format"), "is required with framing = \"raw\"");
+            issues.add(
+                format!("{path}.sample_format"),
+                "is required with framing = \"raw\"",
+            );
             Framing::Raw(SampleFormat::F32)
         }
         ("bwf1" | "lines", Some(_)) => {

@@ -258,7 +258,10 @@ fn main() -> ExitCode {
 }
 
 fn block_on<F: std::future::Future<Output = ExitCode>>(f: F) -> ExitCode {
-    match tokio::runtime::Builder::new_current_thread().enable_all().build() {
+    match tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+    {
         Ok(rt) => rt.block_on(f),
         Err(e) => {
             eprintln!("cannot start the async runtime: {e}");

@@ -98,16 +98,29 @@ async fn udp_run(faults: Faults) -> (SendReport, Arc<SourceShared>, Pipeline) {
     let p = Pipeline::start(&config_with(&udp_source(port))).expect("pipeline");
     let state = src(&p.state);
     // Give the reader a moment to bind before the first datagram.
-    wait_for("udp bind", 5, || std::net::UdpSocket::bind(("127.0.0.1", port)).is_err()).await;
+    wait_for("udp bind", 5, || {
+        std::net::UdpSocket::bind(("127.0.0.1", port)).is_err()
+    })
+    .await;
     let report = send_frames(Endpoint::Udp(format!("127.0.0.1:{port}")), 100, faults, 2.0).await;
-    let sent = report.bytes;
-    wait_for("all datagrams", 10, || get(&state.bytes) >= sent).await;
+    // Every datagram sent is either a good frame, a late one, or rejected.
+    let datagrams = report.frames - report.dropped + report.duplicated;
+    wait_for("all datagrams", 10, || {
+        let rejected: u64 = state.rejected().iter().map(|(_, n)| n).sum();
+        get(&state.frames) + get(&state.frames_late) + rejected >= datagrams
+    })
+    .await;
+    assert_eq!(get(&state.bytes), report.bytes, "every byte sent arrived");
     (report, state, p)
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn udp_dropped_datagrams_are_counted_as_missing_samples() {
-    let (r, s, p) = udp_run(Faults { drop_every: 10, ..Faults::default() }).await;
+    let (r, s, p) = udp_run(Faults {
+        drop_every: 10,
+        ..Faults::default()
+    })
+    .await;
     // Frames 10, 20, … 100 are not sent; the last one leaves no visible gap.
     assert_eq!(r.dropped, 10);
     assert_eq!(get(&s.samples_missing), 9 * S);
@@ -115,7 +128,8 @@ async fn udp_dropped_datagrams_are_counted_as_missing_samples() {
     assert_eq!(get(&s.frames_late), 0);
     let ch = &p.state.channels[0];
     assert_eq!(
-        ch.counters.discontinuities(bandwatch::counters::GapReason::SequenceGap),
+        ch.counters
+            .discontinuities(bandwatch::counters::GapReason::SequenceGap),
         9,
         "each gap breaks the block"
     );
@@ -124,7 +138,11 @@ async fn udp_dropped_datagrams_are_counted_as_missing_samples() {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn udp_duplicates_are_dropped_and_counted() {
-    let (r, s, p) = udp_run(Faults { duplicate_every: 7, ..Faults::default() }).await;
+    let (r, s, p) = udp_run(Faults {
+        duplicate_every: 7,
+        ..Faults::default()
+    })
+    .await;
     assert_eq!(r.duplicated, 14);
     assert_eq!(get(&s.frames_late), 14);
     assert_eq!(get(&s.frames), 100);
@@ -134,7 +152,11 @@ async fn udp_duplicates_are_dropped_and_counted() {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn udp_reordered_datagrams_are_a_gap_then_late() {
-    let (r, s, p) = udp_run(Faults { reorder_every: 13, ..Faults::default() }).await;
+    let (r, s, p) = udp_run(Faults {
+        reorder_every: 13,
+        ..Faults::default()
+    })
+    .await;
     // 13, 26, … 91 each arrive after their successor.
     assert_eq!(r.reordered, 7);
     assert_eq!(get(&s.frames_late), 7);
@@ -145,7 +167,11 @@ async fn udp_reordered_datagrams_are_a_gap_then_late() {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn udp_corrupt_datagrams_fail_their_crc() {
-    let (r, s, p) = udp_run(Faults { corrupt_every: 9, ..Faults::default() }).await;
+    let (r, s, p) = udp_run(Faults {
+        corrupt_every: 9,
+        ..Faults::default()
+    })
+    .await;
     assert_eq!(r.corrupted, 11);
     assert_eq!(get(&s.crc_errors), 11);
     assert_eq!(s.rejected(), vec![("crc_mismatch", 11)]);
@@ -159,17 +185,32 @@ async fn udp_frame_with_wrong_channel_count_or_rate_is_rejected() {
     let p = Pipeline::start(&config_with(&udp_source(port))).expect("pipeline");
     let s = src(&p.state);
     let sock = std::net::UdpSocket::bind("127.0.0.1:0").expect("bind");
-    let two = encode(&Header::new(SampleFormat::F32, 2, 4, 0, 0, 25_600.0), SampleSlice::F32(&[0.0; 8])).expect("frame");
-    let rate = encode(&Header::new(SampleFormat::F32, 3, 4, 0, 0, 48_000.0), SampleSlice::F32(&[0.0; 12])).expect("frame");
+    let two = encode(
+        &Header::new(SampleFormat::F32, 2, 4, 0, 0, 25_600.0),
+        SampleSlice::F32(&[0.0; 8]),
+    )
+    .expect("frame");
+    let rate = encode(
+        &Header::new(SampleFormat::F32, 3, 4, 0, 0, 48_000.0),
+        SampleSlice::F32(&[0.0; 12]),
+    )
+    .expect("frame");
     wait_for("rejections", 10, || {
         let _ = sock.send_to(&two, ("127.0.0.1", port));
         let _ = sock.send_to(&rate, ("127.0.0.1", port));
         let r = s.rejected();
-        r.iter().any(|(k, _)| *k == "channel_count_mismatch") && r.iter().any(|(k, _)| *k == "sample_rate_mismatch")
+        r.iter().any(|(k, _)| *k == "channel_count_mismatch")
+            && r.iter().any(|(k, _)| *k == "sample_rate_mismatch")
     })
     .await;
     assert_eq!(get(&s.frames), 0, "neither frame reached a ring");
-    assert_eq!(p.state.channels[0].counters.samples_in.load(Ordering::Relaxed), 0);
+    assert_eq!(
+        p.state.channels[0]
+            .counters
+            .samples_in
+            .load(Ordering::Relaxed),
+        0
+    );
     p.stop().await;
 }
 
@@ -181,10 +222,22 @@ async fn tcp_listen_counts_crc_errors_and_resyncs() {
     ));
     let p = Pipeline::start(&cfg).expect("pipeline");
     let s = src(&p.state);
-    wait_for("listener", 5, || std::net::TcpStream::connect(("127.0.0.1", port)).is_ok()).await;
+    wait_for("listener", 5, || {
+        std::net::TcpStream::connect(("127.0.0.1", port)).is_ok()
+    })
+    .await;
     // The probe connection above came and went.
     wait_for("probe closed", 5, || !s.is_connected()).await;
-    let r = send_frames(Endpoint::Tcp(format!("127.0.0.1:{port}")), 100, Faults { corrupt_every: 9, ..Faults::default() }, 4.0).await;
+    let r = send_frames(
+        Endpoint::Tcp(format!("127.0.0.1:{port}")),
+        100,
+        Faults {
+            corrupt_every: 9,
+            ..Faults::default()
+        },
+        4.0,
+    )
+    .await;
     assert_eq!(r.corrupted, 11);
     wait_for("all bytes", 10, || get(&s.bytes) >= r.bytes).await;
     wait_for("frames", 10, || get(&s.frames) == 89).await;
@@ -216,17 +269,30 @@ async fn tcp_sender_that_dies_mid_frame_and_comes_back() {
     c.write_all(&f0).await.expect("write");
     c.write_all(&f1[..100]).await.expect("write");
     c.flush().await.expect("flush");
-    wait_for("first frame", 10, || get(&s.frames) == 1 && get(&s.bytes) as usize == f0.len() + 100).await;
+    wait_for("first frame", 10, || {
+        get(&s.frames) == 1 && get(&s.bytes) as usize == f0.len() + 100
+    })
+    .await;
     drop(c);
     wait_for("disconnect", 10, || !s.is_connected()).await;
-    assert_eq!(get(&s.bytes_skipped), 100, "the partial frame is counted, not used");
-    let mut c = tokio::net::TcpStream::connect(("127.0.0.1", port)).await.expect("reconnect");
+    assert_eq!(
+        get(&s.bytes_skipped),
+        100,
+        "the partial frame is counted, not used"
+    );
+    let mut c = tokio::net::TcpStream::connect(("127.0.0.1", port))
+        .await
+        .expect("reconnect");
     c.write_all(&f1).await.expect("write");
     c.flush().await.expect("flush");
     wait_for("second frame", 10, || get(&s.frames) == 2).await;
     assert_eq!(get(&s.connections), 2);
     let ch = &p.state.channels[0];
-    assert!(ch.counters.discontinuities(bandwatch::counters::GapReason::Restart) >= 2);
+    assert!(
+        ch.counters
+            .discontinuities(bandwatch::counters::GapReason::Restart)
+            >= 2
+    );
     p.stop().await;
 }
 
@@ -245,8 +311,13 @@ async fn tcp_listen_refuses_a_second_connection() {
         }
     };
     wait_for("first connected", 5, || s.is_connected()).await;
-    let _second = tokio::net::TcpStream::connect(("127.0.0.1", port)).await.expect("connect");
-    wait_for("refusal", 5, || s.rejected().contains(&("second_connection", 1))).await;
+    let _second = tokio::net::TcpStream::connect(("127.0.0.1", port))
+        .await
+        .expect("connect");
+    wait_for("refusal", 5, || {
+        s.rejected().contains(&("second_connection", 1))
+    })
+    .await;
     assert!(s.is_connected(), "the first connection stays");
     drop(first);
     p.stop().await;
@@ -255,7 +326,9 @@ async fn tcp_listen_refuses_a_second_connection() {
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn tcp_connect_reconnects_after_the_daq_drops() {
     use tokio::io::AsyncWriteExt;
-    let daq = tokio::net::TcpListener::bind("127.0.0.1:0").await.expect("bind");
+    let daq = tokio::net::TcpListener::bind("127.0.0.1:0")
+        .await
+        .expect("bind");
     let port = daq.local_addr().expect("addr").port();
     let cfg = config_with(&format!(
         "[[source]]\nname = \"daq\"\nkind = \"tcp-connect\"\naddress = \"127.0.0.1:{port}\"\nchannels = 3\nsample_rate_hz = 25600\nreconnect_min_ms = 20\nreconnect_max_ms = 200\n"
@@ -268,7 +341,11 @@ async fn tcp_connect_reconnects_after_the_daq_drops() {
             .await
             .expect("daemon dials in time")
             .expect("accept");
-        let f = encode(&Header::new(SampleFormat::F32, 3, S as u32, 0, 0, 25_600.0), SampleSlice::F32(&body)).expect("frame");
+        let f = encode(
+            &Header::new(SampleFormat::F32, 3, S as u32, 0, 0, 25_600.0),
+            SampleSlice::F32(&body),
+        )
+        .expect("frame");
         c.write_all(&f).await.expect("write");
         wait_for("frame", 10, || get(&s.frames) == round + 1).await;
         drop(c);

@@ -96,7 +96,12 @@ async fn read_stream<R: AsyncRead + Unpin>(
 }
 
 /// Runs one network or serial source until shutdown.
-pub async fn run(spec: SourceSpec, out: SourceOutputs, state: Arc<SourceShared>, stop: watch::Receiver<bool>) {
+pub async fn run(
+    spec: SourceSpec,
+    out: SourceOutputs,
+    state: Arc<SourceShared>,
+    stop: watch::Receiver<bool>,
+) {
     let sink = FrameSink::new(out, state, spec.sample_rate_hz);
     match spec.kind {
         SourceKind::TcpConnect {
@@ -143,7 +148,9 @@ async fn tcp_connect(
         match attempt {
             Ok(mut s) => {
                 let _ = s.set_nodelay(true);
-                let peer = s.peer_addr().map_or_else(|_| address.to_string(), |a| a.to_string());
+                let peer = s
+                    .peer_addr()
+                    .map_or_else(|_| address.to_string(), |a| a.to_string());
                 tracing::info!(source = %sink.state.name, %peer, "connected");
                 failing = false;
                 retry.reset();
@@ -153,11 +160,16 @@ async fn tcp_connect(
                 let ended = read_stream(&mut s, &mut framing, &mut sink, &mut buf, &mut stop).await;
                 set_connected(&sink, false);
                 framing.reset(&mut sink);
-                sink.out.mark_discontinuity(crate::counters::GapReason::Restart);
+                sink.out
+                    .mark_discontinuity(crate::counters::GapReason::Restart);
                 match ended {
                     Ended::Shutdown => return,
-                    Ended::Closed => tracing::warn!(source = %sink.state.name, %peer, "connection closed by the peer; reconnecting"),
-                    Ended::Error(e) => tracing::warn!(source = %sink.state.name, %peer, error = %e, "connection lost; reconnecting"),
+                    Ended::Closed => {
+                        tracing::warn!(source = %sink.state.name, %peer, "connection closed by the peer; reconnecting")
+                    }
+                    Ended::Error(e) => {
+                        tracing::warn!(source = %sink.state.name, %peer, error = %e, "connection lost; reconnecting")
+                    }
                 }
             }
             Err(e) => {
@@ -227,12 +239,17 @@ async fn tcp_listen(
             Event::Read(r) => {
                 let peer = active.take().map(|(_, p)| p);
                 match r {
-                    Err(e) => tracing::warn!(source = %sink.state.name, ?peer, error = %e, "connection lost"),
-                    Ok(_) => tracing::warn!(source = %sink.state.name, ?peer, "connection closed by the peer"),
+                    Err(e) => {
+                        tracing::warn!(source = %sink.state.name, ?peer, error = %e, "connection lost")
+                    }
+                    Ok(_) => {
+                        tracing::warn!(source = %sink.state.name, ?peer, "connection closed by the peer")
+                    }
                 }
                 set_connected(&sink, false);
                 framing.reset(&mut sink);
-                sink.out.mark_discontinuity(crate::counters::GapReason::Restart);
+                sink.out
+                    .mark_discontinuity(crate::counters::GapReason::Restart);
                 continue;
             }
             Event::Accepted(a) => a,
@@ -248,7 +265,9 @@ async fn tcp_listen(
                 if let Some((_, old)) = &active {
                     match policy {
                         SecondConnection::Refuse => {
-                            let msg = format!("second connection from {peer} refused while {old} is active");
+                            let msg = format!(
+                                "second connection from {peer} refused while {old} is active"
+                            );
                             sink.reject("second_connection", &msg);
                             drop(s);
                             continue;
@@ -274,7 +293,12 @@ async fn tcp_listen(
 /// A UDP source counts as connected while datagrams arrive at least this often.
 const UDP_STALE: Duration = Duration::from_secs(5);
 
-async fn udp(listen: SocketAddr, max_datagram: usize, mut sink: FrameSink, mut stop: watch::Receiver<bool>) {
+async fn udp(
+    listen: SocketAddr,
+    max_datagram: usize,
+    mut sink: FrameSink,
+    mut stop: watch::Receiver<bool>,
+) {
     let socket = loop {
         match UdpSocket::bind(listen).await {
             Ok(s) => break s,

@@ -87,7 +87,9 @@ pub async fn run(kind: &SourceKind, mut sink: FrameSink, mut stop: watch::Receiv
                 sink.out.mark_discontinuity(GapReason::Restart);
                 match ended {
                     None => return,
-                    Some(why) => tracing::warn!(source = %sink.state.name, %device, reason = %why, "serial port lost; will reopen"),
+                    Some(why) => {
+                        tracing::warn!(source = %sink.state.name, %device, reason = %why, "serial port lost; will reopen")
+                    }
                 }
             }
             Err(e) => {

@@ -229,7 +229,9 @@ pub async fn run(
             let ts = start_ns + (sent as f64 * 1e9 / fs) as u64;
             out.write_interleaved(sent, ts, frame);
             note_frame(&state);
-            state.bytes.fetch_add((frame.len() * 3) as u64, Ordering::Relaxed);
+            state
+                .bytes
+                .fetch_add((frame.len() * 3) as u64, Ordering::Relaxed);
             sent += n as u64;
         }
         out.wake();

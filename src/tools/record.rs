@@ -62,7 +62,9 @@ where
         source,
     };
     let mut input = match from {
-        Endpoint::Tcp(a) => Input::Stream(Box::new(TcpStream::connect(a.as_str()).await.map_err(open_err)?)),
+        Endpoint::Tcp(a) => Input::Stream(Box::new(
+            TcpStream::connect(a.as_str()).await.map_err(open_err)?,
+        )),
         Endpoint::TcpServe(a) => {
             let l = TcpListener::bind(a.as_str()).await.map_err(open_err)?;
             let (s, _) = l.accept().await.map_err(open_err)?;

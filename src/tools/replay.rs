@@ -53,7 +53,9 @@ fn stream_of(kind: &SourceKind) -> Option<StreamSpec> {
         SourceKind::TcpConnect { stream, .. }
         | SourceKind::TcpListen { stream, .. }
         | SourceKind::Serial { stream, .. } => Some(stream.clone()),
-        SourceKind::Udp { max_datagram_bytes, .. } => Some(StreamSpec {
+        SourceKind::Udp {
+            max_datagram_bytes, ..
+        } => Some(StreamSpec {
             framing: crate::config::Framing::Bwf1,
             max_frame_bytes: *max_datagram_bytes,
         }),
@@ -108,8 +110,7 @@ pub fn replay(
     }
     let state = Arc::new(SourceShared::new(&spec.name, spec.kind.as_str()));
     let mut sink = FrameSink::new(outputs, state.clone(), spec.sample_rate_hz);
-    let mut framing =
-        StreamFraming::new(&stream, spec.channels).map_err(ReplayError::Decoder)?;
+    let mut framing = StreamFraming::new(&stream, spec.channels).map_err(ReplayError::Decoder)?;
     let read_err = |source| ReplayError::Read {
         path: file.display().to_string(),
         source,
@@ -124,7 +125,9 @@ pub fn replay(
             framing.reset(&mut sink);
             break;
         }
-        state.bytes.fetch_add(n as u64, std::sync::atomic::Ordering::Relaxed);
+        state
+            .bytes
+            .fetch_add(n as u64, std::sync::atomic::Ordering::Relaxed);
         framing.feed(&buf[..n], &mut sink);
         for (dsp, seq) in dsps.iter_mut().zip(seqs.iter_mut()) {
             while dsp.poll() {

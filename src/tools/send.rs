@@ -93,7 +93,14 @@ impl FrameMaker {
             }
             WireFormat::Bwf1(format) => {
                 let ts = self.start_ns + (first as f64 * 1e9 / SIM_SAMPLE_RATE_HZ) as u64;
-                let h = Header::new(format, CHANNELS as u16, s as u32, first, ts, SIM_SAMPLE_RATE_HZ);
+                let h = Header::new(
+                    format,
+                    CHANNELS as u16,
+                    s as u32,
+                    first,
+                    ts,
+                    SIM_SAMPLE_RATE_HZ,
+                );
                 let slice = match format {
                     SampleFormat::F32 | SampleFormat::F64 => {
                         self.scratch_f32.clear();
@@ -104,7 +111,8 @@ impl FrameMaker {
                     SampleFormat::I16 => {
                         // 16-bit converter: the top 16 of the 24 bits.
                         self.scratch_i16.clear();
-                        self.scratch_i16.extend(self.counts.iter().map(|&c| (c >> 8) as i16));
+                        self.scratch_i16
+                            .extend(self.counts.iter().map(|&c| (c >> 8) as i16));
                         SampleSlice::I16(&self.scratch_i16)
                     }
                     SampleFormat::I24 | SampleFormat::I32 => SampleSlice::I32(&self.counts),
@@ -275,9 +283,13 @@ async fn open(to: &Endpoint, format: WireFormat) -> Result<Link, SendError> {
             if format == WireFormat::Lines {
                 return Err(SendError::LinesOverUdp);
             }
-            let s = UdpSocket::bind(if a.starts_with('[') { "[::]:0" } else { "0.0.0.0:0" })
-                .await
-                .map_err(connect_err)?;
+            let s = UdpSocket::bind(if a.starts_with('[') {
+                "[::]:0"
+            } else {
+                "0.0.0.0:0"
+            })
+            .await
+            .map_err(connect_err)?;
             s.connect(a.as_str()).await.map_err(connect_err)?;
             Link::Udp(s)
         }

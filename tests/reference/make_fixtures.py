@@ -1,0 +1,386 @@
+#!/usr/bin/env python3
+"""Writes the reference fixtures that tests/reference_scipy.rs checks bandwatch against.
+
+Reference library: numpy and scipy from PyPI, versions pinned in
+requirements.txt and recorded in every fixture file. Every signal comes from
+numpy.random.default_rng with a fixed seed (recorded), so the output is the
+same byte for byte on every run with the pinned versions:
+
+    python tests/reference/make_fixtures.py [OUT_DIR]
+
+OUT_DIR defaults to tests/reference/fixtures next to this script.
+
+What is written:
+
+- windows.json: scipy.signal.get_window (periodic) for every window
+  bandwatch offers, N = 4096: coherent gain, ENBW in bins, a few samples.
+- fft_roundtrip.json: numpy.fft.rfft of a short float32 signal and
+  numpy.fft.irfft of that spectrum.
+- welch_<signal>.json, one per signal: the input as float32 bit patterns
+  (hex, big-endian, 8 characters a sample, so Rust reads exactly the values
+  scipy saw), and for each case the parameters, scipy.signal.welch with
+  scaling 'spectrum' and 'density', and band powers from the density
+  (sum(density[k]) * df over the band's lines, with the line weights of a
+  unit change or integration where the band asks for one).
+
+scipy computes in the input's precision, so welch gets the float32 samples
+converted to float64: the reference is double precision on exactly the
+samples bandwatch reads.
+
+Numbers are written with 10 significant digits (far below the tolerances of
+the Rust tests, which compare single-precision results), keys sorted, one
+JSON document per file, so the output does not depend on dict order or on
+float formatting details.
+"""
+
+import json
+import math
+import os
+import sys
+
+import numpy as np
+import scipy
+import scipy.signal
+
+SEED = 20_260_611
+FS = 25_600.0  # the sample rate of bandwatch's built-in source (DESIGN.md)
+LOW_CUT_HZ = 2.0  # bandwatch's default integration low cut-off
+STANDARD_GRAVITY = 9.80665  # m/s^2, exact (CGPM 1901)
+DIGITS = 10
+
+# bandwatch window name -> scipy.signal.get_window spec, with the
+# coefficients pinned (bandwatch src/dsp/window.rs uses the same).
+WINDOWS = {
+    "rectangular": "boxcar",
+    "hann": "hann",
+    "hamming": "hamming",
+    "blackman-harris": ("general_cosine", [0.35875, 0.48829, 0.14128, 0.01168]),
+    "flat-top": "flattop",
+}
+
+
+def num(v):
+    """A float rounded to DIGITS significant digits (repr is then short)."""
+    v = float(v)
+    if v == 0.0 or not math.isfinite(v):
+        return 0.0 if v == 0.0 else v
+    return float(f"{v:.{DIGITS - 1}e}")
+
+
+def nums(a):
+    return [num(v) for v in np.asarray(a, dtype=np.float64).ravel()]
+
+
+def f32_hex(x):
+    return np.asarray(x, dtype=np.float32).astype(">f4").tobytes().hex()
+
+
+def versions():
+    return {"numpy": np.__version__, "scipy": scipy.__version__}
+
+
+def window_spec_json(spec):
+    if isinstance(spec, tuple):
+        return [spec[0], list(spec[1])]
+    return spec
+
+
+def get_window(name, n):
+    return scipy.signal.get_window(WINDOWS[name], n, fftbins=True)
+
+
+def rng_for(stream):
+    return np.random.default_rng(np.random.SeedSequence(SEED, spawn_key=(stream,)))
+
+
+# ---------------------------------------------------------------------------
+# Signals. Each: name, description, float32 samples, bands, cases.
+# ---------------------------------------------------------------------------
+
+N_SAMPLES = 4096  # 7 segments of 1024 at 50 % overlap
+T = np.arange(N_SAMPLES) / FS
+
+
+def cos(a, f, phase=0.0):
+    return a * np.cos(2 * np.pi * f * T + phase)
+
+
+def signals():
+    out = []
+
+    # 1. Tone centred on line 100 of a 1024-point spectrum (df = 25 Hz).
+    out.append(
+        (
+            "tone_on_line",
+            None,
+            "1.5 amplitude cosine at 2500 Hz, on line 100 of fs/1024",
+            cos(1.5, 2500.0, 0.3),
+        )
+    )
+    # 2. Tones between lines: half a line and 0.3 of a line off.
+    out.append(
+        (
+            "tone_off_line",
+            None,
+            "1.0 at 2512.5 Hz (half a line off) and 0.5 at 6257.5 Hz (0.3 line off)",
+            cos(1.0, 2512.5, 0.1) + cos(0.5, 6257.5, 1.2),
+        )
+    )
+    # 3. Pump-like tones in white noise (demo scenario frequencies).
+    rng = rng_for(3)
+    out.append(
+        (
+            "multitone_noise",
+            3,
+            "0.8 at 24.75 Hz, 0.3 at 173.25 Hz, 0.2 at 3200 Hz, 0.05 at 9000 Hz, "
+            "plus Gaussian white noise sigma 0.02",
+            cos(0.8, 24.75)
+            + cos(0.3, 173.25, 0.7)
+            + cos(0.2, 3200.0, 2.0)
+            + cos(0.05, 9000.0)
+            + rng.normal(0.0, 0.02, N_SAMPLES),
+        )
+    )
+    # 4. White noise.
+    rng = rng_for(4)
+    out.append(("white_noise", 4, "Gaussian white noise, sigma 1", rng.normal(0.0, 1.0, N_SAMPLES)))
+    # 5. Coloured (red) noise: white through a one-pole low-pass.
+    rng = rng_for(5)
+    white = rng.normal(0.0, 1.0, N_SAMPLES + 512)
+    red = scipy.signal.lfilter([0.1], [1.0, -0.9], white)[512:]
+    out.append(
+        (
+            "red_noise",
+            5,
+            "Gaussian white noise sigma 1 through lfilter([0.1], [1, -0.9]), first 512 dropped",
+            red,
+        )
+    )
+    # 6. DC offset with a small tone.
+    out.append(("dc_offset", None, "DC 2.0 plus 0.1 at 1000 Hz", 2.0 + cos(0.1, 1000.0)))
+    # 7. A tone exactly at Nyquist (alternating samples) and one below.
+    n = np.arange(N_SAMPLES)
+    out.append(
+        (
+            "nyquist_tone",
+            None,
+            "0.7 at Nyquist (0.7 * (-1)^n) plus 0.2 at 5000 Hz",
+            0.7 * np.where(n % 2 == 0, 1.0, -1.0) + cos(0.2, 5000.0),
+        )
+    )
+    # 8. Linear chirp 200 Hz -> 10 kHz over the record.
+    out.append(
+        (
+            "chirp",
+            None,
+            "scipy.signal.chirp linear 200 Hz to 10000 Hz over the record, amplitude 1",
+            scipy.signal.chirp(T, f0=200.0, t1=T[-1], f1=10_000.0, method="linear"),
+        )
+    )
+    # 9. Impacts ringing a resonance: outer-race defect of the demo pump
+    #    (BPFO 89.1 Hz) ringing 3.2 kHz, on top of the 1x shaft tone.
+    rng = rng_for(9)
+    fn, zeta = 3200.0, 0.03
+    wn = 2 * np.pi * fn
+    wd = wn * math.sqrt(1 - zeta**2)
+    x = cos(0.3, 24.75) + rng.normal(0.0, 0.01, N_SAMPLES)
+    period = 1.0 / 89.1
+    k = 0
+    while k * period < T[-1]:
+        t0 = k * period
+        tau = T - t0
+        on = tau >= 0
+        x[on] += 1.0 * np.exp(-zeta * wn * tau[on]) * np.sin(wd * tau[on])
+        k += 1
+    out.append(
+        (
+            "impacts",
+            9,
+            "unit impacts every 1/89.1 s ringing 3200 Hz (zeta 0.03) plus 0.3 at 24.75 Hz "
+            "and Gaussian noise sigma 0.01",
+            x,
+        )
+    )
+    return out
+
+
+def bands_for(name):
+    """Bands (lo_hz, hi_hz inclusive, unit) on a channel measured in g."""
+    common = [
+        {"name": "all", "lo_hz": 0.0, "hi_hz": FS / 2, "unit": "g"},
+        {"name": "low", "lo_hz": 10.0, "hi_hz": 1000.0, "unit": "g"},
+        {"name": "mid", "lo_hz": 2000.0, "hi_hz": 4012.5, "unit": "g"},
+        {"name": "velocity", "lo_hz": 10.0, "hi_hz": 1000.0, "unit": "mm/s"},
+        {"name": "velocity_hi", "lo_hz": 1000.0, "hi_hz": 10_000.0, "unit": "mm/s"},
+    ]
+    if name == "nyquist_tone":
+        common.append({"name": "top", "lo_hz": 12_000.0, "hi_hz": FS / 2, "unit": "g"})
+    return common
+
+
+def cases_for(name):
+    """(window, nperseg, noverlap, nfft, detrend) combinations per signal."""
+    cases = [(w, 1024, 512, 1024, "constant") for w in WINDOWS]
+    if name in ("tone_off_line", "multitone_noise", "white_noise"):
+        cases += [(w, 1024, 512, 2048, "constant") for w in ("rectangular", "hann", "flat-top")]
+    if name in ("tone_off_line", "red_noise"):
+        cases.append(("hann", 1024, 768, 1024, "constant"))
+    if name == "white_noise":
+        cases.append(("rectangular", 1024, 0, 1024, "constant"))
+    if name in ("dc_offset", "nyquist_tone"):
+        cases += [(w, 1024, 512, 1024, False) for w in WINDOWS]
+    return cases
+
+
+def band_weights(freqs, unit):
+    """Power weight per line for a band on a g channel (bandwatch units.rs
+    line_factor: g -> mm/s divides by 2*pi*f, lines below the low cut-off
+    and DC are zero)."""
+    if unit == "g":
+        return np.ones_like(freqs)
+    assert unit == "mm/s"
+    w = np.zeros_like(freqs)
+    ok = (freqs > 0) & (freqs >= LOW_CUT_HZ)
+    w[ok] = (STANDARD_GRAVITY * 1000.0 / (2 * np.pi * freqs[ok])) ** 2
+    return w
+
+
+def density_subset(window, dens):
+    """Full density for the rectangular and Hann cases; for the other
+    windows every 8th line plus the 8 strongest (the 'spectrum' of those
+    cases stays full), to keep the fixtures small."""
+    if window in ("rectangular", "hann"):
+        return {"density": nums(dens)}
+    keep = set(range(0, len(dens), 8)) | set(np.argsort(dens)[-8:].tolist())
+    keep.add(len(dens) - 1)
+    bins = sorted(int(k) for k in keep)
+    return {"density": nums(dens[bins]), "density_bins": bins}
+
+
+def welch_case(x64, window, nperseg, noverlap, nfft, detrend, bands):
+    win = get_window(window, nperseg)
+    common = dict(
+        fs=FS,
+        window=win,
+        nperseg=nperseg,
+        noverlap=noverlap,
+        nfft=nfft,
+        detrend=detrend,
+        return_onesided=True,
+        average="mean",
+    )
+    f, spec = scipy.signal.welch(x64, scaling="spectrum", **common)
+    f2, dens = scipy.signal.welch(x64, scaling="density", **common)
+    assert np.array_equal(f, f2)
+    step = nperseg - noverlap
+    segments = (len(x64) - noverlap) // step
+    df = FS / nfft
+    band_power = {}
+    for b in bands:
+        k = np.nonzero((f >= b["lo_hz"]) & (f <= b["hi_hz"]))[0]
+        band_power[b["name"]] = num(np.sum(dens[k] * band_weights(f[k], b["unit"])) * df)
+    return {
+        "window": window,
+        "scipy_window": window_spec_json(WINDOWS[window]),
+        "nperseg": nperseg,
+        "noverlap": noverlap,
+        "nfft": nfft,
+        "detrend": detrend,
+        "segments": segments,
+        "df_hz": num(df),
+        "enbw_bins": num(nperseg * np.sum(win**2) / np.sum(win) ** 2),
+        "spectrum": nums(spec),
+        **density_subset(window, dens),
+        "band_power": band_power,
+    }
+
+
+def write(out_dir, name, doc):
+    path = os.path.join(out_dir, name)
+    text = json.dumps(doc, sort_keys=True, separators=(",", ":"), allow_nan=False)
+    with open(path, "w", encoding="utf-8", newline="\n") as fh:
+        fh.write(text)
+        fh.write("\n")
+
+
+def header(what):
+    return {
+        "generator": "tests/reference/make_fixtures.py",
+        "what": what,
+        "versions": versions(),
+        "seed": SEED,
+        "fs_hz": FS,
+    }
+
+
+def windows_fixture():
+    n = 4096
+    idx = [0, 1, 2, 3, 512, 1024, 1365, 2047, 2048, 2049, 3072, 4094, 4095]
+    out = {}
+    for name in WINDOWS:
+        w = get_window(name, n)
+        out[name] = {
+            "scipy_window": window_spec_json(WINDOWS[name]),
+            "coherent_gain": num(np.sum(w) / n),
+            "enbw_bins": num(n * np.sum(w**2) / np.sum(w) ** 2),
+            "sample_index": idx,
+            "samples": nums(w[idx]),
+        }
+    doc = header("scipy.signal.get_window(spec, 4096, fftbins=True): periodic windows")
+    doc["n"] = n
+    doc["windows"] = out
+    return doc
+
+
+def fft_fixture():
+    rng = rng_for(100)
+    n = 64
+    x32 = rng.normal(0.0, 1.0, n).astype(np.float32)
+    x64 = x32.astype(np.float64)
+    X = np.fft.rfft(x64)
+    back = np.fft.irfft(X, n)
+    doc = header("numpy.fft.rfft of a float32 signal (as float64) and irfft of the result")
+    doc.update(
+        {
+            "n": n,
+            "stream": 100,
+            "samples_f32_hex": f32_hex(x32),
+            "rfft_re": nums(X.real),
+            "rfft_im": nums(X.imag),
+            "irfft": nums(back),
+        }
+    )
+    return doc
+
+
+def main():
+    here = os.path.dirname(os.path.abspath(__file__))
+    out_dir = sys.argv[1] if len(sys.argv) > 1 else os.path.join(here, "fixtures")
+    os.makedirs(out_dir, exist_ok=True)
+    write(out_dir, "windows.json", windows_fixture())
+    write(out_dir, "fft_roundtrip.json", fft_fixture())
+    for name, stream, description, x in signals():
+        x32 = np.asarray(x, dtype=np.float32)
+        x64 = x32.astype(np.float64)
+        bands = bands_for(name)
+        doc = header(f"scipy.signal.welch of signal {name!r}")
+        doc.update(
+            {
+                "signal": name,
+                "stream": stream,
+                "description": description,
+                "n_samples": len(x32),
+                "samples_f32_hex": f32_hex(x32),
+                "low_cut_hz": LOW_CUT_HZ,
+                "channel_unit": "g",
+                "bands": bands,
+                "cases": [
+                    welch_case(x64, *c, bands=bands) for c in cases_for(name)
+                ],
+            }
+        )
+        write(out_dir, f"welch_{name}.json", doc)
+
+
+if __name__ == "__main__":
+    main()
