@@ -1,17 +1,96 @@
 //! HTTP: the JSON API, `/metrics`, health endpoints. Handlers only read
 //! snapshots and counters; they never block a DSP worker.
+//!
+//! - `api`: `/healthz`, `/readyz`, `/api/v1/channels…` (JSON, CSV)
+//! - `scaling`: pure spectrum conversions (scaling, unit, frequency crop)
+//! - `metrics`: the Prometheus registry and the scrape-time collector
+//! - `error`: `ApiError`, the JSON error every failure is answered with
+
+pub mod api;
+pub mod error;
+pub mod metrics;
+pub mod scaling;
 
 use std::sync::Arc;
 
+use axum::extract::{MatchedPath, Request, State};
+use axum::http::{header, StatusCode};
+use axum::middleware::{self, Next};
+use axum::response::{IntoResponse, Response};
 use axum::routing::get;
 use axum::Router;
 
+pub use crate::http::error::ApiError;
+use crate::http::metrics::Metrics;
 use crate::snapshot::AppState;
+
+/// Route label for requests that matched no route (keeps the
+/// `path` label of `bandwatch_http_requests_total` bounded).
+const UNMATCHED: &str = "unmatched";
+
+/// What every handler gets: the pipeline's read side and the registry.
+#[derive(Clone)]
+pub struct HttpState {
+    pub app: Arc<AppState>,
+    pub metrics: Arc<Metrics>,
+}
 
 /// Builds the router; kept apart from `serve` so tests can call it with
 /// `tower::ServiceExt::oneshot` and no socket.
 pub fn router(state: Arc<AppState>) -> Router {
-    Router::new()
-        .route("/healthz", get(|| async { "ok\n" }))
-        .with_state(state)
+    let metrics = Arc::new(Metrics::new(state.clone()));
+    router_with(HttpState {
+        app: state,
+        metrics,
+    })
 }
+
+/// As [`router`], with a prepared state (tests pin the metrics clock).
+pub fn router_with(st: HttpState) -> Router {
+    Router::new()
+        .route("/healthz", get(api::healthz))
+        .route("/readyz", get(api::readyz))
+        .route("/metrics", get(metrics_handler))
+        .route("/api/v1/channels", get(api::list_channels))
+        .route("/api/v1/channels/{name}", get(api::channel_detail))
+        .route("/api/v1/channels/{name}/spectrum", get(api::spectrum))
+        .route("/api/v1/channels/{name}/waveform", get(api::waveform))
+        .route_layer(middleware::from_fn_with_state(st.clone(), count_matched))
+        .fallback(count_unmatched)
+        .method_not_allowed_fallback(api::method_not_allowed)
+        .with_state(st)
+}
+
+/// Counts a request that matched a route, under its template
+/// (`/api/v1/channels/{name}`), never the raw path.
+async fn count_matched(State(st): State<HttpState>, req: Request, next: Next) -> Response {
+    let path = req.extensions().get::<MatchedPath>().cloned();
+    let resp = next.run(req).await;
+    let label = path.as_ref().map_or(UNMATCHED, MatchedPath::as_str);
+    st.metrics.observe_request(label, resp.status());
+    resp
+}
+
+async fn count_unmatched(State(st): State<HttpState>) -> ApiError {
+    let e = ApiError::NoRoute;
+    st.metrics.observe_request(UNMATCHED, e.status());
+    e
+}
+
+async fn metrics_handler(State(st): State<HttpState>) -> Response {
+    match st.metrics.render() {
+        Ok(body) => (
+            StatusCode::OK,
+            [(header::CONTENT_TYPE, metrics::CONTENT_TYPE)],
+            body,
+        )
+            .into_response(),
+        Err(e) => {
+            tracing::error!(error = %e, "cannot encode /metrics");
+            ApiError::Internal.into_response()
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests;

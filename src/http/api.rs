@@ -1,0 +1,557 @@
+//! JSON (and CSV) handlers of `/api/v1/…`, `/healthz` and `/readyz`. They
+//! read the latest snapshot of a channel with one atomic load and its
+//! counters with relaxed loads; nothing here can block a DSP worker.
+
+use std::fmt::Write as _;
+use std::sync::Arc;
+
+use axum::extract::rejection::QueryRejection;
+use axum::extract::{Path, Query, State};
+use axum::http::header;
+use axum::response::{IntoResponse, Response};
+use axum::Json;
+use serde::Serialize;
+use serde_json::{json, Map, Value};
+
+use crate::config::{AveragingMode, ChannelSpec};
+use crate::counters::{ChannelCounters, GapReason};
+use crate::http::error::ApiError;
+use crate::http::scaling::{line_range, Conversion, Scaling};
+use crate::http::HttpState;
+use crate::snapshot::{unix_now_ns, AppState, ChannelShared, ChannelSnapshot};
+use crate::units::{convertible, Unit};
+
+/// Shortest time after which a channel counts as stale, whatever its rate.
+const MIN_STALE_SECONDS: f64 = 2.0;
+/// A channel is stale after this many missed publications.
+const STALE_INTERVALS: f64 = 3.0;
+
+// ---------------------------------------------------------------------------
+// Query strings
+// ---------------------------------------------------------------------------
+
+/// The query string as key/value pairs, checked against the keys a handler
+/// knows: an unknown or repeated key is a 400 naming it, so a typo such as
+/// `fmn=` is not silently ignored.
+struct Params(Vec<(String, String)>);
+
+impl Params {
+    fn new(
+        q: Result<Query<Vec<(String, String)>>, QueryRejection>,
+        known: &[&str],
+    ) -> Result<Params, ApiError> {
+        let Query(pairs) =
+            q.map_err(|_| ApiError::BadQuery("the query string is not valid URL encoding".into()))?;
+        for (i, (k, _)) in pairs.iter().enumerate() {
+            if !known.contains(&k.as_str()) {
+                return Err(ApiError::BadQuery(format!(
+                    "unknown query parameter {k:?} (known: {})",
+                    known.join(", ")
+                )));
+            }
+            if pairs[..i].iter().any(|(k2, _)| k2 == k) {
+                return Err(ApiError::BadQuery(format!(
+                    "query parameter {k:?} is given more than once"
+                )));
+            }
+        }
+        Ok(Params(pairs))
+    }
+
+    fn get(&self, key: &str) -> Option<&str> {
+        self.0
+            .iter()
+            .find(|(k, _)| k == key)
+            .map(|(_, v)| v.as_str())
+    }
+
+    fn f64(&self, key: &str) -> Result<Option<f64>, ApiError> {
+        self.get(key)
+            .map(|v| {
+                v.trim().parse::<f64>().map_err(|_| {
+                    ApiError::BadQuery(format!("{key}={v:?} is not a number (frequency in Hz)"))
+                })
+            })
+            .transpose()
+    }
+
+    /// `format=json` (default) or `format=csv`.
+    fn csv(&self) -> Result<bool, ApiError> {
+        match self.get("format") {
+            None | Some("json") => Ok(false),
+            Some("csv") => Ok(true),
+            Some(other) => Err(ApiError::BadQuery(format!(
+                "format={other:?} is not known (known: json, csv)"
+            ))),
+        }
+    }
+}
+
+// ---------------------------------------------------------------------------
+// Shared pieces
+// ---------------------------------------------------------------------------
+
+/// RFC 3339 UTC time with nanoseconds, e.g. `2023-11-14T22:13:20.123456789Z`;
+/// `None` for 0 (unknown) or a time `time` cannot represent.
+pub(crate) fn rfc3339_ns(ns: u64) -> Option<String> {
+    if ns == 0 {
+        return None;
+    }
+    let t = time::OffsetDateTime::from_unix_timestamp_nanos(i128::from(ns)).ok()?;
+    Some(format!(
+        "{:04}-{:02}-{:02}T{:02}:{:02}:{:02}.{:09}Z",
+        t.year(),
+        u8::from(t.month()),
+        t.day(),
+        t.hour(),
+        t.minute(),
+        t.second(),
+        t.nanosecond()
+    ))
+}
+
+pub(crate) fn averaging_str(mode: AveragingMode) -> &'static str {
+    match mode {
+        AveragingMode::None => "none",
+        AveragingMode::Linear => "linear",
+        AveragingMode::Exponential => "exponential",
+        AveragingMode::PeakHold => "peak-hold",
+    }
+}
+
+/// Seconds between two publications of a channel: every `count` blocks for
+/// linear and peak-hold averaging, every block for exponential and none.
+pub(crate) fn expected_interval_seconds(spec: &ChannelSpec) -> f64 {
+    let blocks = match spec.averaging {
+        AveragingMode::Linear | AveragingMode::PeakHold => spec.average_count.max(1),
+        AveragingMode::Exponential | AveragingMode::None => 1,
+    };
+    spec.hop as f64 * f64::from(blocks) / spec.sample_rate_hz
+}
+
+/// Age after which the spectrum counts as stale:
+/// max(3 × expected interval, 2 s).
+pub(crate) fn stale_after_seconds(spec: &ChannelSpec) -> f64 {
+    (STALE_INTERVALS * expected_interval_seconds(spec)).max(MIN_STALE_SECONDS)
+}
+
+fn age_seconds(snap: &ChannelSnapshot, now_ns: u64) -> f64 {
+    now_ns.saturating_sub(snap.published_unix_ns) as f64 * 1e-9
+}
+
+fn channel_of<'a>(app: &'a AppState, name: &str) -> Result<&'a Arc<ChannelShared>, ApiError> {
+    app.channel(name)
+        .ok_or_else(|| ApiError::UnknownChannel(name.to_string()))
+}
+
+fn latest_of(ch: &ChannelShared) -> Result<Arc<ChannelSnapshot>, ApiError> {
+    ch.latest()
+        .ok_or_else(|| ApiError::NoSnapshot(ch.spec.name.clone()))
+}
+
+fn csv_response(body: String) -> Response {
+    ([(header::CONTENT_TYPE, "text/csv; charset=utf-8")], body).into_response()
+}
+
+// ---------------------------------------------------------------------------
+// Health
+// ---------------------------------------------------------------------------
+
+pub async fn healthz() -> Json<Value> {
+    Json(json!({ "status": "ok" }))
+}
+
+pub async fn readyz(State(st): State<HttpState>) -> Result<Json<Value>, ApiError> {
+    let waiting: Vec<String> = st
+        .app
+        .channels
+        .iter()
+        .filter(|c| c.snapshot.load().is_none())
+        .map(|c| c.spec.name.clone())
+        .collect();
+    if waiting.is_empty() {
+        Ok(Json(
+            json!({ "status": "ready", "channels": st.app.channels.len() }),
+        ))
+    } else {
+        Err(ApiError::Waiting(waiting))
+    }
+}
+
+// ---------------------------------------------------------------------------
+// Channels
+// ---------------------------------------------------------------------------
+
+#[derive(Serialize)]
+struct SourceInfo<'a> {
+    name: &'a str,
+    kind: &'a str,
+    /// `connected` or `disconnected`.
+    state: &'static str,
+}
+
+#[derive(Serialize)]
+struct Averaging {
+    mode: &'static str,
+    count: u32,
+}
+
+#[derive(Serialize)]
+struct ChannelSummary<'a> {
+    name: &'a str,
+    unit: &'static str,
+    quantity: &'static str,
+    sample_rate_hz: f64,
+    block: usize,
+    nfft: usize,
+    hop: usize,
+    window: &'static str,
+    overlap: f64,
+    averaging: Averaging,
+    source: SourceInfo<'a>,
+    /// Seconds between publications the config implies.
+    expected_update_interval_seconds: f64,
+    /// Seconds since the latest spectrum was published; null before the first.
+    spectrum_age_seconds: Option<f64>,
+    /// No spectrum yet, or the latest is older than
+    /// max(3 × expected interval, 2 s).
+    stale: bool,
+}
+
+fn summary<'a>(
+    app: &'a AppState,
+    ch: &'a ChannelShared,
+    snap: Option<&ChannelSnapshot>,
+    now_ns: u64,
+) -> ChannelSummary<'a> {
+    let spec = &ch.spec;
+    let source = app.source(&spec.source);
+    let age = snap.map(|s| age_seconds(s, now_ns));
+    ChannelSummary {
+        name: &spec.name,
+        unit: spec.unit.symbol,
+        quantity: spec.unit.quantity.as_str(),
+        sample_rate_hz: spec.sample_rate_hz,
+        block: spec.block,
+        nfft: spec.nfft,
+        hop: spec.hop,
+        window: spec.window.as_str(),
+        overlap: spec.overlap,
+        averaging: Averaging {
+            mode: averaging_str(spec.averaging),
+            count: spec.average_count,
+        },
+        source: SourceInfo {
+            name: &spec.source,
+            kind: source.map_or("unknown", |s| s.kind),
+            state: if source.is_some_and(|s| s.is_connected()) {
+                "connected"
+            } else {
+                "disconnected"
+            },
+        },
+        expected_update_interval_seconds: expected_interval_seconds(spec),
+        spectrum_age_seconds: age,
+        stale: age.map_or(true, |a| a > stale_after_seconds(spec)),
+    }
+}
+
+pub async fn list_channels(State(st): State<HttpState>) -> Json<Value> {
+    let now = unix_now_ns();
+    let list: Vec<Value> = st
+        .app
+        .channels
+        .iter()
+        .map(|ch| {
+            let snap = ch.latest();
+            serde_json::to_value(summary(&st.app, ch, snap.as_deref(), now)).unwrap_or(Value::Null)
+        })
+        .collect();
+    Json(json!({ "channels": list }))
+}
+
+#[derive(Serialize)]
+struct BandInfo<'a> {
+    name: &'a str,
+    lo_hz: f64,
+    hi_hz: f64,
+    measure: &'static str,
+    unit: &'static str,
+    quantity: &'static str,
+    /// Null before the first spectrum.
+    value: Option<f64>,
+    peak_hz: Option<f64>,
+}
+
+#[derive(Serialize)]
+struct OverallInfo {
+    mean: f64,
+    rms: f64,
+    peak: f64,
+    peak_to_peak: f64,
+    crest_factor: f64,
+    unit: &'static str,
+}
+
+fn reasons(f: impl Fn(GapReason) -> u64) -> Map<String, Value> {
+    GapReason::ALL
+        .iter()
+        .map(|&r| (r.as_str().to_string(), Value::from(f(r))))
+        .collect()
+}
+
+fn counters_json(c: &ChannelCounters) -> Value {
+    json!({
+        "samples_in": ChannelCounters::get(&c.samples_in),
+        "samples_processed": ChannelCounters::get(&c.samples_processed),
+        "samples_dropped": reasons(|r| c.dropped(r)),
+        "samples_dropped_total": c.dropped_total(),
+        "discontinuities": reasons(|r| c.discontinuities(r)),
+        "blocks": ChannelCounters::get(&c.blocks),
+        "spectra": ChannelCounters::get(&c.spectra),
+    })
+}
+
+pub async fn channel_detail(
+    State(st): State<HttpState>,
+    Path(name): Path<String>,
+) -> Result<Json<Value>, ApiError> {
+    let ch = channel_of(&st.app, &name)?;
+    let snap = ch.latest();
+    let spec = &ch.spec;
+    let mut body = serde_json::to_value(summary(&st.app, ch, snap.as_deref(), unix_now_ns()))
+        .map_err(|e| {
+            tracing::error!(error = %e, channel = %name, "cannot serialise a channel summary");
+            ApiError::Internal
+        })?;
+    let bands: Vec<BandInfo> = spec
+        .bands
+        .iter()
+        .enumerate()
+        .map(|(i, b)| {
+            let v = snap.as_ref().and_then(|s| s.bands.get(i));
+            BandInfo {
+                name: &b.name,
+                lo_hz: b.lo_hz,
+                hi_hz: b.hi_hz,
+                measure: b.measure.as_str(),
+                unit: b.unit.symbol,
+                quantity: b.unit.quantity.as_str(),
+                value: v.map(|v| v.value),
+                peak_hz: v.map(|v| v.peak_hz),
+            }
+        })
+        .collect();
+    let overall = snap.as_ref().map(|s| OverallInfo {
+        mean: s.overall.mean,
+        rms: s.overall.rms,
+        peak: s.overall.peak,
+        peak_to_peak: s.overall.peak_to_peak,
+        crest_factor: s.overall.crest_factor,
+        unit: spec.unit.symbol,
+    });
+    if let Value::Object(m) = &mut body {
+        m.insert(
+            "integration_low_cut_hz".into(),
+            spec.integration_low_cut_hz.into(),
+        );
+        m.insert("bands".into(), json!(bands));
+        m.insert("overall".into(), json!(overall));
+        m.insert("counters".into(), counters_json(&ch.counters));
+        m.insert(
+            "spectrum".into(),
+            match &snap {
+                Some(s) => json!({
+                    "seq": s.seq,
+                    "averages": s.averages,
+                    "first_sample": s.first_sample,
+                    "timestamp": rfc3339_ns(s.timestamp_ns),
+                    "published": rfc3339_ns(s.published_unix_ns),
+                }),
+                None => Value::Null,
+            },
+        );
+    }
+    Ok(Json(body))
+}
+
+// ---------------------------------------------------------------------------
+// Spectrum
+// ---------------------------------------------------------------------------
+
+#[derive(Serialize)]
+struct SpectrumBody<'a> {
+    channel: &'a str,
+    /// Unit of `values` (e.g. `mm/s`, `g^2/Hz`).
+    unit: String,
+    /// Quantity of the unit asked for (acceleration, velocity…).
+    quantity: &'static str,
+    scaling: &'static str,
+    window: &'static str,
+    block: usize,
+    nfft: usize,
+    sample_rate_hz: f64,
+    /// Resolution of the analysis, fs/block.
+    resolution_hz: f64,
+    /// Line spacing, fs/nfft.
+    df_hz: f64,
+    /// Equivalent noise bandwidth of the window in Hz.
+    enbw_hz: f64,
+    averages: u32,
+    averaging: &'static str,
+    first_sample: u64,
+    timestamp: Option<String>,
+    /// Frequency of `values[0]`.
+    f0_hz: f64,
+    /// Lines below this are zero when the unit integrates the channel's.
+    integration_low_cut_hz: Option<f64>,
+    values: Vec<f32>,
+}
+
+pub async fn spectrum(
+    State(st): State<HttpState>,
+    Path(name): Path<String>,
+    q: Result<Query<Vec<(String, String)>>, QueryRejection>,
+) -> Result<Response, ApiError> {
+    let params = Params::new(q, &["scaling", "unit", "fmin", "fmax", "format"])?;
+    let ch = channel_of(&st.app, &name)?;
+    let spec = &ch.spec;
+    let scaling = match params.get("scaling") {
+        None => Scaling::Rms,
+        Some(s) => Scaling::parse(s).ok_or_else(|| {
+            ApiError::BadQuery(format!(
+                "scaling={s:?} is not known (known: {})",
+                Scaling::known()
+            ))
+        })?,
+    };
+    let to = match params.get("unit") {
+        None => spec.unit,
+        Some(s) => {
+            let u = Unit::parse(s).ok_or_else(|| {
+                ApiError::BadQuery(format!(
+                    "unit={s:?} is not known (known: {})",
+                    Unit::known()
+                ))
+            })?;
+            if !convertible(spec.unit, u) {
+                return Err(ApiError::BadQuery(format!(
+                    "unit={s:?} ({}) cannot be derived from channel {:?} in {} ({})",
+                    u.quantity.as_str(),
+                    spec.name,
+                    spec.unit,
+                    spec.unit.quantity.as_str()
+                )));
+            }
+            u
+        }
+    };
+    let csv = params.csv()?;
+    let range = line_range(
+        params.f64("fmin")?,
+        params.f64("fmax")?,
+        spec.df_hz(),
+        spec.bins(),
+    )
+    .map_err(|e| ApiError::BadQuery(e.to_string()))?;
+    let snap = latest_of(ch)?;
+    let conv = Conversion {
+        scaling,
+        from: spec.unit,
+        to,
+        low_cut_hz: spec.integration_low_cut_hz,
+        df_hz: spec.df_hz(),
+        noise_bw_hz: ch.noise_bandwidth_hz(),
+    };
+    let first = *range.start();
+    let values = conv.apply(&snap.power, range);
+    let f0_hz = first as f64 * spec.df_hz();
+    let unit = scaling.unit_label(to);
+    if csv {
+        let mut out = String::with_capacity(16 * values.len() + 64);
+        let _ = writeln!(out, "frequency_hz,{}_{}", scaling.as_str(), unit);
+        for (i, v) in values.iter().enumerate() {
+            let _ = writeln!(out, "{},{}", (first + i) as f64 * spec.df_hz(), v);
+        }
+        return Ok(csv_response(out));
+    }
+    let integrates = matches!(
+        (to.quantity.kinematic_order(), spec.unit.quantity.kinematic_order()),
+        (Some(a), Some(b)) if a < b
+    );
+    Ok(Json(SpectrumBody {
+        channel: &spec.name,
+        unit,
+        quantity: to.quantity.as_str(),
+        scaling: scaling.as_str(),
+        window: spec.window.as_str(),
+        block: spec.block,
+        nfft: spec.nfft,
+        sample_rate_hz: spec.sample_rate_hz,
+        resolution_hz: spec.sample_rate_hz / spec.block as f64,
+        df_hz: spec.df_hz(),
+        enbw_hz: ch.noise_bandwidth_hz(),
+        averages: snap.averages,
+        averaging: averaging_str(spec.averaging),
+        first_sample: snap.first_sample,
+        timestamp: rfc3339_ns(snap.timestamp_ns),
+        f0_hz,
+        integration_low_cut_hz: integrates.then_some(spec.integration_low_cut_hz),
+        values,
+    })
+    .into_response())
+}
+
+// ---------------------------------------------------------------------------
+// Waveform
+// ---------------------------------------------------------------------------
+
+#[derive(Serialize)]
+struct WaveformBody<'a> {
+    channel: &'a str,
+    unit: &'static str,
+    sample_rate_hz: f64,
+    /// Stream index of `values[0]`.
+    first_sample: u64,
+    timestamp: Option<String>,
+    values: &'a [f32],
+}
+
+pub async fn waveform(
+    State(st): State<HttpState>,
+    Path(name): Path<String>,
+    q: Result<Query<Vec<(String, String)>>, QueryRejection>,
+) -> Result<Response, ApiError> {
+    let params = Params::new(q, &["format"])?;
+    let ch = channel_of(&st.app, &name)?;
+    let csv = params.csv()?;
+    let snap = latest_of(ch)?;
+    let spec = &ch.spec;
+    if csv {
+        let mut out = String::with_capacity(24 * snap.waveform.len() + 16);
+        out.push_str("time_s,value\n");
+        let dt = 1.0 / spec.sample_rate_hz;
+        for (i, v) in snap.waveform.iter().enumerate() {
+            let _ = writeln!(out, "{},{}", i as f64 * dt, v);
+        }
+        return Ok(csv_response(out));
+    }
+    Ok(Json(WaveformBody {
+        channel: &spec.name,
+        unit: spec.unit.symbol,
+        sample_rate_hz: spec.sample_rate_hz,
+        first_sample: snap.first_sample,
+        timestamp: rfc3339_ns(snap.timestamp_ns),
+        values: &snap.waveform,
+    })
+    .into_response())
+}
+
+/// Fallback for unknown paths: JSON 404 like every other error.
+pub async fn no_route() -> ApiError {
+    ApiError::NoRoute
+}
+
+pub async fn method_not_allowed() -> ApiError {
+    ApiError::MethodNotAllowed
+}

@@ -1,0 +1,57 @@
+//! The one error type of the HTTP API. Every failure a client can see is an
+//! `ApiError`, rendered as JSON `{"error": "..."}` with a status that says
+//! whose fault it is. Messages name what the client sent (a channel, a query
+//! key) and never carry internal details: those go to the log.
+
+use axum::http::StatusCode;
+use axum::response::{IntoResponse, Response};
+use axum::Json;
+use serde_json::json;
+
+#[derive(Debug, thiserror::Error)]
+pub enum ApiError {
+    /// No channel of that name in the config.
+    #[error("unknown channel {0:?}")]
+    UnknownChannel(String),
+    /// A query parameter is missing its value, unknown, repeated or out of range.
+    #[error("{0}")]
+    BadQuery(String),
+    /// The channel exists but has not published a spectrum yet.
+    #[error("channel {0:?} has not published a spectrum yet; retry shortly")]
+    NoSnapshot(String),
+    /// `/readyz`: these channels have not published a spectrum yet.
+    #[error("not ready: {} channel(s) still waiting for a first spectrum", .0.len())]
+    Waiting(Vec<String>),
+    /// No route for this path.
+    #[error("no such endpoint")]
+    NoRoute,
+    /// A route exists but not for this method.
+    #[error("method not allowed")]
+    MethodNotAllowed,
+    /// Something on our side failed; the detail is logged, not sent.
+    #[error("internal error")]
+    Internal,
+}
+
+impl ApiError {
+    pub fn status(&self) -> StatusCode {
+        match self {
+            ApiError::UnknownChannel(_) | ApiError::NoRoute => StatusCode::NOT_FOUND,
+            ApiError::BadQuery(_) => StatusCode::BAD_REQUEST,
+            ApiError::NoSnapshot(_) | ApiError::Waiting(_) => StatusCode::SERVICE_UNAVAILABLE,
+            ApiError::MethodNotAllowed => StatusCode::METHOD_NOT_ALLOWED,
+            ApiError::Internal => StatusCode::INTERNAL_SERVER_ERROR,
+        }
+    }
+}
+
+impl IntoResponse for ApiError {
+    fn into_response(self) -> Response {
+        let status = self.status();
+        let body = match &self {
+            ApiError::Waiting(names) => json!({ "error": self.to_string(), "waiting": names }),
+            _ => json!({ "error": self.to_string() }),
+        };
+        (status, Json(body)).into_response()
+    }
+}

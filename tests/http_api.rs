@@ -1,0 +1,213 @@
+//! The real daemon in-process (`bandwatch::serve` on 127.0.0.1:0) playing
+//! the demo config, queried over a real TCP socket, then shut down.
+//!
+//! Expected frequencies come from the demo scenario of the design (a 4-pole
+//! motor at 1485 rpm: 1× = 24.75 Hz; 7 impeller vanes: 173.25 Hz), not from
+//! this code.
+
+mod common;
+
+use std::net::SocketAddr;
+use std::time::{Duration, Instant};
+
+use serde_json::Value;
+use tokio::sync::oneshot;
+
+use common::{get, try_get};
+
+const DEMO: &str = include_str!("../config/demo.toml");
+/// Bound on waiting for every channel's first spectrum.
+const READY_TIMEOUT: Duration = Duration::from_secs(20);
+const SHAFT_HZ: f64 = 1485.0 / 60.0;
+const VANE_PASS_HZ: f64 = 7.0 * SHAFT_HZ;
+
+/// The demo config with the simulator playing 4× real time.
+fn demo_config() -> bandwatch::config::Config {
+    let text = DEMO.replacen("seed = 2\n", "seed = 2\nspeed = 4.0\n", 1);
+    assert_ne!(text, DEMO, "config/demo.toml no longer has `seed = 2`");
+    match bandwatch::config::parse_str(&text) {
+        Ok(c) => c,
+        Err(e) => panic!("demo config: {e:?}"),
+    }
+}
+
+fn num(v: &Value) -> f64 {
+    v.as_f64().unwrap_or_else(|| panic!("not a number: {v}"))
+}
+
+/// Frequency of the largest value of a spectrum body.
+fn peak_frequency(spectrum: &Value, skip_dc: bool) -> f64 {
+    let values = spectrum["values"].as_array().expect("values");
+    let start = usize::from(skip_dc);
+    let (k, _) = values
+        .iter()
+        .enumerate()
+        .skip(start)
+        .map(|(k, v)| (k, num(v)))
+        .fold(
+            (0, f64::NEG_INFINITY),
+            |best, x| if x.1 > best.1 { x } else { best },
+        );
+    num(&spectrum["f0_hz"]) + k as f64 * num(&spectrum["df_hz"])
+}
+
+async fn wait_ready(addr: SocketAddr) {
+    let start = Instant::now();
+    loop {
+        if let Ok(r) = try_get(addr, "/readyz").await {
+            if r.status == 200 {
+                return;
+            }
+            assert_eq!(r.status, 503, "{}", r.text());
+            assert!(r.json()["waiting"].is_array());
+        }
+        assert!(
+            start.elapsed() < READY_TIMEOUT,
+            "not ready within {READY_TIMEOUT:?}"
+        );
+        tokio::time::sleep(Duration::from_millis(100)).await;
+    }
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn daemon_serves_the_demo_over_tcp() {
+    let listener = tokio::net::TcpListener::bind("127.0.0.1:0")
+        .await
+        .expect("bind");
+    let addr = listener.local_addr().expect("addr");
+    let (stop_tx, stop_rx) = oneshot::channel::<()>();
+    let server = tokio::spawn(bandwatch::serve(demo_config(), listener, async move {
+        let _ = stop_rx.await;
+    }));
+
+    let r = get(addr, "/healthz").await;
+    assert_eq!(r.status, 200);
+    wait_ready(addr).await;
+    let r = get(addr, "/readyz").await;
+    assert_eq!(r.status, 200);
+    assert_eq!(r.json()["status"], "ready");
+
+    // Channel list.
+    let r = get(addr, "/api/v1/channels").await;
+    assert_eq!(r.status, 200);
+    assert!(r
+        .header("content-type")
+        .unwrap_or("")
+        .starts_with("application/json"));
+    let list = r.json();
+    let names: Vec<&str> = list["channels"]
+        .as_array()
+        .expect("channels")
+        .iter()
+        .map(|c| c["name"].as_str().expect("name"))
+        .collect();
+    assert_eq!(names, ["motor-de", "pump-de", "pump-nde"]);
+    for c in list["channels"].as_array().expect("channels") {
+        assert_eq!(c["source"]["state"], "connected", "{c}");
+        assert_eq!(c["stale"], false, "{c}");
+        assert_eq!(num(&c["sample_rate_hz"]), 25600.0);
+        assert_eq!(c["block"], 8192);
+    }
+
+    // One channel.
+    let r = get(addr, "/api/v1/channels/pump-de").await;
+    assert_eq!(r.status, 200);
+    let d = r.json();
+    let bands = d["bands"].as_array().expect("bands");
+    assert_eq!(bands.len(), 6);
+    assert!(bands.iter().all(|b| b["value"].is_f64()), "{d}");
+    assert!(num(&d["counters"]["spectra"]) >= 1.0);
+    assert!(num(&d["overall"]["rms"]) > 0.0);
+
+    // motor-de: dominated by 1× (unbalance), so the largest line is within
+    // one line of 24.75 Hz.
+    let r = get(addr, "/api/v1/channels/motor-de/spectrum").await;
+    assert_eq!(r.status, 200);
+    let s = r.json();
+    assert_eq!(s["values"].as_array().map(Vec::len), Some(8192 / 2 + 1));
+    let df = num(&s["df_hz"]);
+    assert_eq!(df, 25600.0 / 8192.0);
+    let f = peak_frequency(&s, true);
+    assert!((f - SHAFT_HZ).abs() <= df, "motor-de peak at {f} Hz");
+
+    // pump-de between 100 and 1000 Hz: vane pass at 173.25 Hz.
+    let r = get(
+        addr,
+        "/api/v1/channels/pump-de/spectrum?fmin=100&fmax=1000&unit=mm/s",
+    )
+    .await;
+    assert_eq!(r.status, 200, "{}", r.text());
+    let s = r.json();
+    assert_eq!(s["unit"], "mm/s");
+    assert!(num(&s["f0_hz"]) >= 100.0);
+    let f = peak_frequency(&s, false);
+    assert!(
+        (f - VANE_PASS_HZ).abs() <= df,
+        "pump-de 100–1000 Hz peak at {f} Hz"
+    );
+
+    // CSV.
+    let r = get(
+        addr,
+        "/api/v1/channels/motor-de/spectrum?format=csv&fmax=100",
+    )
+    .await;
+    assert_eq!(r.status, 200);
+    assert!(r
+        .header("content-type")
+        .unwrap_or("")
+        .starts_with("text/csv"));
+    let text = r.text();
+    let mut lines = text.lines();
+    assert_eq!(lines.next(), Some("frequency_hz,rms_g"));
+    // Lines 0, 3.125, …, 100 Hz: 33 of them.
+    assert_eq!(lines.count(), 33);
+
+    // Waveform: the newest block, in g.
+    let r = get(addr, "/api/v1/channels/pump-nde/waveform").await;
+    assert_eq!(r.status, 200);
+    let w = r.json();
+    assert_eq!(w["unit"], "g");
+    assert_eq!(w["values"].as_array().map(Vec::len), Some(8192));
+
+    // Errors are JSON.
+    let r = get(addr, "/api/v1/channels/no-such/spectrum").await;
+    assert_eq!(r.status, 404);
+    assert!(r.json()["error"].as_str().is_some());
+    let r = get(addr, "/api/v1/channels/motor-de/spectrum?fmin=50&fmax=10").await;
+    assert_eq!(r.status, 400);
+
+    // Metrics.
+    let r = get(addr, "/metrics").await;
+    assert_eq!(r.status, 200);
+    assert_eq!(r.header("content-type"), Some("text/plain; version=0.0.4"));
+    let text = r.text();
+    let series =
+        r#"bandwatch_band_rms_meters_per_second{channel="motor-de",band="overall-velocity"} "#;
+    let v: f64 = text
+        .lines()
+        .find_map(|l| l.strip_prefix(series))
+        .unwrap_or_else(|| panic!("{series} missing"))
+        .trim()
+        .parse()
+        .expect("value");
+    // The demo's motor runs at a few mm/s: a sanity range, not a check value.
+    assert!((0.0005..0.02).contains(&v), "{v} m/s");
+    assert!(text.contains(r#"bandwatch_source_up{source="sim",kind="sim"} 1"#));
+    assert!(text.contains(
+        r#"bandwatch_http_requests_total{path="/api/v1/channels/{name}/spectrum",status="200"}"#
+    ));
+
+    // Clean shutdown.
+    let _ = stop_tx.send(());
+    match tokio::time::timeout(Duration::from_secs(10), server).await {
+        Ok(Ok(Ok(()))) => {}
+        Ok(Ok(Err(e))) => panic!("serve failed: {e}"),
+        Ok(Err(e)) => panic!("serve task panicked: {e}"),
+        Err(_) => panic!("serve did not stop within 10 s"),
+    }
+    assert!(
+        try_get(addr, "/healthz").await.is_err(),
+        "still answering after shutdown"
+    );
+}
