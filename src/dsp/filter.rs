@@ -17,6 +17,11 @@ use realfft::RealFftPlanner;
 /// Returns the part of `block` (sampled at `fs`) between `lo_hz` and
 /// `hi_hz`, lines inclusive.
 pub fn band_pass(block: &[f32], fs: f64, lo_hz: f64, hi_hz: f64) -> Vec<f32> {
+    band_pass_ranges(block, fs, &[(lo_hz, hi_hz)])
+}
+
+/// As [`band_pass`], keeping the lines inside any of `ranges` (Hz).
+pub fn band_pass_ranges(block: &[f32], fs: f64, ranges: &[(f64, f64)]) -> Vec<f32> {
     let n = block.len();
     if n < 2 {
         return block.to_vec();
@@ -33,7 +38,7 @@ pub fn band_pass(block: &[f32], fs: f64, lo_hz: f64, hi_hz: f64) -> Vec<f32> {
     let zero = Complex::new(0.0, 0.0);
     for (k, x) in spec.iter_mut().enumerate() {
         let f = k as f64 * df;
-        if f < lo_hz || f > hi_hz {
+        if !ranges.iter().any(|&(lo, hi)| f >= lo && f <= hi) {
             *x = zero;
         }
     }

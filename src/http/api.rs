@@ -13,8 +13,9 @@ use axum::Json;
 use serde::Serialize;
 use serde_json::{json, Map, Value};
 
-use crate::config::{AveragingMode, ChannelSpec};
+use crate::config::{AveragingMode, BandEdges, ChannelSpec};
 use crate::counters::{ChannelCounters, GapReason};
+use crate::dsp::bands::BandStatus;
 use crate::http::error::ApiError;
 use crate::http::scaling::{line_range, Conversion, Scaling};
 use crate::http::HttpState;
@@ -210,6 +211,10 @@ struct ChannelSummary<'a> {
     averaging: Averaging,
     source: SourceInfo<'a>,
     /// Seconds between publications the config implies.
+    /// The machine whose speed the order bands follow, with that speed now.
+    machine: Option<MachineInfo<'a>>,
+    /// Envelope analysis band-pass [lo, hi] Hz, if configured.
+    envelope_hz: Option<[f64; 2]>,
     expected_update_interval_seconds: f64,
     /// Seconds since the latest spectrum was published; null before the first.
     spectrum_age_seconds: Option<f64>,
@@ -250,6 +255,16 @@ fn summary<'a>(
                 "disconnected"
             },
         },
+        machine: spec.machine.as_deref().map(|m| MachineInfo {
+            name: m,
+            speed_source: app.machine(m).map_or("unknown", |x| x.spec.speed.as_str()),
+            speed_hz: app.machine(m).and_then(|x| x.speed_hz()),
+            speed_rpm: app
+                .machine(m)
+                .and_then(|x| x.speed_hz())
+                .map(|hz| hz * 60.0),
+        }),
+        envelope_hz: spec.envelope.map(|(a, b)| [a, b]),
         expected_update_interval_seconds: expected_interval_seconds(spec),
         spectrum_age_seconds: age,
         stale: age.map_or(true, |a| a > stale_after_seconds(spec)),
@@ -271,10 +286,30 @@ pub async fn list_channels(State(st): State<HttpState>) -> Json<Value> {
 }
 
 #[derive(Serialize)]
+struct MachineInfo<'a> {
+    name: &'a str,
+    /// "fixed", "tach" or "peak".
+    speed_source: &'static str,
+    /// Null while the speed is unknown or stale.
+    speed_hz: Option<f64>,
+    speed_rpm: Option<f64>,
+}
+
+#[derive(Serialize)]
 struct BandInfo<'a> {
     name: &'a str,
-    lo_hz: f64,
-    hi_hz: f64,
+    /// Edges in Hz: fixed, or (order and bearing bands) at the speed of the
+    /// latest spectrum; null while that speed is unknown.
+    lo_hz: Option<f64>,
+    hi_hz: Option<f64>,
+    /// Order windows [lo, hi] for order and bearing bands.
+    orders: Option<Vec<[f64; 2]>>,
+    bearing: Option<&'a str>,
+    defect: Option<&'static str>,
+    /// "raw" or "envelope": which spectrum the band reads.
+    spectrum: &'static str,
+    /// "ok", or why there is no value: "no_speed", "above_nyquist", "no_line".
+    status: Option<&'static str>,
     measure: &'static str,
     unit: &'static str,
     quantity: &'static str,
@@ -330,15 +365,32 @@ pub async fn channel_detail(
         .enumerate()
         .map(|(i, b)| {
             let v = snap.as_ref().and_then(|s| s.bands.get(i));
+            let (lo_hz, hi_hz, orders) = match &b.edges {
+                BandEdges::Hz { lo, hi } => (Some(*lo), Some(*hi), None),
+                BandEdges::Orders { windows } => (
+                    v.map(|v| v.lo_hz).filter(|x| {
+                        x.is_finite() && v.is_some_and(|v| v.status != BandStatus::NoSpeed)
+                    }),
+                    v.map(|v| v.hi_hz).filter(|x| {
+                        x.is_finite() && v.is_some_and(|v| v.status != BandStatus::NoSpeed)
+                    }),
+                    Some(windows.iter().map(|w| [w.0, w.1]).collect()),
+                ),
+            };
             BandInfo {
                 name: &b.name,
-                lo_hz: b.lo_hz,
-                hi_hz: b.hi_hz,
+                lo_hz,
+                hi_hz,
+                orders,
+                bearing: b.bearing.as_ref().map(|(n, _)| n.as_str()),
+                defect: b.bearing.as_ref().map(|(_, d)| d.as_str()),
+                spectrum: b.spectrum.as_str(),
+                status: v.map(|v| v.status.as_str()),
                 measure: b.measure.as_str(),
                 unit: b.unit.symbol,
                 quantity: b.unit.quantity.as_str(),
-                value: v.map(|v| v.value),
-                peak_hz: v.map(|v| v.peak_hz),
+                value: v.filter(|v| v.is_ok()).map(|v| v.value),
+                peak_hz: v.filter(|v| v.is_ok()).map(|v| v.peak_hz),
             }
         })
         .collect();
@@ -381,6 +433,10 @@ pub async fn channel_detail(
 
 #[derive(Serialize)]
 struct SpectrumBody<'a> {
+    /// "raw", or "envelope" for the envelope spectrum (`?spectrum=envelope`).
+    spectrum: &'static str,
+    /// Running speed of the channel's machine when the spectrum was made, Hz.
+    speed_hz: Option<f64>,
     channel: &'a str,
     /// Unit of `values` (e.g. `mm/s`, `g^2/Hz`).
     unit: String,
@@ -413,7 +469,10 @@ pub async fn spectrum(
     Path(name): Path<String>,
     q: Result<Query<Vec<(String, String)>>, QueryRejection>,
 ) -> Result<Response, ApiError> {
-    let params = Params::new(q, &["scaling", "unit", "fmin", "fmax", "format"])?;
+    let params = Params::new(
+        q,
+        &["scaling", "unit", "fmin", "fmax", "format", "spectrum"],
+    )?;
     let ch = channel_of(&st.app, &name)?;
     let spec = &ch.spec;
     let scaling = match params.get("scaling") {
@@ -455,6 +514,26 @@ pub async fn spectrum(
     )
     .map_err(|e| ApiError::BadQuery(e.to_string()))?;
     let snap = latest_of(ch)?;
+    let envelope = match params.get("spectrum") {
+        None | Some("raw") => false,
+        Some("envelope") => true,
+        Some(other) => {
+            return Err(ApiError::BadQuery(format!(
+                "spectrum={other:?}: expected raw or envelope"
+            )))
+        }
+    };
+    if envelope && snap.envelope_power.is_empty() {
+        return Err(ApiError::BadQuery(format!(
+            "channel {:?} has no envelope analysis configured",
+            spec.name
+        )));
+    }
+    if envelope && to.quantity != spec.unit.quantity {
+        return Err(ApiError::BadQuery(
+            "the envelope spectrum is in the channel's own quantity; drop unit= or use the channel's".into(),
+        ));
+    }
     let conv = Conversion {
         scaling,
         from: spec.unit,
@@ -464,7 +543,14 @@ pub async fn spectrum(
         noise_bw_hz: ch.noise_bandwidth_hz(),
     };
     let first = *range.start();
-    let values = conv.apply(&snap.power, range);
+    let values = conv.apply(
+        if envelope {
+            &snap.envelope_power
+        } else {
+            &snap.power
+        },
+        range,
+    );
     let f0_hz = first as f64 * spec.df_hz();
     let unit = scaling.unit_label(to);
     if csv {
@@ -480,6 +566,8 @@ pub async fn spectrum(
         (Some(a), Some(b)) if a < b
     );
     Ok(Json(SpectrumBody {
+        spectrum: if envelope { "envelope" } else { "raw" },
+        speed_hz: snap.speed_hz,
         channel: &spec.name,
         unit,
         quantity: to.quantity.as_str(),
@@ -514,6 +602,15 @@ struct WaveformBody<'a> {
     /// Stream index of `values[0]`.
     first_sample: u64,
     timestamp: Option<String>,
+    /// The band whose signal this is (`?band=`), if any.
+    band: Option<&'a str>,
+    /// Whether this is the envelope signal (`?envelope=true`, or a band on
+    /// the envelope spectrum).
+    envelope: bool,
+    /// Ranges kept by the band filter, Hz.
+    pass_hz: Option<Vec<[f64; 2]>>,
+    /// How the band signal is made.
+    filter: Option<&'static str>,
     values: &'a [f32],
 }
 
@@ -522,16 +619,71 @@ pub async fn waveform(
     Path(name): Path<String>,
     q: Result<Query<Vec<(String, String)>>, QueryRejection>,
 ) -> Result<Response, ApiError> {
-    let params = Params::new(q, &["format"])?;
+    let params = Params::new(q, &["format", "band", "envelope"])?;
     let ch = channel_of(&st.app, &name)?;
     let csv = params.csv()?;
+    let envelope = match params.get("envelope") {
+        None | Some("false") => false,
+        Some("true") => true,
+        Some(other) => {
+            return Err(ApiError::BadQuery(format!(
+                "envelope={other:?}: expected true or false"
+            )))
+        }
+    };
     let snap = latest_of(ch)?;
     let spec = &ch.spec;
+    let fs = spec.sample_rate_hz;
+    let env_signal = |block: &[f32]| -> Result<Vec<f32>, ApiError> {
+        let Some((lo, hi)) = spec.envelope else {
+            return Err(ApiError::BadQuery(format!(
+                "channel {:?} has no envelope analysis configured",
+                spec.name
+            )));
+        };
+        let mut e = crate::dsp::envelope::EnvelopeEngine::new(block.len(), fs, lo, hi);
+        let mut out = vec![0.0; block.len()];
+        e.envelope(block, &mut out);
+        Ok(out)
+    };
+    let mut pass: Option<Vec<(f64, f64)>> = None;
+    let values: std::borrow::Cow<[f32]> = match params.get("band") {
+        None if envelope => env_signal(&snap.waveform)?.into(),
+        None => std::borrow::Cow::Borrowed(&snap.waveform[..]),
+        Some(band) => {
+            let Some(i) = spec.bands.iter().position(|b| b.name == band) else {
+                return Err(ApiError::BadQuery(format!(
+                    "channel {:?} has no band {band:?}",
+                    spec.name
+                )));
+            };
+            let b = &spec.bands[i];
+            let ranges: Vec<(f64, f64)> = match &b.edges {
+                BandEdges::Hz { lo, hi } => vec![(*lo, *hi)],
+                BandEdges::Orders { windows } => match snap.speed_hz {
+                    Some(s) => windows.iter().map(|w| (w.0 * s, w.1 * s)).collect(),
+                    None => {
+                        return Err(ApiError::NotReady(format!(
+                            "band {band:?} follows running speed, which is unknown now"
+                        )))
+                    }
+                },
+            };
+            let source = if envelope || b.spectrum == crate::config::SpectrumKind::Envelope {
+                env_signal(&snap.waveform)?
+            } else {
+                snap.waveform.clone()
+            };
+            let out = crate::dsp::filter::band_pass_ranges(&source, fs, &ranges);
+            pass = Some(ranges);
+            out.into()
+        }
+    };
     if csv {
-        let mut out = String::with_capacity(24 * snap.waveform.len() + 16);
+        let mut out = String::with_capacity(24 * values.len() + 16);
         out.push_str("time_s,value\n");
-        let dt = 1.0 / spec.sample_rate_hz;
-        for (i, v) in snap.waveform.iter().enumerate() {
+        let dt = 1.0 / fs;
+        for (i, v) in values.iter().enumerate() {
             let _ = writeln!(out, "{},{}", i as f64 * dt, v);
         }
         return Ok(csv_response(out));
@@ -539,10 +691,18 @@ pub async fn waveform(
     Ok(Json(WaveformBody {
         channel: &spec.name,
         unit: spec.unit.symbol,
-        sample_rate_hz: spec.sample_rate_hz,
+        sample_rate_hz: fs,
         first_sample: snap.first_sample,
         timestamp: rfc3339_ns(snap.timestamp_ns),
-        values: &snap.waveform,
+        band: params.get("band"),
+        envelope,
+        pass_hz: pass.map(|r| r.iter().map(|&(a, b)| [a, b]).collect()),
+        filter: if params.get("band").is_some() {
+            Some("ideal band-pass on the rectangular block (FFT, lines outside zeroed, inverse FFT); circular at the block ends")
+        } else {
+            None
+        },
+        values: &values,
     })
     .into_response())
 }

@@ -22,6 +22,10 @@ pub enum ApiError {
     /// `/readyz`: these channels have not published a spectrum yet.
     #[error("not ready: {} channel(s) still waiting for a first spectrum", .0.len())]
     Waiting(Vec<String>),
+    /// The request is valid but cannot be answered now (e.g. a band that
+    /// follows running speed while the speed is unknown).
+    #[error("{0}")]
+    NotReady(String),
     /// No route for this path.
     #[error("no such endpoint")]
     NoRoute,
@@ -38,7 +42,9 @@ impl ApiError {
         match self {
             ApiError::UnknownChannel(_) | ApiError::NoRoute => StatusCode::NOT_FOUND,
             ApiError::BadQuery(_) => StatusCode::BAD_REQUEST,
-            ApiError::NoSnapshot(_) | ApiError::Waiting(_) => StatusCode::SERVICE_UNAVAILABLE,
+            ApiError::NoSnapshot(_) | ApiError::Waiting(_) | ApiError::NotReady(_) => {
+                StatusCode::SERVICE_UNAVAILABLE
+            }
             ApiError::MethodNotAllowed => StatusCode::METHOD_NOT_ALLOWED,
             ApiError::Internal => StatusCode::INTERNAL_SERVER_ERROR,
         }

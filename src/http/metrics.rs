@@ -157,9 +157,12 @@ enum Fixed {
     SourceMissingSamples,
     SourceLateFrames,
     SourceRejected,
+    BandInService,
+    MachineSpeed,
+    MachineSpeedKnown,
 }
 
-const FIXED: [(Fixed, &str, &str, MetricType, &[&str]); 21] = [
+const FIXED: [(Fixed, &str, &str, MetricType, &[&str]); 24] = [
     (
         Fixed::BandPeakFrequency,
         "bandwatch_band_peak_frequency_hertz",
@@ -306,6 +309,27 @@ const FIXED: [(Fixed, &str, &str, MetricType, &[&str]); 21] = [
         "Frames or connections the source rejected, by reason.",
         MetricType::COUNTER,
         &["source", "reason"],
+    ),
+    (
+        Fixed::BandInService,
+        "bandwatch_band_in_service",
+        "1 when the band has a value; 0 when it cannot have one now (running speed unknown, or its edges pass Nyquist at the current speed).",
+        MetricType::GAUGE,
+        &["channel", "band"],
+    ),
+    (
+        Fixed::MachineSpeed,
+        "bandwatch_machine_speed_hertz",
+        "Running speed of the machine (revolutions per second), while it is known.",
+        MetricType::GAUGE,
+        &["machine", "source"],
+    ),
+    (
+        Fixed::MachineSpeedKnown,
+        "bandwatch_machine_speed_known",
+        "1 while the machine's running speed is known and fresh, else 0.",
+        MetricType::GAUGE,
+        &["machine", "source"],
     ),
 ];
 
@@ -576,12 +600,36 @@ impl Collector for PipelineCollector {
             );
             for ((b, v), &slot) in spec.bands.iter().zip(&snap.bands).zip(&self.band_slot[i]) {
                 let labels = || vec![label("channel", name), label("band", &b.name)];
+                put(
+                    &mut fixed,
+                    Fixed::BandInService,
+                    gauge(labels(), if v.is_ok() { 1.0 } else { 0.0 }),
+                );
+                // A band without a value has no series: no invented zero.
+                if !v.is_ok() {
+                    continue;
+                }
                 dynamic[slot].push(gauge(labels(), v.value * b.unit.to_si));
                 put(
                     &mut fixed,
                     Fixed::BandPeakFrequency,
                     gauge(labels(), v.peak_hz),
                 );
+            }
+        }
+
+        for m in &self.app.machines {
+            let labels = || {
+                vec![
+                    label("machine", &m.spec.name),
+                    label("source", m.spec.speed.as_str()),
+                ]
+            };
+            let speed = m.speed_hz();
+            fixed[Fixed::MachineSpeedKnown as usize]
+                .push(gauge(labels(), if speed.is_some() { 1.0 } else { 0.0 }));
+            if let Some(hz) = speed {
+                fixed[Fixed::MachineSpeed as usize].push(gauge(labels(), hz));
             }
         }
 

@@ -93,10 +93,16 @@ fn snapshot(published_unix_ns: u64) -> ChannelSnapshot {
             BandValue {
                 value: 12.5,
                 peak_hz: 100.0,
+                lo_hz: 50.0,
+                hi_hz: 150.0,
+                ..BandValue::default()
             },
             BandValue {
                 value: 0.5,
                 peak_hz: 300.0,
+                lo_hz: 250.0,
+                hi_hz: 350.0,
+                ..BandValue::default()
             },
         ],
         overall: Overall {
@@ -107,6 +113,7 @@ fn snapshot(published_unix_ns: u64) -> ChannelSnapshot {
             crest_factor: 1.5,
         },
         waveform: vec![0.0, 0.5, -0.25, 1.0],
+        ..ChannelSnapshot::default()
     }
 }
 
