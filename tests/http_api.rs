@@ -101,7 +101,7 @@ async fn daemon_serves_the_demo_over_tcp() {
         .iter()
         .map(|c| c["name"].as_str().expect("name"))
         .collect();
-    assert_eq!(names, ["motor-de", "pump-de", "pump-nde"]);
+    assert_eq!(names, ["motor-de", "pump-de", "pump-nde", "tach"]);
     for c in list["channels"].as_array().expect("channels") {
         assert_eq!(c["source"]["state"], "connected", "{c}");
         assert_eq!(c["stale"], false, "{c}");
@@ -114,7 +114,7 @@ async fn daemon_serves_the_demo_over_tcp() {
     assert_eq!(r.status, 200);
     let d = r.json();
     let bands = d["bands"].as_array().expect("bands");
-    assert_eq!(bands.len(), 6);
+    assert_eq!(bands.len(), 8);
     assert!(bands.iter().all(|b| b["value"].is_f64()), "{d}");
     assert!(num(&d["counters"]["spectra"]) >= 1.0);
     assert!(num(&d["overall"]["rms"]) > 0.0);
