@@ -141,6 +141,11 @@ fn default_ring_seconds() -> f64 {
 }
 
 /// A source of samples; `kind` picks the variant.
+///
+/// The stream keys (`framing`, `channels`, `sample_rate_hz`,
+/// `sample_format`, `max_frame_bytes`) are repeated in each stream variant
+/// on purpose: serde cannot combine `flatten` with `deny_unknown_fields`,
+/// and rejecting unknown keys matters more. `stream_spec` checks them once.
 #[derive(Debug, Clone, Deserialize)]
 #[serde(tag = "kind", rename_all = "kebab-case", deny_unknown_fields)]
 pub enum RawSource {
