@@ -108,8 +108,12 @@ async fn live_and_replay_agree_exactly() {
         let r = replayed
             .get(&(name.clone(), *first))
             .unwrap_or_else(|| panic!("live spectrum {name}@{first} missing from replay"));
-        let live: Vec<f64> = snap.bands.iter().map(|b| b.value).collect();
-        let rep: Vec<f64> = r.bands.iter().map(|(_, v)| *v).collect();
+        let live: Vec<Option<f64>> = snap
+            .bands
+            .iter()
+            .map(|b| b.is_ok().then_some(b.value))
+            .collect();
+        let rep: Vec<Option<f64>> = r.bands.iter().map(|(_, v)| *v).collect();
         assert_eq!(live, rep, "{name}@{first}: band values differ");
         assert_eq!(snap.overall.rms, r.rms);
         matched += 1;

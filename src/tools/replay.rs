@@ -10,7 +10,7 @@ use std::sync::Arc;
 use crate::config::{Config, SourceKind, StreamSpec};
 use crate::dsp::worker::ChannelDsp;
 use crate::ring::channel_ring;
-use crate::snapshot::{ChannelShared, SourceShared};
+use crate::snapshot::{ChannelShared, MachineShared, SourceShared};
 use crate::source::framed::{FrameSink, StreamFraming};
 use crate::source::{ChannelInput, SourceOutputs};
 
@@ -41,8 +41,9 @@ pub struct ReplayLine {
     pub seq: u64,
     pub first_sample: u64,
     pub averages: u32,
-    /// Band values in each band's unit, in config order.
-    pub bands: Vec<(String, f64)>,
+    /// Band values in each band's unit, in config order; null when the band
+    /// has no value (e.g. an order band while the speed is unknown).
+    pub bands: Vec<(String, Option<f64>)>,
     pub rms: f64,
     pub peak: f64,
     pub crest_factor: f64,
@@ -85,6 +86,11 @@ pub fn replay(
     };
     let stream = stream_of(&spec.kind).ok_or(ReplayError::NoSource)?;
     let mut outputs = SourceOutputs::new(spec.channels);
+    let machines: Vec<Arc<MachineShared>> = config
+        .machines
+        .iter()
+        .map(|m| Arc::new(MachineShared::new(m.clone())))
+        .collect();
     let mut dsps = Vec::new();
     for ch in config.channels.iter().filter(|c| c.source == spec.name) {
         let shared = Arc::new(ChannelShared::new(ch.clone()));
@@ -92,7 +98,7 @@ pub fn replay(
         // size it for the largest read plus a block.
         let cap = 2 * ch.block + (1 << 17);
         let (w, r) = channel_ring(cap, ch.sample_rate_hz, shared.counters.clone());
-        let mut dsp = ChannelDsp::new(shared, r);
+        let mut dsp = ChannelDsp::with_machines(shared, r, &machines);
         dsp.set_blocks_per_turn(1);
         dsps.push(dsp);
         outputs.attach(
@@ -158,7 +164,7 @@ fn emit(dsp: &ChannelDsp, seq: &mut u64, out: &mut dyn Write) -> Result<(), Repl
             .bands
             .iter()
             .zip(&snap.bands)
-            .map(|(b, v)| (b.name.clone(), v.value))
+            .map(|(b, v)| (b.name.clone(), v.is_ok().then_some(v.value)))
             .collect(),
         rms: snap.overall.rms,
         peak: snap.overall.peak,
