@@ -980,7 +980,11 @@ mod tests {
         checks.push(abs_check("b".into(), "y", 1.0, 1.2, 0.1, 1, "dB"));
         assert!(!all_pass(&checks));
         let t = render_table(&checks);
-        assert!(t.contains("FAIL  b"), "{t}");
+        assert!(
+            t.lines()
+                .any(|l| l.starts_with("FAIL") && l.contains(" b ") && l.contains("1.2 dB")),
+            "{t}"
+        );
         assert!(t.contains("1 of 2 checks passed: FAIL"), "{t}");
         assert!(!all_pass(&[]));
     }
