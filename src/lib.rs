@@ -17,6 +17,8 @@
 //! - [`dsp`]: windows, spectra, averaging, bands, overall levels, workers
 //! - [`snapshot`]: what workers publish and HTTP reads
 //! - [`http`]: router, JSON API, Prometheus exposition
+//! - [`selftest`]: published check values measured through the real code
+//!   paths (`bandwatch selftest`)
 
 pub mod config;
 pub mod counters;
@@ -24,6 +26,7 @@ pub mod dsp;
 pub mod frame;
 pub mod http;
 pub mod ring;
+pub mod selftest;
 pub mod snapshot;
 pub mod source;
 pub mod tools;

@@ -99,12 +99,36 @@ enum Command {
         #[arg(long)]
         source: Option<String>,
     },
+    /// Measure published check values through this build's DSP and print a
+    /// pass table; exits 0 only if every check passes.
+    Selftest {
+        /// Print JSON instead of the table.
+        #[arg(long)]
+        json: bool,
+    },
 }
 
 fn main() -> ExitCode {
     let cli = Cli::parse();
     init_tracing(cli.log_format);
     match cli.command {
+        Command::Selftest { json } => {
+            use bandwatch::selftest;
+            use std::io::Write as _;
+            let checks = selftest::run();
+            let text = if json {
+                selftest::render_json(&checks) + "\n"
+            } else {
+                selftest::render_table(&checks)
+            };
+            // A closed pipe (`| head`) is not a failed check: ignore it.
+            let _ = std::io::stdout().lock().write_all(text.as_bytes());
+            if selftest::all_pass(&checks) {
+                ExitCode::SUCCESS
+            } else {
+                ExitCode::FAILURE
+            }
+        }
         Command::Check { config } => match bandwatch::config::load(&config) {
             Ok(c) => {
                 println!(

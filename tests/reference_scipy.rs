@@ -200,7 +200,8 @@ fn check_signal(name: &str) -> (Worst, Worst) {
             averages: segments as u32,
             bands: bands_of(&doc),
         }
-        .spec();
+        .spec()
+        .expect("test channel config");
         assert_eq!(spec.bins(), nfft / 2 + 1);
         assert_eq!(
             spec.df_hz(),
@@ -342,7 +343,8 @@ fn welch_dc_and_nyquist_are_single_not_doubled() {
                 averages: 7,
                 bands: vec![],
             }
-            .spec();
+            .spec()
+            .expect("test channel config");
             let ours = run(&spec, &x).averaged[line] as f64;
             assert!(
                 (ours - want).abs() < 1e-4 * want,
