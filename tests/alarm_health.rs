@@ -8,9 +8,7 @@
 use bandwatch::alarm::health::{
     BiasSpec, ClippingSpec, FlatlineSpec, GapSpec, HealthDetector, HealthSpec, Reason, StaleSpec,
 };
-use bandwatch::alarm::state::{
-    AlarmMachine, AlarmState, Direction, Input, LevelSpec, MachineSpec,
-};
+use bandwatch::alarm::state::{AlarmMachine, AlarmState, Direction, Input, LevelSpec, MachineSpec};
 
 const FS: f64 = 1000.0;
 /// Samples per feed: 50 ms, not a multiple of the 0.1 s evaluation window.
@@ -81,13 +79,18 @@ impl Rig {
             }
             self.t = self.n as f64 / FS;
             self.h.feed(self.t, &buf);
-            let rms = (buf.iter().map(|x| f64::from(*x).powi(2)).sum::<f64>() / CHUNK as f64).sqrt();
+            let rms =
+                (buf.iter().map(|x| f64::from(*x).powi(2)).sum::<f64>() / CHUNK as f64).sqrt();
             self.eval(Input::Value(rms));
         }
     }
 
     fn eval(&mut self, value: Input) {
-        let input = if self.h.is_ok() { value } else { Input::Inhibited };
+        let input = if self.h.is_ok() {
+            value
+        } else {
+            Input::Inhibited
+        };
         self.alarm.evaluate(self.t, input);
     }
 
@@ -157,7 +160,9 @@ fn clipping_is_not_ok_and_inhibits() {
     assert!(r.h.is_ok(), "a 4.0 peak in a 5.0 full scale is fine");
     assert_eq!(r.alarm.state(), AlarmState::Alert);
     // Overdriven: the converter saturates at full scale.
-    r.run(0.5, |t| (6.0 * (2.0 * std::f64::consts::PI * 24.75 * t).sin()).clamp(-5.0, 5.0));
+    r.run(0.5, |t| {
+        (6.0 * (2.0 * std::f64::consts::PI * 24.75 * t).sin()).clamp(-5.0, 5.0)
+    });
     assert!(!r.h.is_ok());
     assert!(r.h.state().reasons.contains(Reason::Clipping));
     assert_eq!(r.alarm.state(), AlarmState::Inhibited);
@@ -237,7 +242,13 @@ fn a_gap_never_trips_a_level() {
 fn chunking_does_not_change_the_verdict() {
     // The same samples fed in chunks of 7 and of 333 give the same health.
     let samples: Vec<f32> = (0..5000)
-        .map(|i| if i < 2500 { (f64::from(i) * 0.3).sin() as f32 } else { 0.5 })
+        .map(|i| {
+            if i < 2500 {
+                (f64::from(i) * 0.3).sin() as f32
+            } else {
+                0.5
+            }
+        })
         .collect();
     let mut verdicts = Vec::new();
     for chunk in [7usize, 333] {

@@ -486,7 +486,8 @@ fn io_err(path: &Path) -> impl FnOnce(io::Error) -> CaptureError + '_ {
 }
 
 impl CaptureStore {
-    /// Creates the directory if needed and removes what a crash left.
+    /// Creates the directory if needed, removes what a crash left, and
+    /// applies the retention bounds.
     ///
     /// # Errors
     /// [`CaptureError::Io`] if the directory cannot be created or read.
@@ -521,13 +522,13 @@ impl CaptureStore {
                 "removed unfinished capture files left by a crash"
             );
         }
-        Ok((
-            CaptureStore {
-                dir: dir.to_path_buf(),
-                retention,
-            },
-            clean,
-        ))
+        let store = CaptureStore {
+            dir: dir.to_path_buf(),
+            retention,
+        };
+        // A crash between a write and its pruning can leave one too many.
+        store.prune()?;
+        Ok((store, clean))
     }
 
     pub fn dir(&self) -> &Path {
