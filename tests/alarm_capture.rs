@@ -433,7 +433,10 @@ fn sigkill_while_writing_leaves_latch_journal_and_no_half_capture() {
             .spawn()
             .unwrap();
         let deadline = Instant::now() + Duration::from_secs(30);
-        while !dir.path().join("latched").exists() {
+        let cap_dir = dir.path().join("captures");
+        while !dir.path().join("latched").exists()
+            || !names(&cap_dir).iter().any(|n| n.ends_with(".json"))
+        {
             assert!(Instant::now() < deadline, "child never started");
             std::thread::sleep(Duration::from_millis(5));
         }
@@ -442,7 +445,6 @@ fn sigkill_while_writing_leaves_latch_journal_and_no_half_capture() {
         child.kill().unwrap(); // SIGKILL on Unix
         child.wait().unwrap();
 
-        let cap_dir = dir.path().join("captures");
         let before = names(&cap_dir);
         let (_, clean) = CaptureStore::open(
             &cap_dir,
@@ -453,11 +455,20 @@ fn sigkill_while_writing_leaves_latch_journal_and_no_half_capture() {
         )
         .unwrap();
         let after = names(&cap_dir);
+        let temps = before.iter().filter(|n| n.ends_with(".tmp")).count();
+        assert_eq!(temps, clean.temp_files as usize);
+        // Only pairs remain: every waveform has its metadata and back.
         assert!(after.iter().all(|n| !n.ends_with(".tmp")), "{after:?}");
-        assert_eq!(
-            before.len() - after.len(),
-            (clean.temp_files + clean.orphans) as usize
-        );
+        for n in &after {
+            let (stem, other) = match n.strip_suffix(".bwf1") {
+                Some(s) => (s, "json"),
+                None => (n.strip_suffix(".json").unwrap(), "bwf1"),
+            };
+            assert!(
+                after.contains(&format!("{stem}.{other}")),
+                "{n} alone in {after:?}"
+            );
+        }
         let listed = list(&cap_dir).unwrap();
         eprintln!(
             "round {round}: cleaned {clean:?}, {} complete captures",
