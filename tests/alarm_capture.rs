@@ -3,6 +3,8 @@
 //! cleaning, retention and id validation. The crash test kills a real child
 //! process (SIGKILL) while it writes captures and journal events.
 
+#![allow(clippy::unwrap_used)] // tests may unwrap: a panic is a failed test
+
 mod alarm_common;
 
 use std::fs;

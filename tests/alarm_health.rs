@@ -5,6 +5,8 @@
 //! std below ~1 LSB for >= 1 s; clipping at 0.99 of full scale; IEPE bias
 //! window about 2 to 20 V) [cp].
 
+#![allow(clippy::unwrap_used)] // tests may unwrap: a panic is a failed test
+
 use bandwatch::alarm::health::{
     BiasSpec, ClippingSpec, FlatlineSpec, GapSpec, HealthDetector, HealthSpec, Reason, StaleSpec,
 };

@@ -1,6 +1,8 @@
 //! The event journal: durable appends, replay after a torn write, rotation
 //! bounded by size and count, and latches that survive both.
 
+#![allow(clippy::unwrap_used)] // tests may unwrap: a panic is a failed test
+
 mod alarm_common;
 
 use std::fs::{self, OpenOptions};

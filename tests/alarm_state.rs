@@ -4,6 +4,8 @@
 //! evaluations instead of running a timer. Plus chatter checks and
 //! invariants that need no model.
 
+#![allow(clippy::unwrap_used)] // tests may unwrap: a panic is a failed test
+
 use bandwatch::alarm::state::{
     AckError, AckOutcome, AlarmMachine, AlarmState, Cause, Direction, Input, LevelSpec,
     MachineSpec, Severity,
@@ -40,7 +42,7 @@ struct RefLevelState {
 
 impl RefLevelState {
     fn last_schmitt(&self) -> bool {
-        self.hist.last().map_or(false, |s| s.schmitt)
+        self.hist.last().is_some_and(|s| s.schmitt)
     }
 
     fn value(&mut self, lvl: &RefLevel, t: f64, v: f64) {
@@ -275,14 +277,10 @@ fn op_strategy() -> impl Strategy<Value = Op> {
     ]
 }
 
-fn case() -> impl Strategy<
-    Value = (
-        Option<(LevelSpec, RefLevel)>,
-        Option<(LevelSpec, RefLevel)>,
-        bool,
-        Vec<Op>,
-    ),
-> {
+/// A level as the machine and the reference see it.
+type Level = Option<(LevelSpec, RefLevel)>;
+
+fn case() -> impl Strategy<Value = (Level, Level, bool, Vec<Op>)> {
     (
         prop::option::weighted(0.8, level_strategy(5.0)),
         prop::option::weighted(0.8, level_strategy(8.0)),

@@ -1,5 +1,6 @@
 //! Helpers shared by the alarm tests.
 #![allow(dead_code)]
+#![allow(clippy::unwrap_used)] // tests may unwrap: a panic is a failed test
 
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicU32, Ordering};
