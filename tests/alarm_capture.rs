@@ -138,7 +138,7 @@ fn capture_round_trips_through_bwf1_and_json() {
     let mut done = false;
     while !done {
         let chunk: Vec<f32> = (n..n + 700).map(wave).collect();
-        done = b.push(n, &chunk);
+        done = b.push(n, t_first + ((n - 1000) as f64 * 1e9 / FS) as u64, &chunk);
         n += 700;
     }
     let cap = b.finish(EndReason::Shutdown);
@@ -197,15 +197,15 @@ fn gap_or_shutdown_ends_a_capture_early_and_says_so() {
     let mut ring = HistoryRing::new(100, FS);
     ring.push(0, T0, &[1.0; 100]);
     let mut b = CaptureBuilder::start("g".into(), trip(T0), &ring, 100, 1000, None, vec![]);
-    assert!(!b.push(100, &[2.0; 10]));
+    assert!(!b.push(100, T0, &[2.0; 10]));
     // Samples that skip ahead: a gap.
-    assert!(b.push(200, &[3.0; 10]));
+    assert!(b.push(200, T0, &[3.0; 10]));
     let c = b.finish(EndReason::Shutdown);
     assert_eq!(c.end, EndReason::Gap);
     assert_eq!(c.samples.len(), 110);
 
     let mut b = CaptureBuilder::start("s".into(), trip(T0), &ring, 100, 1000, None, vec![]);
-    b.push(100, &[2.0; 10]);
+    b.push(100, T0, &[2.0; 10]);
     let c = b.finish(EndReason::Shutdown);
     assert_eq!(c.end, EndReason::Shutdown);
     let dir = TempDir::new("capture-short");

@@ -355,23 +355,23 @@ impl CaptureBuilder {
         &self.cap.id
     }
 
-    /// Feeds samples that follow the trip. Samples that do not continue the
-    /// capture end it (as a gap). Returns true once the capture is done.
-    pub fn push(&mut self, first_sample: u64, samples: &[f32]) -> bool {
+    /// Feeds samples that follow the trip (stream index and time of the
+    /// first, as for [`HistoryRing::push`]). Samples that do not continue
+    /// the capture end it (as a gap). Returns true once the capture is done.
+    pub fn push(&mut self, first_sample: u64, timestamp_ns: u64, samples: &[f32]) -> bool {
         if self.ended.is_some() {
             return true;
         }
         if samples.is_empty() {
             return false;
         }
-        if first_sample != self.next_sample {
-            if self.cap.samples.is_empty() {
-                // Nothing held yet (empty ring at the trip): start here.
-                self.cap.first_sample = first_sample;
-            } else {
-                self.ended = Some(EndReason::Gap);
-                return true;
-            }
+        if self.cap.samples.is_empty() {
+            // Nothing held yet (an empty ring at the trip): start here.
+            self.cap.first_sample = first_sample;
+            self.cap.timestamp_ns = timestamp_ns;
+        } else if first_sample != self.next_sample {
+            self.ended = Some(EndReason::Gap);
+            return true;
         }
         let take = samples.len().min(self.post_target - self.post_have);
         self.cap.samples.extend_from_slice(&samples[..take]);
