@@ -92,10 +92,13 @@ fn everything_queued_is_written_by_stop() {
     };
     assert!(outbox.send(Message::Baseline(Box::new(b.clone()))));
     let shared = io.shared().clone();
-    drop(outbox);
+    // The outbox may outlive the thread: stop drains what was queued.
     io.stop();
+    assert!(!outbox.send(Message::Event(Box::new(event(99)))));
+    assert_eq!(shared.dropped_events(), 1);
 
     assert_eq!(shared.events_written.load(Ordering::Relaxed), 20);
+    drop(outbox);
     assert_eq!(shared.captures_written.load(Ordering::Relaxed), 1);
     assert_eq!(shared.write_errors.load(Ordering::Relaxed), 0);
     assert_eq!(shared.recent_events().len(), 20);
@@ -129,7 +132,6 @@ fn a_full_queue_drops_and_counts_without_blocking() {
         .filter(|i| outbox.send(Message::Event(Box::new(event(*i)))))
         .count() as u64;
     let shared = outbox.shared().clone();
-    drop(outbox);
     io.stop();
     let dropped = shared.dropped_events();
     assert!(dropped > 0);

@@ -6,8 +6,9 @@
 //! message that does not fit is dropped, counted per kind and logged (it
 //! would take a storm of thousands of alarm events to fill it). The thread
 //! works through the queue in order, so a transition is journaled before
-//! the capture it started is written. [`AlarmIo::stop`] closes the queue
-//! and waits until every queued message has been written.
+//! the capture it started is written. [`AlarmIo::stop`] queues a stop mark
+//! behind everything sent so far and waits until all of it is written;
+//! what is sent after that is refused and counted.
 //!
 //! It is a plain `std::thread` because `fsync` blocks: it must run neither
 //! on a DSP thread nor on the tokio runtime's workers.
@@ -98,10 +99,17 @@ impl IoShared {
     }
 }
 
+/// What travels on the queue: work, or the stop mark.
+#[derive(Debug)]
+enum Envelope {
+    Work(Message),
+    Stop,
+}
+
 /// The sending side; cheap to clone, one per worker and one for HTTP.
 #[derive(Debug, Clone)]
 pub struct Outbox {
-    tx: SyncSender<Message>,
+    tx: SyncSender<Envelope>,
     shared: Arc<IoShared>,
 }
 
@@ -110,7 +118,7 @@ impl Outbox {
     /// the queue is full or the I/O thread has stopped.
     pub fn send(&self, m: Message) -> bool {
         let kind = m.kind();
-        match self.tx.try_send(m) {
+        match self.tx.try_send(Envelope::Work(m)) {
             Ok(()) => true,
             Err(TrySendError::Full(_)) | Err(TrySendError::Disconnected(_)) => {
                 let n = self.shared.dropped[kind].fetch_add(1, Ordering::Relaxed) + 1;
@@ -134,6 +142,7 @@ impl Outbox {
 pub struct AlarmIo {
     handle: JoinHandle<()>,
     shared: Arc<IoShared>,
+    tx: SyncSender<Envelope>,
 }
 
 impl AlarmIo {
@@ -162,6 +171,7 @@ impl AlarmIo {
             AlarmIo {
                 handle,
                 shared: shared.clone(),
+                tx: tx.clone(),
             },
             Outbox { tx, shared },
         ))
@@ -171,21 +181,23 @@ impl AlarmIo {
         &self.shared
     }
 
-    /// Waits until every queued message is written. Every [`Outbox`] must
-    /// have been dropped first (the thread ends when the queue closes).
+    /// Waits until every message queued before this call is written, then
+    /// ends the thread. Outboxes may still exist: later sends are refused
+    /// and counted. Blocks while the queue is full (shutdown path only).
     pub fn stop(self) {
+        let _ = self.tx.send(Envelope::Stop);
         let _ = self.handle.join();
     }
 }
 
 fn io_loop(
-    rx: Receiver<Message>,
+    rx: Receiver<Envelope>,
     mut journal: Journal,
     store: CaptureStore,
     baselines_dir: PathBuf,
     shared: &IoShared,
 ) {
-    while let Ok(m) = rx.recv() {
+    while let Ok(Envelope::Work(m)) = rx.recv() {
         match m {
             Message::Event(e) => match journal.append(*e) {
                 Ok(written) => {
