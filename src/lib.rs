@@ -15,11 +15,14 @@
 //! - [`ring`]: per-channel SPSC ring with discontinuity marks
 //! - [`counters`]: per-channel counters shared by the stages
 //! - [`dsp`]: windows, spectra, averaging, bands, overall levels, workers
+//! - [`alarm`]: alarm state machines, channel health, baselines, zones,
+//!   event journal, captures, the operator token
 //! - [`snapshot`]: what workers publish and HTTP reads
 //! - [`http`]: router, JSON API, Prometheus exposition
 //! - [`selftest`]: published check values measured through the real code
 //!   paths (`bandwatch selftest`)
 
+pub mod alarm;
 pub mod config;
 pub mod counters;
 pub mod dsp;

@@ -1,0 +1,428 @@
+//! Channel health ("not OK") judged from the data itself.
+//!
+//! The detector is fed the raw samples of one channel (in units, as the ring
+//! hands them to the DSP worker), the discontinuities, and a clock tick. It
+//! judges the samples in fixed evaluation windows of [`EVAL_WINDOW_S`]
+//! seconds, so the result does not depend on how the worker chunks its
+//! reads. Faults:
+//!
+//! - **flatline**: the standard deviation of every window stays below
+//!   `std_below` for `for_s` seconds (a dead or disconnected sensor, a stuck
+//!   converter; common practice: about 1 LSB for 1 s or more);
+//! - **clipping**: at least `samples` samples of one window at or beyond
+//!   `fraction × full_scale` in magnitude (common practice: 0.99 × full
+//!   scale);
+//! - **bias**: a window's mean outside `[lo, hi]` (for DC-coupled sensor
+//!   supplies: an IEPE bias out of its window means an open or short;
+//!   common practice: roughly 2 to 20 V on a 24 V supply);
+//! - **stale**: no samples for `after_s` seconds (checked by [`tick`]);
+//! - **gaps**: more than `max` discontinuities within `window_s` seconds;
+//! - **no data**: nothing received yet since start.
+//!
+//! Any fault makes the channel not OK at once. It is OK again only after no
+//! fault has been present for `recover_s` seconds (a delay before
+//! re-enabling, as protection practice does). While not OK the reasons shown
+//! are the faults present, or, during the recovery delay, the last ones.
+//!
+//! Pure: no I/O, no allocation after construction.
+//!
+//! [`tick`]: HealthDetector::tick
+
+use std::collections::VecDeque;
+
+use serde::Serialize;
+
+/// Length of one evaluation window, seconds.
+pub const EVAL_WINDOW_S: f64 = 0.1;
+
+/// Smallest number of samples per evaluation window.
+pub const MIN_EVAL_SAMPLES: usize = 16;
+
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct FlatlineSpec {
+    /// Standard deviation (channel unit) under which a window is flat.
+    pub std_below: f64,
+    /// Seconds of flat windows before the channel is not OK.
+    pub for_s: f64,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct ClippingSpec {
+    /// Converter full scale in the channel's unit (the largest magnitude the
+    /// converter can report).
+    pub full_scale: f64,
+    /// Fraction of full scale at which a sample counts as clipped, (0, 1].
+    pub fraction: f64,
+    /// Clipped samples in one window that make it a fault, >= 1.
+    pub samples: usize,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct BiasSpec {
+    /// Lowest acceptable window mean, channel unit.
+    pub lo: f64,
+    /// Highest acceptable window mean, channel unit.
+    pub hi: f64,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct StaleSpec {
+    pub after_s: f64,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct GapSpec {
+    /// More than this many discontinuities within the window is a fault.
+    pub max: u32,
+    pub window_s: f64,
+}
+
+/// The validated health checks of one channel.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct HealthSpec {
+    pub flatline: Option<FlatlineSpec>,
+    pub clipping: Option<ClippingSpec>,
+    pub bias: Option<BiasSpec>,
+    pub stale: Option<StaleSpec>,
+    pub gaps: Option<GapSpec>,
+    /// Seconds without any fault before the channel is OK again.
+    pub recover_s: f64,
+}
+
+impl Default for HealthSpec {
+    /// What a channel without a `health` table gets: stale after 5 s, more
+    /// than 10 gaps a minute, 5 s to recover. Flatline, clipping and bias
+    /// need the sensor's figures and are off unless configured.
+    fn default() -> HealthSpec {
+        HealthSpec {
+            flatline: None,
+            clipping: None,
+            bias: None,
+            stale: Some(StaleSpec { after_s: 5.0 }),
+            gaps: Some(GapSpec {
+                max: 10,
+                window_s: 60.0,
+            }),
+            recover_s: 5.0,
+        }
+    }
+}
+
+/// One reason for a channel being not OK.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum Reason {
+    NoData,
+    Flatline,
+    Clipping,
+    Bias,
+    Stale,
+    Gaps,
+}
+
+impl Reason {
+    pub const ALL: [Reason; 6] = [
+        Reason::NoData,
+        Reason::Flatline,
+        Reason::Clipping,
+        Reason::Bias,
+        Reason::Stale,
+        Reason::Gaps,
+    ];
+
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Reason::NoData => "no_data",
+            Reason::Flatline => "flatline",
+            Reason::Clipping => "clipping",
+            Reason::Bias => "bias",
+            Reason::Stale => "stale",
+            Reason::Gaps => "gaps",
+        }
+    }
+
+    fn bit(self) -> u8 {
+        1 << (self as u8)
+    }
+}
+
+/// A set of [`Reason`]s (a bit set: copying it never allocates).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Hash)]
+pub struct Reasons(u8);
+
+impl Reasons {
+    pub fn contains(self, r: Reason) -> bool {
+        self.0 & r.bit() != 0
+    }
+    pub fn insert(&mut self, r: Reason) {
+        self.0 |= r.bit();
+    }
+    pub fn remove(&mut self, r: Reason) {
+        self.0 &= !r.bit();
+    }
+    fn set(&mut self, r: Reason, on: bool) {
+        if on {
+            self.insert(r)
+        } else {
+            self.remove(r)
+        }
+    }
+    pub fn is_empty(self) -> bool {
+        self.0 == 0
+    }
+    pub fn iter(self) -> impl Iterator<Item = Reason> {
+        Reason::ALL.into_iter().filter(move |r| self.contains(*r))
+    }
+    /// Names, for JSON and the journal.
+    pub fn names(self) -> Vec<&'static str> {
+        self.iter().map(Reason::as_str).collect()
+    }
+}
+
+impl Serialize for Reasons {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        s.collect_seq(self.iter().map(Reason::as_str))
+    }
+}
+
+/// What the detector reports.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct HealthState {
+    pub ok: bool,
+    /// Faults present; during the recovery delay, the last faults seen.
+    pub reasons: Reasons,
+    /// Monotonic seconds of the last change of `ok`.
+    pub since: f64,
+}
+
+/// `ok` flipped.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct HealthChange {
+    pub at: f64,
+    pub ok: bool,
+    pub reasons: Reasons,
+}
+
+/// Figures of the last complete evaluation window, for the API.
+#[derive(Debug, Clone, Copy, PartialEq, Default, Serialize)]
+pub struct WindowStats {
+    pub mean: f64,
+    pub std: f64,
+    pub clipped: usize,
+}
+
+/// Health of one channel. See the module docs.
+#[derive(Debug, Clone)]
+pub struct HealthDetector {
+    spec: HealthSpec,
+    rate: f64,
+    window_len: usize,
+    // Running sums of the current window (shifted by its first sample, so
+    // that a large DC level does not cost precision).
+    w_n: usize,
+    w_shift: f64,
+    w_sum: f64,
+    w_sum2: f64,
+    w_clipped: usize,
+    last: WindowStats,
+    faults: Reasons,
+    shown: Reasons,
+    ok: bool,
+    since: f64,
+    clear_since: Option<f64>,
+    last_sample_at: f64,
+    flat_since: Option<f64>,
+    gap_times: VecDeque<f64>,
+}
+
+impl HealthDetector {
+    /// A detector for a channel sampled at `sample_rate_hz`, started at
+    /// `now`; it is not OK (no data) until samples arrive and the recovery
+    /// delay has passed.
+    pub fn new(spec: HealthSpec, sample_rate_hz: f64, now: f64) -> HealthDetector {
+        let window_len = ((EVAL_WINDOW_S * sample_rate_hz).round() as usize).max(MIN_EVAL_SAMPLES);
+        let gap_cap = spec.gaps.map_or(0, |g| g.max as usize + 1);
+        let mut faults = Reasons::default();
+        faults.insert(Reason::NoData);
+        HealthDetector {
+            spec,
+            rate: sample_rate_hz,
+            window_len,
+            w_n: 0,
+            w_shift: 0.0,
+            w_sum: 0.0,
+            w_sum2: 0.0,
+            w_clipped: 0,
+            last: WindowStats::default(),
+            faults,
+            shown: faults,
+            ok: false,
+            since: now,
+            clear_since: None,
+            last_sample_at: now,
+            flat_since: None,
+            gap_times: VecDeque::with_capacity(gap_cap),
+        }
+    }
+
+    pub fn spec(&self) -> &HealthSpec {
+        &self.spec
+    }
+
+    /// Samples per evaluation window.
+    pub fn window_len(&self) -> usize {
+        self.window_len
+    }
+
+    pub fn state(&self) -> HealthState {
+        HealthState {
+            ok: self.ok,
+            reasons: self.shown,
+            since: self.since,
+        }
+    }
+
+    pub fn is_ok(&self) -> bool {
+        self.ok
+    }
+
+    pub fn last_window(&self) -> WindowStats {
+        self.last
+    }
+
+    /// Feeds contiguous samples; `now` is the time of the last one.
+    /// Non-finite samples are skipped (the ring counts them as gaps).
+    pub fn feed(&mut self, now: f64, samples: &[f32]) -> Option<HealthChange> {
+        let n = samples.len();
+        if n > 0 {
+            self.last_sample_at = now;
+            self.faults.remove(Reason::NoData);
+            self.faults.remove(Reason::Stale);
+        }
+        let clip_at = self.spec.clipping.map(|c| c.fraction * c.full_scale);
+        for (i, &x) in samples.iter().enumerate() {
+            if !x.is_finite() {
+                continue;
+            }
+            let x = f64::from(x);
+            if self.w_n == 0 {
+                self.w_shift = x;
+            }
+            let d = x - self.w_shift;
+            self.w_n += 1;
+            self.w_sum += d;
+            self.w_sum2 += d * d;
+            if clip_at.is_some_and(|c| x.abs() >= c) {
+                self.w_clipped += 1;
+            }
+            if self.w_n == self.window_len {
+                let t_end = now - (n - 1 - i) as f64 / self.rate;
+                self.window_done(t_end);
+            }
+        }
+        self.update(now)
+    }
+
+    fn window_done(&mut self, t_end: f64) {
+        let n = self.w_n as f64;
+        let mean_d = self.w_sum / n;
+        let var = ((self.w_sum2 - n * mean_d * mean_d) / (n - 1.0)).max(0.0);
+        self.last = WindowStats {
+            mean: self.w_shift + mean_d,
+            std: var.sqrt(),
+            clipped: self.w_clipped,
+        };
+        self.w_n = 0;
+        self.w_sum = 0.0;
+        self.w_sum2 = 0.0;
+        self.w_clipped = 0;
+        let t_start = t_end - n / self.rate;
+        if let Some(f) = self.spec.flatline {
+            if self.last.std < f.std_below {
+                let since = *self.flat_since.get_or_insert(t_start);
+                if t_end - since >= f.for_s {
+                    self.faults.insert(Reason::Flatline);
+                }
+            } else {
+                self.flat_since = None;
+                self.faults.remove(Reason::Flatline);
+            }
+        }
+        if let Some(c) = self.spec.clipping {
+            self.faults
+                .set(Reason::Clipping, self.last.clipped >= c.samples);
+        }
+        if let Some(b) = self.spec.bias {
+            let m = self.last.mean;
+            self.faults.set(Reason::Bias, !(b.lo..=b.hi).contains(&m));
+        }
+    }
+
+    /// One discontinuity at `now`. The current evaluation window is dropped
+    /// (a window never spans a gap).
+    pub fn gap(&mut self, now: f64) -> Option<HealthChange> {
+        self.w_n = 0;
+        self.w_sum = 0.0;
+        self.w_sum2 = 0.0;
+        self.w_clipped = 0;
+        if let Some(g) = self.spec.gaps {
+            if self.gap_times.len() > g.max as usize {
+                self.gap_times.pop_front();
+            }
+            self.gap_times.push_back(now);
+        }
+        self.update(now)
+    }
+
+    /// Time passes: stale data, expiring gaps, the recovery delay. Call it
+    /// regularly (e.g. every worker turn or every 100 ms).
+    pub fn tick(&mut self, now: f64) -> Option<HealthChange> {
+        self.update(now)
+    }
+
+    fn update(&mut self, now: f64) -> Option<HealthChange> {
+        if let Some(s) = self.spec.stale {
+            if now - self.last_sample_at >= s.after_s && !self.faults.contains(Reason::NoData) {
+                self.faults.insert(Reason::Stale);
+            }
+        }
+        if let Some(g) = self.spec.gaps {
+            while self
+                .gap_times
+                .front()
+                .is_some_and(|&t| now - t > g.window_s)
+            {
+                self.gap_times.pop_front();
+            }
+            self.faults
+                .set(Reason::Gaps, self.gap_times.len() > g.max as usize);
+        }
+        if !self.faults.is_empty() {
+            self.shown = self.faults;
+            self.clear_since = None;
+            if self.ok {
+                self.ok = false;
+                self.since = now;
+                return Some(HealthChange {
+                    at: now,
+                    ok: false,
+                    reasons: self.shown,
+                });
+            }
+        } else if !self.ok {
+            let since = *self.clear_since.get_or_insert(now);
+            if now - since >= self.spec.recover_s {
+                self.ok = true;
+                self.since = now;
+                self.clear_since = None;
+                let reasons = self.shown;
+                self.shown = Reasons::default();
+                return Some(HealthChange {
+                    at: now,
+                    ok: true,
+                    reasons,
+                });
+            }
+        }
+        None
+    }
+}
