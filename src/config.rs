@@ -10,6 +10,8 @@ use std::path::{Path, PathBuf};
 
 use serde::Deserialize;
 
+use crate::alarm::config::{AlarmSpec, AlarmsSpec, RawAlarm, RawAlarms, RawHealth};
+use crate::alarm::health::HealthSpec;
 use crate::dsp::window::WindowKind;
 use crate::frame::SampleFormat;
 use crate::units::{convertible, Unit};
@@ -33,6 +35,20 @@ pub struct RawConfig {
     pub machines: Vec<RawMachine>,
     #[serde(rename = "channel", default)]
     pub channels: Vec<RawChannel>,
+    /// Where alarm records live; required when any alarm is configured.
+    pub alarms: Option<RawAlarms>,
+}
+
+/// Alarms on a channel's time-domain overall levels.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawOverallAlarms {
+    /// On the RMS of the newest block (channel unit).
+    pub rms: Option<RawAlarm>,
+    /// On the peak of the newest block (channel unit).
+    pub peak: Option<RawAlarm>,
+    /// On the crest factor (dimensionless).
+    pub crest_factor: Option<RawAlarm>,
 }
 
 /// A machine train whose running speed order bands follow.
@@ -362,6 +378,10 @@ pub struct RawChannel {
     /// Envelope analysis band-pass; bands with `spectrum = "envelope"` read
     /// the envelope spectrum.
     pub envelope: Option<RawEnvelope>,
+    /// Sensor health checks (flatline, clipping, bias, stale, gaps).
+    pub health: Option<RawHealth>,
+    /// Alarms on the time-domain overall levels.
+    pub overall_alarm: Option<RawOverallAlarms>,
     #[serde(rename = "band", default)]
     pub bands: Vec<RawBand>,
 }
@@ -467,6 +487,8 @@ pub struct RawBand {
     /// Unit of the band's value; a velocity or displacement unit on an
     /// acceleration channel integrates. Default: the channel's unit.
     pub unit: Option<String>,
+    /// Alert/danger limits on this band.
+    pub alarm: Option<RawAlarm>,
 }
 
 fn default_measure() -> Measure {
@@ -501,6 +523,8 @@ impl SpectrumKind {
 
 #[derive(Debug, Clone)]
 pub struct Config {
+    /// `[alarms]`, when given.
+    pub alarms: Option<AlarmsSpec>,
     pub listen: SocketAddr,
     pub workers: usize,
     pub ring_seconds: f64,
@@ -653,6 +677,30 @@ pub struct ChannelSpec {
     pub machine: Option<String>,
     pub envelope: Option<(f64, f64)>,
     pub bands: Vec<BandSpec>,
+    pub health: HealthSpec,
+    /// Alarms of this channel: on bands and on overall levels.
+    pub alarms: Vec<ChannelAlarm>,
+}
+
+/// What an alarm watches.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum AlarmTarget {
+    /// The band at this index of `ChannelSpec::bands`.
+    Band(usize),
+    OverallRms,
+    OverallPeak,
+    CrestFactor,
+}
+
+/// One configured alarm of a channel.
+#[derive(Debug, Clone)]
+pub struct ChannelAlarm {
+    /// The band's name, or `overall-rms`, `overall-peak`, `overall-crest-factor`.
+    pub name: String,
+    pub target: AlarmTarget,
+    /// Unit of the watched value (None: dimensionless).
+    pub unit: Option<Unit>,
+    pub spec: AlarmSpec,
 }
 
 impl ChannelSpec {
@@ -1274,6 +1322,109 @@ pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
             }
         }
 
+        let health = match &c.health {
+            None => HealthSpec::default(),
+            Some(h) => match h.build(&format!("{path}.health")) {
+                Ok(h) => h,
+                Err(v) => {
+                    for (p, m) in v {
+                        issues.add(p, m);
+                    }
+                    HealthSpec::default()
+                }
+            },
+        };
+        let mut alarms = Vec::new();
+        let mut add_alarm = |issues: &mut Issues,
+                             apath: String,
+                             name: String,
+                             target: AlarmTarget,
+                             unit: Option<Unit>,
+                             raw: &RawAlarm,
+                             is_rms: bool| {
+            match raw.build(&apath) {
+                Ok(spec) => {
+                    if let Some(u) = unit {
+                        for (p, m) in spec.check_band(&apath, u, is_rms) {
+                            issues.add(p, m);
+                        }
+                    } else if spec.zone.is_some() {
+                        issues.add(
+                            format!("{apath}.zone"),
+                            "zone presets are for velocity RMS bands",
+                        );
+                    }
+                    alarms.push(ChannelAlarm {
+                        name,
+                        target,
+                        unit,
+                        spec,
+                    });
+                }
+                Err(v) => {
+                    for (p, m) in v {
+                        issues.add(p, m);
+                    }
+                }
+            }
+        };
+        for (j, b) in c.bands.iter().enumerate() {
+            if let Some(raw) = &b.alarm {
+                let bu = bands.iter().find(|x| x.name == b.name).map(|x| x.unit);
+                add_alarm(
+                    &mut issues,
+                    format!("{path} band {:?}.alarm", b.name),
+                    b.name.clone(),
+                    AlarmTarget::Band(j),
+                    bu,
+                    raw,
+                    b.measure == Measure::Rms,
+                );
+            }
+        }
+        if let Some(o) = &c.overall_alarm {
+            for (key, name, target, raw, u) in [
+                ("rms", "overall-rms", AlarmTarget::OverallRms, &o.rms, unit),
+                (
+                    "peak",
+                    "overall-peak",
+                    AlarmTarget::OverallPeak,
+                    &o.peak,
+                    unit,
+                ),
+                (
+                    "crest_factor",
+                    "overall-crest-factor",
+                    AlarmTarget::CrestFactor,
+                    &o.crest_factor,
+                    None,
+                ),
+            ] {
+                if let Some(raw) = raw {
+                    if c.bands.iter().any(|b| b.name == name) {
+                        issues.add(
+                            format!("{path}.overall_alarm.{key}"),
+                            format!("a band is already named {name:?}; rename it"),
+                        );
+                    }
+                    add_alarm(
+                        &mut issues,
+                        format!("{path}.overall_alarm.{key}"),
+                        name.to_string(),
+                        target,
+                        u,
+                        raw,
+                        key == "rms",
+                    );
+                }
+            }
+        }
+        if bands.len() != c.bands.len() {
+            // Some band failed validation: alarm targets may not line up,
+            // but the config is rejected anyway.
+            alarms.clear();
+        }
+
         if let (Some(unit), Some(s)) = (unit, source) {
             channels.push(ChannelSpec {
                 name: c.name.clone(),
@@ -1295,14 +1446,37 @@ pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
                 machine: c.machine.clone(),
                 envelope,
                 bands,
+                health,
+                alarms,
             });
         }
     }
 
     let machines = validate_machines(&mut issues, raw);
+    let alarms = match &raw.alarms {
+        None => {
+            if channels.iter().any(|c| !c.alarms.is_empty()) {
+                issues.add(
+                    "alarms",
+                    "alarms are configured but [alarms] (storage_dir for the journal and captures) is missing",
+                );
+            }
+            None
+        }
+        Some(a) => match a.build("alarms") {
+            Ok(a) => Some(a),
+            Err(v) => {
+                for (p, m) in v {
+                    issues.add(p, m);
+                }
+                None
+            }
+        },
+    };
 
     match (issues.0.is_empty(), listen) {
         (true, Some(listen)) => Ok(Config {
+            alarms,
             listen,
             workers,
             ring_seconds: raw.dsp.ring_seconds,

@@ -7,7 +7,10 @@
 
 use std::collections::{BTreeMap, HashMap};
 use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
-use std::sync::{Arc, Mutex};
+use std::sync::mpsc::{Receiver, Sender};
+use std::sync::{Arc, Mutex, OnceLock};
+
+use crate::alarm::engine::{AlarmBoard, AlarmCommand};
 use std::time::{SystemTime, UNIX_EPOCH};
 
 use arc_swap::ArcSwapOption;
@@ -50,6 +53,14 @@ pub struct ChannelSnapshot {
 /// Everything the rest of the process knows about one channel.
 pub struct ChannelShared {
     pub spec: Arc<ChannelSpec>,
+    /// Health and alarm states, replaced whenever one changes.
+    pub alarm_board: ArcSwapOption<AlarmBoard>,
+    /// Operator commands to the channel's worker (acknowledge, re-learn).
+    pub alarm_commands: Mutex<Sender<AlarmCommand>>,
+    /// The receiving end, taken once by the worker.
+    pub alarm_inbox: Mutex<Option<Receiver<AlarmCommand>>>,
+    /// The worker thread, to wake it for a command.
+    pub worker: OnceLock<std::thread::Thread>,
     /// Window figures, for converting the power spectrum to other scalings.
     pub window_enbw_bins: f64,
     pub window_coherent_gain: f64,
@@ -60,7 +71,12 @@ pub struct ChannelShared {
 impl ChannelShared {
     pub fn new(spec: ChannelSpec) -> ChannelShared {
         let w = Window::new(spec.window, spec.block);
+        let (tx, rx) = std::sync::mpsc::channel();
         ChannelShared {
+            alarm_board: ArcSwapOption::empty(),
+            alarm_commands: Mutex::new(tx),
+            alarm_inbox: Mutex::new(Some(rx)),
+            worker: OnceLock::new(),
             window_enbw_bins: w.enbw_bins(),
             window_coherent_gain: w.coherent_gain(),
             spec: Arc::new(spec),
@@ -76,6 +92,19 @@ impl ChannelShared {
 
     pub fn latest(&self) -> Option<Arc<ChannelSnapshot>> {
         self.snapshot.load_full()
+    }
+
+    /// Sends an operator command to the worker and wakes it.
+    pub fn command(&self, cmd: AlarmCommand) -> bool {
+        let sent = self
+            .alarm_commands
+            .lock()
+            .map(|tx| tx.send(cmd).is_ok())
+            .unwrap_or(false);
+        if let Some(t) = self.worker.get() {
+            t.unpark();
+        }
+        sent
     }
 }
 
@@ -193,6 +222,12 @@ impl MachineShared {
 
 /// The read side of the whole pipeline, handed to HTTP.
 pub struct AppState {
+    /// The alarm I/O thread's counters and recent events (None without `[alarms]`).
+    pub alarm_io: Option<Arc<crate::alarm::io::IoShared>>,
+    /// Where captures are stored (None without `[alarms]`).
+    pub captures_dir: Option<std::path::PathBuf>,
+    /// Bearer token for operator actions (None: such actions are refused).
+    pub token: Option<crate::alarm::token::Token>,
     pub machines: Vec<Arc<MachineShared>>,
     pub channels: Vec<Arc<ChannelShared>>,
     pub by_name: HashMap<String, usize>,
@@ -218,6 +253,9 @@ impl AppState {
             .map(|s| Arc::new(SourceShared::new(&s.name, s.kind.as_str())))
             .collect();
         AppState {
+            alarm_io: None,
+            captures_dir: config.alarms.as_ref().map(|a| a.captures_dir()),
+            token: None,
             machines: config
                 .machines
                 .iter()

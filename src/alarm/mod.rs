@@ -17,6 +17,7 @@
 //! - [`token`]: the bearer token for operator actions, constant-time compare.
 //! - [`config`]: the TOML tables (`[alarms]`, a band's `alarm`, a channel's
 //!   `health`) and their validation.
+//! - [`engine`]: one channel's alarms on its DSP thread (health, captures, commands).
 //! - [`io`]: the I/O thread that owns the journal and the capture store, so
 //!   that the DSP threads never touch a file.
 //!
@@ -26,6 +27,7 @@
 pub mod baseline;
 pub mod capture;
 pub mod config;
+pub mod engine;
 mod fsutil;
 pub mod health;
 pub mod io;

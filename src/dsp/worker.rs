@@ -14,6 +14,7 @@ use std::sync::Arc;
 use std::thread::{self, JoinHandle, Thread};
 use std::time::Duration;
 
+use crate::alarm::engine::ChannelAlarms;
 use crate::config::{SpectrumKind, SpeedSource};
 use crate::counters::GapReason;
 use crate::dsp::average::Averager;
@@ -72,6 +73,7 @@ pub struct ChannelDsp {
     spare: Option<Arc<ChannelSnapshot>>,
     seq: u64,
     blocks_per_turn: usize,
+    alarms: Option<Box<ChannelAlarms>>,
 }
 
 impl ChannelDsp {
@@ -164,6 +166,7 @@ impl ChannelDsp {
             spare: None,
             seq: 0,
             blocks_per_turn: MAX_BLOCKS_PER_TURN,
+            alarms: None,
             reader,
             shared,
         }
@@ -177,6 +180,22 @@ impl ChannelDsp {
 
     pub fn shared(&self) -> &Arc<ChannelShared> {
         &self.shared
+    }
+
+    /// Gives the channel its alarms (health, limits, captures).
+    pub fn set_alarms(&mut self, alarms: ChannelAlarms) {
+        self.alarms = Some(Box::new(alarms));
+    }
+
+    /// Shutdown: finishes what the alarms hold (captures in progress).
+    pub fn finish(&mut self) {
+        if let Some(a) = &mut self.alarms {
+            a.finish();
+            a.tick();
+            if let Some(b) = a.take_board(false) {
+                self.shared.alarm_board.store(Some(Arc::new(b)));
+            }
+        }
     }
 
     /// Processes what the ring holds (up to a bounded number of blocks).
@@ -195,6 +214,16 @@ impl ChannelDsp {
                     worked = true;
                     if self.filled == 0 {
                         self.frame_first_sample = self.next_sample;
+                    }
+                    let ts = self.timestamp_of(self.next_sample);
+                    if let Some(a) = &mut self.alarms {
+                        let fs = self.shared.spec.sample_rate_hz;
+                        a.on_samples(
+                            self.next_sample,
+                            ts,
+                            &self.frame[self.filled..self.filled + n],
+                            fs,
+                        );
                     }
                     for role in &mut self.speed_roles {
                         if let SpeedRole::Tach(m, t) = role {
@@ -219,6 +248,12 @@ impl ChannelDsp {
                 }
             }
         }
+        if let Some(a) = &mut self.alarms {
+            a.tick();
+            if let Some(b) = a.take_board(false) {
+                self.shared.alarm_board.store(Some(Arc::new(b)));
+            }
+        }
         worked
     }
 
@@ -226,6 +261,11 @@ impl ChannelDsp {
         if let Some(reason) = m.gap {
             // No block may span a gap: start the block over.
             self.filled = 0;
+            if let Some(a) = &mut self.alarms {
+                if reason != GapReason::Restart || self.seq > 0 {
+                    a.on_gap();
+                }
+            }
             for role in &mut self.speed_roles {
                 if let SpeedRole::Tach(_, t) = role {
                     t.reset();
@@ -318,6 +358,17 @@ impl ChannelDsp {
         snap.bands.extend_from_slice(&self.band_values);
         snap.waveform.clear();
         snap.waveform.extend_from_slice(&self.frame);
+        if let (Some(a), Some(snap)) = (&mut self.alarms, Arc::get_mut(&mut arc)) {
+            let spec = &self.shared.spec;
+            a.evaluate(
+                spec,
+                &snap.bands,
+                &snap.overall,
+                &snap.power,
+                snap.averages,
+                snap.first_sample,
+            );
+        }
         self.spare = self.shared.snapshot.swap(Some(arc));
         self.shared.counters.spectra.fetch_add(1, Ordering::Relaxed);
     }
@@ -377,6 +428,9 @@ impl Workers {
 }
 
 fn worker_loop(chans: &mut [ChannelDsp], stop: &AtomicBool) {
+    for ch in chans.iter() {
+        let _ = ch.shared.worker.set(thread::current());
+    }
     while !stop.load(Ordering::Relaxed) {
         let mut worked = false;
         for ch in chans.iter_mut() {
@@ -385,5 +439,8 @@ fn worker_loop(chans: &mut [ChannelDsp], stop: &AtomicBool) {
         if !worked {
             thread::park_timeout(IDLE_PARK);
         }
+    }
+    for ch in chans.iter_mut() {
+        ch.finish();
     }
 }

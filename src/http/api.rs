@@ -200,6 +200,12 @@ struct Averaging {
 #[derive(Serialize)]
 struct ChannelSummary<'a> {
     name: &'a str,
+    /// Sensor health: true OK, false not OK (alarms inhibited), null before
+    /// the first data.
+    health_ok: Option<bool>,
+    /// The most severe alarm state of the channel: "normal", "alert",
+    /// "danger", "inhibited", or null without alarms.
+    alarm_state: Option<&'static str>,
     unit: &'static str,
     quantity: &'static str,
     sample_rate_hz: f64,
@@ -232,7 +238,22 @@ fn summary<'a>(
     let spec = &ch.spec;
     let source = app.source(&spec.source);
     let age = snap.map(|s| age_seconds(s, now_ns));
+    let board = ch.alarm_board.load();
+    let worst = board.as_ref().and_then(|b| {
+        b.alarms
+            .iter()
+            .map(|a| a.state)
+            .max_by_key(|s| match s {
+                crate::alarm::state::AlarmState::Normal => 0,
+                crate::alarm::state::AlarmState::Inhibited => 1,
+                crate::alarm::state::AlarmState::Alert => 2,
+                crate::alarm::state::AlarmState::Danger => 3,
+            })
+            .map(|s| s.as_str())
+    });
     ChannelSummary {
+        health_ok: board.as_ref().map(|b| b.health.ok),
+        alarm_state: worst,
         name: &spec.name,
         unit: spec.unit.symbol,
         quantity: spec.unit.quantity.as_str(),
@@ -408,6 +429,9 @@ pub async fn channel_detail(
             spec.integration_low_cut_hz.into(),
         );
         m.insert("bands".into(), json!(bands));
+        let (health, alarms) = crate::http::alarms::board_json(ch);
+        m.insert("health".into(), health);
+        m.insert("alarms".into(), Value::Array(alarms));
         m.insert("overall".into(), json!(overall));
         m.insert("counters".into(), counters_json(&ch.counters));
         m.insert(

@@ -26,6 +26,19 @@ pub enum ApiError {
     /// follows running speed while the speed is unknown).
     #[error("{0}")]
     NotReady(String),
+    /// Missing or wrong bearer token.
+    #[error("missing or wrong bearer token")]
+    Unauthorized,
+    /// The channel has no alarm of that name.
+    #[error("channel {0:?} has no alarm {1:?}")]
+    UnknownAlarm(String, String),
+    /// No capture with that id.
+    #[error("no capture {0:?}")]
+    UnknownCapture(String),
+    /// The action does not apply in the alarm's state (e.g. ack of an
+    /// alarm that is not latched).
+    #[error("{0}")]
+    Conflict(String),
     /// No route for this path.
     #[error("no such endpoint")]
     NoRoute,
@@ -40,7 +53,12 @@ pub enum ApiError {
 impl ApiError {
     pub fn status(&self) -> StatusCode {
         match self {
-            ApiError::UnknownChannel(_) | ApiError::NoRoute => StatusCode::NOT_FOUND,
+            ApiError::UnknownChannel(_)
+            | ApiError::NoRoute
+            | ApiError::UnknownAlarm(..)
+            | ApiError::UnknownCapture(_) => StatusCode::NOT_FOUND,
+            ApiError::Unauthorized => StatusCode::UNAUTHORIZED,
+            ApiError::Conflict(_) => StatusCode::CONFLICT,
             ApiError::BadQuery(_) => StatusCode::BAD_REQUEST,
             ApiError::NoSnapshot(_) | ApiError::Waiting(_) | ApiError::NotReady(_) => {
                 StatusCode::SERVICE_UNAVAILABLE

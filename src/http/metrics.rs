@@ -160,9 +160,20 @@ enum Fixed {
     BandInService,
     MachineSpeed,
     MachineSpeedKnown,
+    AlarmState,
+    AlarmLatched,
+    AlarmAcknowledged,
+    AlarmSince,
+    AlarmTransitions,
+    HealthOk,
+    AlarmRecordsWritten,
+    AlarmRecordsDropped,
+    AlarmWriteErrors,
+    AlarmCapturesPruned,
+    AlarmLimitDimensionless,
 }
 
-const FIXED: [(Fixed, &str, &str, MetricType, &[&str]); 24] = [
+const FIXED: [(Fixed, &str, &str, MetricType, &[&str]); 35] = [
     (
         Fixed::BandPeakFrequency,
         "bandwatch_band_peak_frequency_hertz",
@@ -331,6 +342,83 @@ const FIXED: [(Fixed, &str, &str, MetricType, &[&str]); 24] = [
         MetricType::GAUGE,
         &["machine", "source"],
     ),
+    (
+        Fixed::AlarmState,
+        "bandwatch_alarm_state",
+        "Alarm state: 0 normal, 1 alert, 2 danger, -1 inhibited (channel not OK).",
+        MetricType::GAUGE,
+        &["channel", "band"],
+    ),
+    (
+        Fixed::AlarmLatched,
+        "bandwatch_alarm_latched",
+        "1 while a latching alarm holds a state until it is acknowledged, else 0.",
+        MetricType::GAUGE,
+        &["channel", "band"],
+    ),
+    (
+        Fixed::AlarmAcknowledged,
+        "bandwatch_alarm_acknowledged",
+        "1 when the latched state has been acknowledged by an operator, else 0.",
+        MetricType::GAUGE,
+        &["channel", "band"],
+    ),
+    (
+        Fixed::AlarmSince,
+        "bandwatch_alarm_state_since_timestamp_seconds",
+        "When the alarm entered its current state, in seconds since the Unix epoch.",
+        MetricType::GAUGE,
+        &["channel", "band"],
+    ),
+    (
+        Fixed::AlarmTransitions,
+        "bandwatch_alarm_transitions_total",
+        "Alarm transitions, by the state entered.",
+        MetricType::COUNTER,
+        &["channel", "band", "to"],
+    ),
+    (
+        Fixed::HealthOk,
+        "bandwatch_channel_health_ok",
+        "1 when the channel's sensor looks healthy (its alarms are armed), 0 when not OK.",
+        MetricType::GAUGE,
+        &["channel"],
+    ),
+    (
+        Fixed::AlarmRecordsWritten,
+        "bandwatch_alarm_records_written_total",
+        "Journal events, captures and baselines written to the storage directory.",
+        MetricType::COUNTER,
+        &["kind"],
+    ),
+    (
+        Fixed::AlarmRecordsDropped,
+        "bandwatch_alarm_records_dropped_total",
+        "Journal events, captures and baselines dropped because the alarm I/O queue was full.",
+        MetricType::COUNTER,
+        &["kind"],
+    ),
+    (
+        Fixed::AlarmWriteErrors,
+        "bandwatch_alarm_write_errors_total",
+        "Failed writes of the journal, captures or baselines (see the log).",
+        MetricType::COUNTER,
+        &[],
+    ),
+    (
+        Fixed::AlarmCapturesPruned,
+        "bandwatch_alarm_captures_pruned_total",
+        "Old captures removed to keep within the retention limits.",
+        MetricType::COUNTER,
+        &[],
+    ),
+    (
+        Fixed::AlarmLimitDimensionless,
+        "bandwatch_alarm_limit",
+        "Limit of an alarm on a dimensionless value (crest factor), by level.",
+        MetricType::GAUGE,
+        &["channel", "band", "level"],
+    ),
 ];
 
 /// Time-domain levels exported per channel, in the order of the four
@@ -367,6 +455,9 @@ pub struct PipelineCollector {
     band_slot: Vec<Vec<usize>>,
     /// Per channel: index of the first of its 4 overall families.
     overall_slot: Vec<usize>,
+    /// Per channel, per alarm: index into `dynamic` of its limit family
+    /// (None: dimensionless, exported in `bandwatch_alarm_limit`).
+    limit_slot: Vec<Vec<Option<usize>>>,
     descs: Vec<Desc>,
 }
 
@@ -388,6 +479,7 @@ impl PipelineCollector {
         };
         let mut band_slot = Vec::with_capacity(app.channels.len());
         let mut overall_slot = Vec::with_capacity(app.channels.len());
+        let mut limit_slot = Vec::with_capacity(app.channels.len());
         for ch in &app.channels {
             let q = ch.spec.unit.quantity;
             let first = slot(
@@ -431,6 +523,22 @@ impl PipelineCollector {
                 })
                 .collect();
             band_slot.push(bands);
+            let limits = ch
+                .spec
+                .alarms
+                .iter()
+                .map(|a| {
+                    a.unit.map(|u| {
+                        let q = u.quantity;
+                        slot(
+                            format!("bandwatch_alarm_limit_{}", q.metric_suffix()),
+                            format!("Limit of an alarm, by level, in {}.", si_words(q)),
+                            &["channel", "band", "level"],
+                        )
+                    })
+                })
+                .collect();
+            limit_slot.push(limits);
         }
         // The four overall families of a quantity are created together, so
         // `first..first + 4` holds them even when a later channel reuses them.
@@ -459,6 +567,7 @@ impl PipelineCollector {
             dynamic,
             band_slot,
             overall_slot,
+            limit_slot,
             descs,
         }
     }
@@ -568,6 +677,55 @@ impl Collector for PipelineCollector {
                 );
             }
 
+            if let Some(board) = ch.alarm_board.load_full() {
+                put(
+                    &mut fixed,
+                    Fixed::HealthOk,
+                    gauge(ch_label(name), if board.health.ok { 1.0 } else { 0.0 }),
+                );
+                for (j, (a, v)) in spec.alarms.iter().zip(&board.alarms).enumerate() {
+                    let labels = || vec![label("channel", name), label("band", &a.name)];
+                    put(
+                        &mut fixed,
+                        Fixed::AlarmState,
+                        gauge(labels(), v.state.metric_value() as f64),
+                    );
+                    put(
+                        &mut fixed,
+                        Fixed::AlarmLatched,
+                        gauge(labels(), if v.latched { 1.0 } else { 0.0 }),
+                    );
+                    put(
+                        &mut fixed,
+                        Fixed::AlarmAcknowledged,
+                        gauge(labels(), if v.acknowledged { 1.0 } else { 0.0 }),
+                    );
+                    put(
+                        &mut fixed,
+                        Fixed::AlarmSince,
+                        gauge(labels(), v.since_unix_ns as f64 * 1e-9),
+                    );
+                    for (k, st) in crate::alarm::state::AlarmState::ALL.iter().enumerate() {
+                        let mut l = labels();
+                        l.push(label("to", st.as_str()));
+                        put(
+                            &mut fixed,
+                            Fixed::AlarmTransitions,
+                            counter(l, v.transitions[k]),
+                        );
+                    }
+                    for (level, lim) in [("alert", v.alert_limit), ("danger", v.danger_limit)] {
+                        let Some(lim) = lim else { continue };
+                        let mut l = labels();
+                        l.push(label("level", level));
+                        match (self.limit_slot[i].get(j).copied().flatten(), a.unit) {
+                            (Some(slot), Some(u)) => dynamic[slot].push(gauge(l, lim * u.to_si)),
+                            _ => put(&mut fixed, Fixed::AlarmLimitDimensionless, gauge(l, lim)),
+                        }
+                    }
+                }
+            }
+
             // One load per channel per scrape: every value below comes from
             // the same snapshot.
             let Some(snap) = ch.latest() else { continue };
@@ -631,6 +789,36 @@ impl Collector for PipelineCollector {
             if let Some(hz) = speed {
                 fixed[Fixed::MachineSpeed as usize].push(gauge(labels(), hz));
             }
+        }
+
+        if let Some(io) = &self.app.alarm_io {
+            use std::sync::atomic::Ordering::Relaxed;
+            for (kind, w, d) in [
+                (
+                    "events",
+                    io.events_written.load(Relaxed),
+                    io.dropped_events(),
+                ),
+                (
+                    "captures",
+                    io.captures_written.load(Relaxed),
+                    io.dropped_captures(),
+                ),
+                (
+                    "baselines",
+                    io.baselines_written.load(Relaxed),
+                    io.dropped_baselines(),
+                ),
+            ] {
+                fixed[Fixed::AlarmRecordsWritten as usize]
+                    .push(counter(vec![label("kind", kind)], w));
+                fixed[Fixed::AlarmRecordsDropped as usize]
+                    .push(counter(vec![label("kind", kind)], d));
+            }
+            fixed[Fixed::AlarmWriteErrors as usize]
+                .push(counter(vec![], io.write_errors.load(Relaxed)));
+            fixed[Fixed::AlarmCapturesPruned as usize]
+                .push(counter(vec![], io.captures_pruned.load(Relaxed)));
         }
 
         for s in &self.app.sources {

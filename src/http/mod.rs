@@ -2,10 +2,12 @@
 //! snapshots and counters; they never block a DSP worker.
 //!
 //! - `api`: `/healthz`, `/readyz`, `/api/v1/channels…` (JSON, CSV)
+//! - `alarms`: `/api/v1/alarms…` (states, ack, re-learn) and `/api/v1/events…`
 //! - `scaling`: pure spectrum conversions (scaling, unit, frequency crop)
 //! - `metrics`: the Prometheus registry and the scrape-time collector
 //! - `error`: `ApiError`, the JSON error every failure is answered with
 
+pub mod alarms;
 pub mod api;
 pub mod error;
 pub mod metrics;
@@ -17,7 +19,7 @@ use axum::extract::{MatchedPath, Request, State};
 use axum::http::{header, StatusCode};
 use axum::middleware::{self, Next};
 use axum::response::{IntoResponse, Response};
-use axum::routing::get;
+use axum::routing::{get, post};
 use axum::Router;
 
 pub use crate::http::error::ApiError;
@@ -55,6 +57,15 @@ pub fn router_with(st: HttpState) -> Router {
         .route("/api/v1/channels/{name}", get(api::channel_detail))
         .route("/api/v1/channels/{name}/spectrum", get(api::spectrum))
         .route("/api/v1/channels/{name}/waveform", get(api::waveform))
+        .route("/api/v1/alarms", get(alarms::list))
+        .route("/api/v1/alarms/{channel}/{band}/ack", post(alarms::ack))
+        .route(
+            "/api/v1/alarms/{channel}/{band}/relearn",
+            post(alarms::relearn),
+        )
+        .route("/api/v1/events", get(alarms::events))
+        .route("/api/v1/events/{id}", get(alarms::event))
+        .route("/api/v1/events/{id}/waveform", get(alarms::event_waveform))
         .route_layer(middleware::from_fn_with_state(st.clone(), count_matched))
         .fallback(count_unmatched)
         .method_not_allowed_fallback(api::method_not_allowed)
