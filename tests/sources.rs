@@ -227,7 +227,10 @@ async fn tcp_listen_counts_crc_errors_and_resyncs() {
     })
     .await;
     // The probe connection above came and went (accepted, then closed).
-    wait_for("probe closed", 5, || get(&s.connections) >= 1 && !s.is_connected()).await;
+    wait_for("probe closed", 5, || {
+        get(&s.connections) >= 1 && !s.is_connected()
+    })
+    .await;
     let r = send_frames(
         Endpoint::Tcp(format!("127.0.0.1:{port}")),
         100,
