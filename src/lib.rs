@@ -17,7 +17,9 @@
 //! - [`dsp`]: windows, spectra, averaging, bands, overall levels, workers
 //! - [`snapshot`]: what workers publish and HTTP reads
 //! - [`http`]: router, JSON API, Prometheus exposition
+//! - [`bench`]: `bandwatch bench`, side-by-side stage throughput, memory, latency
 
+pub mod bench;
 pub mod config;
 pub mod counters;
 pub mod dsp;

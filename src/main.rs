@@ -99,12 +99,21 @@ enum Command {
         #[arg(long)]
         source: Option<String>,
     },
+    /// Measure stage throughput, ingest, HTTP latency and memory side by side.
+    Bench(bandwatch::bench::BenchArgs),
 }
 
 fn main() -> ExitCode {
     let cli = Cli::parse();
     init_tracing(cli.log_format);
     match cli.command {
+        Command::Bench(args) => match bandwatch::bench::run(&args) {
+            Ok(()) => ExitCode::SUCCESS,
+            Err(e) => {
+                eprintln!("bench: {e}");
+                ExitCode::FAILURE
+            }
+        },
         Command::Check { config } => match bandwatch::config::load(&config) {
             Ok(c) => {
                 println!(
