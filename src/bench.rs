@@ -156,7 +156,8 @@ pub struct Row {
     pub case: String,
     pub unit: String,
     pub value: Summary,
-    /// Ratio to the f32 FFT limit, taken within each repeat.
+    /// Ratio to the f32 FFT limit measured beside it (alternating slices)
+    /// within each repeat.
     pub ratio: Option<Summary>,
     pub target: Option<String>,
 }
@@ -296,35 +297,94 @@ fn lost(shared: &[Arc<ChannelShared>]) -> u64 {
 // fft
 // ---------------------------------------------------------------------------
 
-/// FFTs per second of a forward real FFT of length `n` in type `T`, the
-/// input restored from a pristine copy before each (realfft uses its input
-/// as scratch), over at least `min` of timed work.
-fn fft_rate<T: FftNum + FromPrimitive>(n: usize, min: Duration) -> f64 {
-    let fft = RealFftPlanner::<T>::new().plan_fft_forward(n);
-    let sig = test_signal(n, FS);
-    let pristine: Vec<T> = sig
-        .iter()
-        .map(|&x| T::from_f32(x).unwrap_or_else(T::zero))
-        .collect();
-    let mut input = fft.make_input_vec();
-    let mut output = fft.make_output_vec();
-    let mut scratch = fft.make_scratch_vec();
-    let mut count = 0u64;
-    let start = Instant::now();
-    let mut batch = 16u64;
-    loop {
-        for _ in 0..batch {
-            input.copy_from_slice(&pristine);
-            let _ = fft.process_with_scratch(&mut input, &mut output, &mut scratch);
+/// A forward real FFT of length n in type `T`, timed in slices. The input
+/// is restored from a pristine copy before each transform (realfft uses its
+/// input as scratch).
+struct FftBench<T: FftNum> {
+    fft: Arc<dyn realfft::RealToComplex<T>>,
+    pristine: Vec<T>,
+    input: Vec<T>,
+    output: Vec<realfft::num_complex::Complex<T>>,
+    scratch: Vec<realfft::num_complex::Complex<T>>,
+}
+
+impl<T: FftNum + FromPrimitive> FftBench<T> {
+    fn new(n: usize) -> FftBench<T> {
+        let fft = RealFftPlanner::<T>::new().plan_fft_forward(n);
+        let pristine = test_signal(n, FS)
+            .iter()
+            .map(|&x| T::from_f32(x).unwrap_or_else(T::zero))
+            .collect();
+        FftBench {
+            input: fft.make_input_vec(),
+            output: fft.make_output_vec(),
+            scratch: fft.make_scratch_vec(),
+            fft,
+            pristine,
         }
-        count += batch;
-        let el = start.elapsed();
-        if el >= min {
-            std::hint::black_box(&output);
-            return count as f64 / el.as_secs_f64();
-        }
-        batch = batch.saturating_mul(2).min(4096);
     }
+
+    /// Runs transforms for at least `min`; returns (transforms, time).
+    fn slice(&mut self, min: Duration) -> (u64, Duration) {
+        let mut count = 0u64;
+        let start = Instant::now();
+        loop {
+            for _ in 0..8 {
+                self.input.copy_from_slice(&self.pristine);
+                let _ = self.fft.process_with_scratch(
+                    &mut self.input,
+                    &mut self.output,
+                    &mut self.scratch,
+                );
+            }
+            count += 8;
+            let el = start.elapsed();
+            if el >= min {
+                std::hint::black_box(&self.output);
+                return (count, el);
+            }
+        }
+    }
+
+    /// Transforms per second over at least `min`.
+    fn rate(&mut self, min: Duration) -> f64 {
+        self.slice(Duration::from_millis(5));
+        let (n, t) = self.slice(min);
+        n as f64 / t.as_secs_f64()
+    }
+}
+
+/// Slices a side-by-side measurement is cut into.
+const SLICES: u32 = 8;
+
+/// Measures `work` (returning samples and timed duration per call) against
+/// the f32 FFT in alternating slices of about `min / SLICES` each, so that
+/// both see the same machine load. Returns (work rate, FFT input-sample
+/// rate = FFTs/s × hop) over the whole measurement.
+fn side_by_side(
+    fft: &mut FftBench<f32>,
+    hop: usize,
+    min: Duration,
+    mut work: impl FnMut() -> (u64, Duration),
+) -> (f64, f64) {
+    let slice = min / SLICES;
+    let (mut wn, mut wt) = (0u64, Duration::ZERO);
+    let (mut fnum, mut ft) = (0u64, Duration::ZERO);
+    for _ in 0..SLICES {
+        let (a, b) = fft.slice(slice);
+        fnum += a;
+        ft += b;
+        let target = wt + slice;
+        while wt < target {
+            let (a, b) = work();
+            wn += a;
+            wt += b;
+        }
+    }
+    (
+        wn as f64 / wt.as_secs_f64(),
+        fnum as f64 * hop as f64 / ft.as_secs_f64(),
+    )
 }
 
 // ---------------------------------------------------------------------------
@@ -354,7 +414,9 @@ impl DspRig {
         }
         let spec = &shared[0].spec;
         DspRig {
-            chunk: (4 * spec.hop).min(ring_capacity(config, spec)),
+            // One hop per channel per round: every channel computes one
+            // block per round, as a worker fed in real time does.
+            chunk: spec.hop.min(ring_capacity(config, spec)),
             shared,
             dsps,
             writers,
@@ -395,22 +457,20 @@ impl DspRig {
     }
 
     /// Input samples per second over at least `min` of timed work, after
-    /// one warm-up round.
-    fn rate(&mut self, min: Duration) -> Result<f64, BenchError> {
-        self.round();
-        let (mut n, mut t) = (0u64, Duration::ZERO);
-        while t < min {
-            let (a, b) = self.round();
-            n += a;
-            t += b;
+    /// warm-up rounds, side by side with the FFT: (rate, FFT rate).
+    fn rate(&mut self, fft: &mut FftBench<f32>, min: Duration) -> Result<(f64, f64), BenchError> {
+        for _ in 0..4 {
+            self.round();
         }
+        let hop = self.shared[0].spec.hop;
+        let r = side_by_side(fft, hop, min, || self.round());
         let dropped = lost(&self.shared);
         if dropped > 0 {
             return Err(BenchError::Lost(format!(
                 "dsp rig dropped {dropped} samples"
             )));
         }
-        Ok(n as f64 / t.as_secs_f64())
+        Ok(r)
     }
 
     /// Writes and drains rounds without timing until `stop`, counting
@@ -543,7 +603,8 @@ impl PathRig {
             );
         }
         let spec = &config.channels[0];
-        let instants = (4 * spec.hop).div_ceil(FRAME_SAMPLES) * FRAME_SAMPLES;
+        // About one hop per round, as in the dsp phase.
+        let instants = spec.hop.div_ceil(FRAME_SAMPLES) * FRAME_SAMPLES;
         let (bytes, frame_bytes) =
             encode_frames(format, channels, instants, FRAME_SAMPLES, signal, FS);
         let source = Arc::new(SourceShared::new("bench", "tcp-listen"));
@@ -582,14 +643,12 @@ impl PathRig {
         ((self.instants * self.channels) as u64, t.elapsed())
     }
 
-    fn rate(&mut self, min: Duration) -> Result<f64, BenchError> {
-        self.round();
-        let (mut n, mut t) = (0u64, Duration::ZERO);
-        while t < min {
-            let (a, b) = self.round();
-            n += a;
-            t += b;
+    fn rate(&mut self, fft: &mut FftBench<f32>, min: Duration) -> Result<(f64, f64), BenchError> {
+        for _ in 0..4 {
+            self.round();
         }
+        let hop = self.shared[0].spec.hop;
+        let r = side_by_side(fft, hop, min, || self.round());
         let dropped = lost(&self.shared);
         let rejected: u64 = self.source.rejected().iter().map(|(_, n)| n).sum();
         let late = SourceShared::get(&self.source.frames_late);
@@ -599,7 +658,7 @@ impl PathRig {
                 "path rig lost data: dropped {dropped}, rejected {rejected}, late {late}, missing {missing}"
             )));
         }
-        Ok(n as f64 / t.as_secs_f64())
+        Ok(r)
     }
 }
 
@@ -1347,8 +1406,10 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
         let formats = [SampleFormat::I16, SampleFormat::I24, SampleFormat::F32];
         let mut f32_rate = Vec::new();
         let mut f64_rate = Vec::new();
-        let mut dsp: Vec<Vec<f64>> = vec![Vec::new(); args.channels.len()];
-        let mut path: Vec<Vec<Vec<f64>>> = vec![vec![Vec::new(); formats.len()]; args.channels.len()];
+        // Per row: (rate, the FFT rate measured beside it) per repeat.
+        let mut dsp: Vec<Vec<(f64, f64)>> = vec![Vec::new(); args.channels.len()];
+        let mut path: Vec<Vec<Vec<(f64, f64)>>> =
+            vec![vec![Vec::new(); formats.len()]; args.channels.len()];
         let mut dsp_rigs = Vec::new();
         let mut path_rigs = Vec::new();
         for &c in &args.channels {
@@ -1365,23 +1426,27 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
                 );
             }
         }
+        let mut fft32 = FftBench::<f32>::new(n);
+        let mut fft64 = FftBench::<f64>::new(n);
         for r in 0..repeats {
             eprintln!("bench: compute repeat {}/{repeats}", r + 1);
-            f32_rate.push(fft_rate::<f32>(n, min) * hop as f64);
             if wants(args, "fft") {
-                f64_rate.push(fft_rate::<f64>(n, min) * hop as f64);
+                f32_rate.push(fft32.rate(min) * hop as f64);
+                f64_rate.push(fft64.rate(min) * hop as f64);
             }
             for (i, rig) in dsp_rigs.iter_mut().enumerate() {
-                dsp[i].push(rig.rate(min)?);
+                dsp[i].push(rig.rate(&mut fft32, min)?);
             }
             for (i, rigs) in path_rigs.iter_mut().enumerate() {
                 for (j, rig) in rigs.iter_mut().enumerate() {
-                    path[i][j].push(rig.rate(min)?);
+                    path[i][j].push(rig.rate(&mut fft32, min)?);
                 }
             }
         }
-        let ratio = |v: &[f64]| {
-            let r: Vec<f64> = v.iter().zip(&f32_rate).map(|(a, b)| a / b).collect();
+        let f64_ratio: Vec<f64> = f64_rate.iter().zip(&f32_rate).map(|(a, b)| a / b).collect();
+        let rates = |v: &[(f64, f64)]| v.iter().map(|x| x.0).collect::<Vec<f64>>();
+        let ratio = |v: &[(f64, f64)]| {
+            let r: Vec<f64> = v.iter().map(|(a, b)| a / b).collect();
             Some(Summary::of(&r))
         };
         if wants(args, "fft") {
@@ -1390,7 +1455,7 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
                 case: format!("realfft f32 N={n}"),
                 unit: "samples/s/core".into(),
                 value: Summary::of(&f32_rate),
-                ratio: ratio(&f32_rate),
+                ratio: None,
                 target: Some("the limit (FFT/s x hop)".into()),
             });
             rows.push(Row {
@@ -1398,7 +1463,7 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
                 case: format!("realfft f64 N={n}"),
                 unit: "samples/s/core".into(),
                 value: Summary::of(&f64_rate),
-                ratio: ratio(&f64_rate),
+                ratio: Some(Summary::of(&f64_ratio)),
                 target: None,
             });
         }
@@ -1408,7 +1473,7 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
                     phase: "dsp".into(),
                     case: format!("{c} channels"),
                     unit: "samples/s/core".into(),
-                    value: Summary::of(&dsp[i]),
+                    value: Summary::of(&rates(&dsp[i])),
                     ratio: ratio(&dsp[i]),
                     target: (c == 64).then(|| ">= 0.70 x fft".into()),
                 });
@@ -1421,7 +1486,7 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
                         phase: "path".into(),
                         case: format!("{c} ch {}", f.as_str()),
                         unit: "samples/s/core".into(),
-                        value: Summary::of(&path[i][j]),
+                        value: Summary::of(&rates(&path[i][j])),
                         ratio: ratio(&path[i][j]),
                         target: Some(">= 0.55 x fft".into()),
                     });
@@ -1432,7 +1497,7 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
         if let Some(i) = args.channels.iter().position(|&c| c == 1024) {
             if !dsp.is_empty() && !dsp[i].is_empty() {
                 let need = 4096.0 * FS;
-                let cores: Vec<f64> = dsp[i].iter().map(|r| need / r).collect();
+                let cores: Vec<f64> = dsp[i].iter().map(|r| need / r.0).collect();
                 rows.push(Row {
                     phase: "dsp".into(),
                     case: "4096 ch x 25.6 kHz".into(),
