@@ -15,8 +15,12 @@
 //! the density (per Hz) is P[k] / (ENBW·fs/block). See `bands`.
 //!
 //! The plan is made once; `compute` reuses its buffers and allocates nothing.
+//! Plans and windows are shared by every engine of the same length and
+//! window kind (read-only after they are made), so a thousand channels keep
+//! one set of twiddle factors and coefficients in cache, not a thousand.
 
-use std::sync::Arc;
+use std::collections::HashMap;
+use std::sync::{Arc, Mutex, OnceLock};
 
 use realfft::num_complex::Complex;
 use realfft::{RealFftPlanner, RealToComplex};
@@ -24,9 +28,34 @@ use realfft::{RealFftPlanner, RealToComplex};
 use crate::config::Detrend;
 use crate::dsp::window::{Window, WindowKind};
 
+/// Forward plans by length, made once per process.
+fn plan(nfft: usize) -> Arc<dyn RealToComplex<f32>> {
+    static PLANNER: OnceLock<Mutex<RealFftPlanner<f32>>> = OnceLock::new();
+    let planner = PLANNER.get_or_init(|| Mutex::new(RealFftPlanner::new()));
+    match planner.lock() {
+        Ok(mut p) => p.plan_fft_forward(nfft),
+        // A panic elsewhere while planning: plan privately rather than fail.
+        Err(_) => RealFftPlanner::<f32>::new().plan_fft_forward(nfft),
+    }
+}
+
+/// Windows by kind and length, made once per process.
+fn shared_window(kind: WindowKind, n: usize) -> Arc<Window> {
+    type Cache = Mutex<HashMap<(WindowKind, usize), Arc<Window>>>;
+    static WINDOWS: OnceLock<Cache> = OnceLock::new();
+    let cache = WINDOWS.get_or_init(|| Mutex::new(HashMap::new()));
+    match cache.lock() {
+        Ok(mut c) => c
+            .entry((kind, n))
+            .or_insert_with(|| Arc::new(Window::new(kind, n)))
+            .clone(),
+        Err(_) => Arc::new(Window::new(kind, n)),
+    }
+}
+
 pub struct SpectrumEngine {
     fft: Arc<dyn RealToComplex<f32>>,
-    window: Window,
+    window: Arc<Window>,
     block: usize,
     nfft: usize,
     detrend: Detrend,
@@ -42,8 +71,8 @@ impl SpectrumEngine {
     /// If `nfft < block` or `block == 0`; the config validation rules both out.
     pub fn new(kind: WindowKind, block: usize, nfft: usize, detrend: Detrend) -> SpectrumEngine {
         assert!(block > 0 && nfft >= block, "block {block}, nfft {nfft}");
-        let fft = RealFftPlanner::<f32>::new().plan_fft_forward(nfft);
-        let window = Window::new(kind, block);
+        let fft = plan(nfft);
+        let window = shared_window(kind, block);
         let norm = (1.0 / (window.sum * window.sum)) as f32;
         SpectrumEngine {
             input: fft.make_input_vec(),
@@ -97,11 +126,17 @@ impl SpectrumEngine {
             out.fill(f32::NAN);
             return;
         }
-        let last = out.len() - 1;
+        // Every line doubled in one branch-free (vectorisable) pass, then
+        // DC and Nyquist put back: the same products as doubling all but
+        // those two.
         let norm = self.norm;
-        for (k, (o, x)) in out.iter_mut().zip(&self.output).enumerate() {
-            let p = (x.re * x.re + x.im * x.im) * norm;
-            *o = if k == 0 || k == last { p } else { 2.0 * p };
+        for (o, x) in out.iter_mut().zip(&self.output) {
+            *o = 2.0 * ((x.re * x.re + x.im * x.im) * norm);
+        }
+        let last = out.len() - 1;
+        for k in [0, last] {
+            let x = self.output[k];
+            out[k] = (x.re * x.re + x.im * x.im) * norm;
         }
     }
 }
