@@ -18,7 +18,11 @@
 //! Plans and windows are shared by every engine of the same length and
 //! window kind (read-only after they are made), so a thousand channels keep
 //! one set of twiddle factors and coefficients in cache, not a thousand.
+//! The FFT's input, output and scratch buffers live only during `compute`,
+//! so they belong to the thread, not the channel: a worker's channels take
+//! turns on one hot set instead of each dragging its own through the cache.
 
+use std::cell::RefCell;
 use std::collections::HashMap;
 use std::sync::{Arc, Mutex, OnceLock};
 
@@ -53,15 +57,25 @@ fn shared_window(kind: WindowKind, n: usize) -> Arc<Window> {
     }
 }
 
+/// The FFT's temporaries, one set per thread, sized for the last plan used
+/// (resizing to a length already held does not allocate).
+#[derive(Default)]
+struct Temps {
+    input: Vec<f32>,
+    output: Vec<Complex<f32>>,
+    scratch: Vec<Complex<f32>>,
+}
+
+thread_local! {
+    static TEMPS: RefCell<Temps> = RefCell::new(Temps::default());
+}
+
 pub struct SpectrumEngine {
     fft: Arc<dyn RealToComplex<f32>>,
     window: Arc<Window>,
     block: usize,
     nfft: usize,
     detrend: Detrend,
-    input: Vec<f32>,
-    output: Vec<Complex<f32>>,
-    scratch: Vec<Complex<f32>>,
     /// 1/(Σw)², the amplitude correction applied to |X|².
     norm: f32,
 }
@@ -75,9 +89,6 @@ impl SpectrumEngine {
         let window = shared_window(kind, block);
         let norm = (1.0 / (window.sum * window.sum)) as f32;
         SpectrumEngine {
-            input: fft.make_input_vec(),
-            output: fft.make_output_vec(),
-            scratch: fft.make_scratch_vec(),
             fft,
             window,
             block,
@@ -109,20 +120,32 @@ impl SpectrumEngine {
     pub fn compute(&mut self, block: &[f32], out: &mut [f32]) {
         assert_eq!(block.len(), self.block);
         assert_eq!(out.len(), self.bins());
+        TEMPS.with(|t| match t.try_borrow_mut() {
+            Ok(mut t) => self.compute_with(block, out, &mut t),
+            // Only re-entry could hold the borrow; use private buffers then.
+            Err(_) => self.compute_with(block, out, &mut Temps::default()),
+        });
+    }
+
+    fn compute_with(&self, block: &[f32], out: &mut [f32], t: &mut Temps) {
+        let Temps {
+            input,
+            output,
+            scratch,
+        } = t;
+        input.resize(self.nfft, 0.0);
+        output.resize(self.bins(), Complex::default());
+        scratch.resize(self.fft.get_scratch_len(), Complex::default());
         let mean = match self.detrend {
             Detrend::None => 0.0,
             Detrend::Mean => crate::dsp::stats::mean(block) as f32,
         };
-        for ((dst, &x), &w) in self.input.iter_mut().zip(block).zip(&self.window.coeffs) {
+        for ((dst, &x), &w) in input.iter_mut().zip(block).zip(&self.window.coeffs) {
             *dst = (x - mean) * w;
         }
-        self.input[self.block..].fill(0.0);
+        input[self.block..].fill(0.0);
         // The lengths come from the plan itself, so this cannot fail.
-        if self
-            .fft
-            .process_with_scratch(&mut self.input, &mut self.output, &mut self.scratch)
-            .is_err()
-        {
+        if self.fft.process_with_scratch(input, output, scratch).is_err() {
             out.fill(f32::NAN);
             return;
         }
@@ -130,12 +153,12 @@ impl SpectrumEngine {
         // DC and Nyquist put back: the same products as doubling all but
         // those two.
         let norm = self.norm;
-        for (o, x) in out.iter_mut().zip(&self.output) {
+        for (o, x) in out.iter_mut().zip(output.iter()) {
             *o = 2.0 * ((x.re * x.re + x.im * x.im) * norm);
         }
         let last = out.len() - 1;
         for k in [0, last] {
-            let x = self.output[k];
+            let x = output[k];
             out[k] = (x.re * x.re + x.im * x.im) * norm;
         }
     }
