@@ -450,10 +450,7 @@ impl DspRig {
         self.write_round();
         let t = Instant::now();
         drain(&mut self.dsps);
-        (
-            (self.chunk * self.dsps.len()) as u64,
-            t.elapsed(),
-        )
+        ((self.chunk * self.dsps.len()) as u64, t.elapsed())
     }
 
     /// Input samples per second over at least `min` of timed work, after
@@ -774,7 +771,8 @@ async fn ingest_step(
             )
         }
         Transport::Udp => {
-            let s = std::net::UdpSocket::bind("127.0.0.1:0").map_err(io_err("bind loopback UDP"))?;
+            let s =
+                std::net::UdpSocket::bind("127.0.0.1:0").map_err(io_err("bind loopback UDP"))?;
             let a = s.local_addr().map_err(io_err("local address"))?;
             drop(s);
             (format!("kind = \"udp\"\nlisten = \"{a}\""), None)
@@ -861,7 +859,11 @@ async fn ingest_step(
                 .iter()
                 .map(|c| c.counters.samples_processed.load(Ordering::Relaxed))
                 .sum();
-            let dropped: u64 = state.channels.iter().map(|c| c.counters.dropped_total()).sum();
+            let dropped: u64 = state
+                .channels
+                .iter()
+                .map(|c| c.counters.dropped_total())
+                .sum();
             let missing = SourceShared::get(&state.sources[0].samples_missing);
             if processed + dropped + missing * channels as u64 >= want
                 || tokio::time::Instant::now() > deadline
@@ -878,9 +880,17 @@ async fn ingest_step(
         .iter()
         .map(|c| c.counters.samples_processed.load(Ordering::Relaxed))
         .sum();
-    let dropped: u64 = state.channels.iter().map(|c| c.counters.dropped_total()).sum();
+    let dropped: u64 = state
+        .channels
+        .iter()
+        .map(|c| c.counters.dropped_total())
+        .sum();
     let missing = SourceShared::get(&state.sources[0].samples_missing);
-    let rejected: u64 = state.sources[0].rejected().iter().map(|(_, n)| n).sum::<u64>()
+    let rejected: u64 = state.sources[0]
+        .rejected()
+        .iter()
+        .map(|(_, n)| n)
+        .sum::<u64>()
         + SourceShared::get(&state.sources[0].frames_late);
     pipeline.stop().await;
     result?;
@@ -1044,9 +1054,8 @@ async fn http_load(
         spectrum_ms: Vec::new(),
     };
     let mut buf = Vec::new();
-    let spectrum = format!(
-        "GET /api/v1/channels/{channel}/spectrum HTTP/1.1\r\nhost: bench\r\n\r\n"
-    );
+    let spectrum =
+        format!("GET /api/v1/channels/{channel}/spectrum HTTP/1.1\r\nhost: bench\r\n\r\n");
     let metrics = "GET /metrics HTTP/1.1\r\nhost: bench\r\n\r\n".to_string();
     for i in 0..total {
         let due = start + period * i as u32;
@@ -1556,7 +1565,11 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
 
     if let (true, Some(rt)) = (wants(args, "ingest"), &rt) {
         for transport in [Transport::Tcp, Transport::Udp] {
-            let name = if transport == Transport::Tcp { "tcp" } else { "udp" };
+            let name = if transport == Transport::Tcp {
+                "tcp"
+            } else {
+                "udp"
+            };
             let mut best = Vec::new();
             for r in 0..repeats.min(3) {
                 eprintln!("bench: ingest {name} repeat {}/{}", r + 1, repeats.min(3));
@@ -1644,7 +1657,8 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
     print!("{}", table(&report));
     let _ = std::io::stdout().flush();
     if let Some(p) = &args.json {
-        let text = serde_json::to_string_pretty(&report).map_err(|e| BenchError::Lost(e.to_string()))?;
+        let text =
+            serde_json::to_string_pretty(&report).map_err(|e| BenchError::Lost(e.to_string()))?;
         std::fs::write(p, text).map_err(io_err(format!("write {}", p.display())))?;
     }
     Ok(())
@@ -1682,10 +1696,12 @@ mod tests {
 
     #[test]
     fn path_rig_loses_nothing_and_publishes() {
-        let config = bench_config(2, 256, FS, UNUSED_SOURCE).expect("config");
+        let config = bench_config(2, 2048, FS, UNUSED_SOURCE).expect("config");
         let signal = test_signal(8192, FS);
         let mut rig = PathRig::new(&config, SampleFormat::I16, &signal);
-        for _ in 0..3 {
+        // 12 rounds of one hop: 1 + (12·512 − 2048)/512 = 9 blocks, so
+        // two averages of 4 are published.
+        for _ in 0..12 {
             rig.round();
         }
         assert_eq!(lost(&rig.shared), 0);
@@ -1695,7 +1711,13 @@ mod tests {
             .iter()
             .map(|c| c.counters.samples_processed.load(Ordering::Relaxed))
             .sum();
-        assert_eq!(processed, 3 * (rig.instants * 2) as u64);
+        assert_eq!(processed, 12 * (rig.instants * 2) as u64);
+        let spectra: u64 = rig
+            .shared
+            .iter()
+            .map(|c| c.counters.spectra.load(Ordering::Relaxed))
+            .sum();
+        assert_eq!(spectra, 2 * 2);
     }
 
     #[test]

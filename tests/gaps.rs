@@ -74,7 +74,8 @@ fn stream(gap: bool) -> Vec<u8> {
 }
 
 fn run(gap: bool) -> Vec<ReplayLine> {
-    let file = std::env::temp_dir().join(format!("bandwatch-gap-{}-{gap}.bwf1", std::process::id()));
+    let file =
+        std::env::temp_dir().join(format!("bandwatch-gap-{}-{gap}.bwf1", std::process::id()));
     std::fs::write(&file, stream(gap)).expect("write");
     let mut out = Vec::new();
     replay(&config(), &file, None, &mut out).expect("replay");
@@ -95,8 +96,15 @@ fn no_spectrum_spans_a_missing_frame() {
     for l in &lines {
         let tone = l.bands[0].1;
         let far = l.bands[1].1;
-        assert!((tone - std::f64::consts::FRAC_1_SQRT_2).abs() < 1e-3, "tone {tone}");
-        assert!(far < 1e-4 * tone, "block at {}: far band {far} vs tone {tone}", l.first_sample);
+        assert!(
+            (tone - std::f64::consts::FRAC_1_SQRT_2).abs() < 1e-3,
+            "tone {tone}"
+        );
+        assert!(
+            far < 1e-4 * tone,
+            "block at {}: far band {far} vs tone {tone}",
+            l.first_sample
+        );
     }
 }
 

@@ -145,7 +145,11 @@ impl SpectrumEngine {
         }
         input[self.block..].fill(0.0);
         // The lengths come from the plan itself, so this cannot fail.
-        if self.fft.process_with_scratch(input, output, scratch).is_err() {
+        if self
+            .fft
+            .process_with_scratch(input, output, scratch)
+            .is_err()
+        {
             out.fill(f32::NAN);
             return;
         }
