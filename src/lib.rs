@@ -18,12 +18,13 @@
 //! - [`alarm`]: alarm state machines, channel health, baselines, zones,
 //!   event journal, captures, the operator token
 //! - [`snapshot`]: what workers publish and HTTP reads
-//! - [`alarm`]: limits, health, baselines, zones, journal, captures
 //! - [`http`]: router, JSON API, Prometheus exposition
 //! - [`selftest`]: published check values measured through the real code
 //!   paths (`bandwatch selftest`)
+//! - [`bench`]: `bandwatch bench`, side-by-side stage throughput, memory, latency
 
 pub mod alarm;
+pub mod bench;
 pub mod config;
 pub mod counters;
 pub mod dsp;

@@ -106,6 +106,8 @@ enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Measure stage throughput, ingest, HTTP latency and memory side by side.
+    Bench(bandwatch::bench::BenchArgs),
 }
 
 fn main() -> ExitCode {
@@ -129,6 +131,13 @@ fn main() -> ExitCode {
                 ExitCode::FAILURE
             }
         }
+        Command::Bench(args) => match bandwatch::bench::run(&args) {
+            Ok(()) => ExitCode::SUCCESS,
+            Err(e) => {
+                eprintln!("bench: {e}");
+                ExitCode::FAILURE
+            }
+        },
         Command::Check { config } => match bandwatch::config::load(&config) {
             Ok(c) => {
                 println!(

@@ -15,8 +15,16 @@
 //! the density (per Hz) is P[k] / (ENBW·fs/block). See `bands`.
 //!
 //! The plan is made once; `compute` reuses its buffers and allocates nothing.
+//! Plans and windows are shared by every engine of the same length and
+//! window kind (read-only after they are made), so a thousand channels keep
+//! one set of twiddle factors and coefficients in cache, not a thousand.
+//! The FFT's input, output and scratch buffers live only during `compute`,
+//! so they belong to the thread, not the channel: a worker's channels take
+//! turns on one hot set instead of each dragging its own through the cache.
 
-use std::sync::Arc;
+use std::cell::RefCell;
+use std::collections::HashMap;
+use std::sync::{Arc, Mutex, OnceLock};
 
 use realfft::num_complex::Complex;
 use realfft::{RealFftPlanner, RealToComplex};
@@ -24,15 +32,50 @@ use realfft::{RealFftPlanner, RealToComplex};
 use crate::config::Detrend;
 use crate::dsp::window::{Window, WindowKind};
 
-pub struct SpectrumEngine {
-    fft: Arc<dyn RealToComplex<f32>>,
-    window: Window,
-    block: usize,
-    nfft: usize,
-    detrend: Detrend,
+/// Forward plans by length, made once per process.
+fn plan(nfft: usize) -> Arc<dyn RealToComplex<f32>> {
+    static PLANNER: OnceLock<Mutex<RealFftPlanner<f32>>> = OnceLock::new();
+    let planner = PLANNER.get_or_init(|| Mutex::new(RealFftPlanner::new()));
+    match planner.lock() {
+        Ok(mut p) => p.plan_fft_forward(nfft),
+        // A panic elsewhere while planning: plan privately rather than fail.
+        Err(_) => RealFftPlanner::<f32>::new().plan_fft_forward(nfft),
+    }
+}
+
+/// Windows by kind and length, made once per process.
+fn shared_window(kind: WindowKind, n: usize) -> Arc<Window> {
+    type Cache = Mutex<HashMap<(WindowKind, usize), Arc<Window>>>;
+    static WINDOWS: OnceLock<Cache> = OnceLock::new();
+    let cache = WINDOWS.get_or_init(|| Mutex::new(HashMap::new()));
+    match cache.lock() {
+        Ok(mut c) => c
+            .entry((kind, n))
+            .or_insert_with(|| Arc::new(Window::new(kind, n)))
+            .clone(),
+        Err(_) => Arc::new(Window::new(kind, n)),
+    }
+}
+
+/// The FFT's temporaries, one set per thread, sized for the last plan used
+/// (resizing to a length already held does not allocate).
+#[derive(Default)]
+struct Temps {
     input: Vec<f32>,
     output: Vec<Complex<f32>>,
     scratch: Vec<Complex<f32>>,
+}
+
+thread_local! {
+    static TEMPS: RefCell<Temps> = RefCell::new(Temps::default());
+}
+
+pub struct SpectrumEngine {
+    fft: Arc<dyn RealToComplex<f32>>,
+    window: Arc<Window>,
+    block: usize,
+    nfft: usize,
+    detrend: Detrend,
     /// 1/(Σw)², the amplitude correction applied to |X|².
     norm: f32,
 }
@@ -42,13 +85,10 @@ impl SpectrumEngine {
     /// If `nfft < block` or `block == 0`; the config validation rules both out.
     pub fn new(kind: WindowKind, block: usize, nfft: usize, detrend: Detrend) -> SpectrumEngine {
         assert!(block > 0 && nfft >= block, "block {block}, nfft {nfft}");
-        let fft = RealFftPlanner::<f32>::new().plan_fft_forward(nfft);
-        let window = Window::new(kind, block);
+        let fft = plan(nfft);
+        let window = shared_window(kind, block);
         let norm = (1.0 / (window.sum * window.sum)) as f32;
         SpectrumEngine {
-            input: fft.make_input_vec(),
-            output: fft.make_output_vec(),
-            scratch: fft.make_scratch_vec(),
             fft,
             window,
             block,
@@ -80,28 +120,50 @@ impl SpectrumEngine {
     pub fn compute(&mut self, block: &[f32], out: &mut [f32]) {
         assert_eq!(block.len(), self.block);
         assert_eq!(out.len(), self.bins());
+        TEMPS.with(|t| match t.try_borrow_mut() {
+            Ok(mut t) => self.compute_with(block, out, &mut t),
+            // Only re-entry could hold the borrow; use private buffers then.
+            Err(_) => self.compute_with(block, out, &mut Temps::default()),
+        });
+    }
+
+    fn compute_with(&self, block: &[f32], out: &mut [f32], t: &mut Temps) {
+        let Temps {
+            input,
+            output,
+            scratch,
+        } = t;
+        input.resize(self.nfft, 0.0);
+        output.resize(self.bins(), Complex::default());
+        scratch.resize(self.fft.get_scratch_len(), Complex::default());
         let mean = match self.detrend {
             Detrend::None => 0.0,
             Detrend::Mean => crate::dsp::stats::mean(block) as f32,
         };
-        for ((dst, &x), &w) in self.input.iter_mut().zip(block).zip(&self.window.coeffs) {
+        for ((dst, &x), &w) in input.iter_mut().zip(block).zip(&self.window.coeffs) {
             *dst = (x - mean) * w;
         }
-        self.input[self.block..].fill(0.0);
+        input[self.block..].fill(0.0);
         // The lengths come from the plan itself, so this cannot fail.
         if self
             .fft
-            .process_with_scratch(&mut self.input, &mut self.output, &mut self.scratch)
+            .process_with_scratch(input, output, scratch)
             .is_err()
         {
             out.fill(f32::NAN);
             return;
         }
-        let last = out.len() - 1;
+        // Every line doubled in one branch-free (vectorisable) pass, then
+        // DC and Nyquist put back: the same products as doubling all but
+        // those two.
         let norm = self.norm;
-        for (k, (o, x)) in out.iter_mut().zip(&self.output).enumerate() {
-            let p = (x.re * x.re + x.im * x.im) * norm;
-            *o = if k == 0 || k == last { p } else { 2.0 * p };
+        for (o, x) in out.iter_mut().zip(output.iter()) {
+            *o = 2.0 * ((x.re * x.re + x.im * x.im) * norm);
+        }
+        let last = out.len() - 1;
+        for k in [0, last] {
+            let x = output[k];
+            out[k] = (x.re * x.re + x.im * x.im) * norm;
         }
     }
 }
