@@ -290,6 +290,10 @@ async fn tcp_listen(
     }
 }
 
+/// Receive buffer asked of the kernel for a UDP source (it may grant less,
+/// capped by net.core.rmem_max).
+const UDP_RECV_BUFFER: usize = 8 << 20;
+
 /// A UDP source counts as connected while datagrams arrive at least this often.
 const UDP_STALE: Duration = Duration::from_secs(5);
 
@@ -310,7 +314,15 @@ async fn udp(
             }
         }
     };
-    tracing::info!(source = %sink.state.name, addr = %socket.local_addr().map_or(listen, |a| a), "receiving BWF1 datagrams");
+    // A larger kernel buffer rides out bursts while the runtime is busy
+    // (the default ~200 KiB holds only a few large datagrams); what the
+    // kernel still drops shows as gaps in the sequence.
+    let sock = socket2::SockRef::from(&socket);
+    if let Err(e) = sock.set_recv_buffer_size(UDP_RECV_BUFFER) {
+        tracing::warn!(source = %sink.state.name, error = %e, "cannot enlarge the UDP receive buffer");
+    }
+    let got = sock.recv_buffer_size().unwrap_or(0);
+    tracing::info!(source = %sink.state.name, addr = %socket.local_addr().map_or(listen, |a| a), recv_buffer_bytes = got, "receiving BWF1 datagrams");
     // One byte more than the largest datagram accepted: a datagram that
     // fills it was longer than allowed, and the kernel truncated it.
     let mut buf = vec![0u8; max_datagram + 1];
