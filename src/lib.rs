@@ -19,6 +19,7 @@
 //!   event journal, captures, the operator token
 //! - [`snapshot`]: what workers publish and HTTP reads
 //! - [`http`]: router, JSON API, Prometheus exposition
+//! - [`noise`]: the fixed-seed generator of the simulator and the self-test
 //! - [`selftest`]: published check values measured through the real code
 //!   paths (`bandwatch selftest`)
 //! - [`bench`]: `bandwatch bench`, side-by-side stage throughput, memory, latency
@@ -30,6 +31,7 @@ pub mod counters;
 pub mod dsp;
 pub mod frame;
 pub mod http;
+pub mod noise;
 pub mod ring;
 pub mod selftest;
 pub mod snapshot;

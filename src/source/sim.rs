@@ -49,28 +49,7 @@ pub const GROWTH_SECONDS: f64 = 180.0;
 
 const G_PER_MM_S_AT: fn(f64) -> f64 = |f| 2.0 * PI * f * 1e-3 / crate::units::STANDARD_GRAVITY;
 
-/// SplitMix64: small, fast, good enough for test noise, and reproducible.
-#[derive(Debug, Clone)]
-struct Rng(u64);
-
-impl Rng {
-    fn next_u64(&mut self) -> u64 {
-        self.0 = self.0.wrapping_add(0x9E37_79B9_7F4A_7C15);
-        let mut z = self.0;
-        z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-        z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-        z ^ (z >> 31)
-    }
-    /// Uniform in (0, 1].
-    fn uniform(&mut self) -> f64 {
-        ((self.next_u64() >> 11) as f64 + 1.0) / (1u64 << 53) as f64
-    }
-    /// Standard normal (Box–Muller).
-    fn normal(&mut self) -> f64 {
-        let (u1, u2) = (self.uniform(), self.uniform());
-        (-2.0 * u1.ln()).sqrt() * (2.0 * PI * u2).cos()
-    }
-}
+use crate::noise::SplitMix64 as Rng;
 
 /// A sinusoid with its own phase accumulator (cycles, wrapped to [0, 1)).
 #[derive(Debug, Clone)]
