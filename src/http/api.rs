@@ -19,7 +19,7 @@ use crate::dsp::bands::BandStatus;
 use crate::http::error::ApiError;
 use crate::http::scaling::{line_range, Conversion, Scaling};
 use crate::http::HttpState;
-use crate::snapshot::{unix_now_ns, AppState, ChannelShared, ChannelSnapshot};
+use crate::snapshot::{unix_now_ns, AppState, ChannelShared, ChannelSnapshot, SourceShared};
 use crate::units::{convertible, Unit};
 
 /// Shortest time after which a channel counts as stale, whatever its rate.
@@ -189,6 +189,10 @@ struct SourceInfo<'a> {
     kind: &'a str,
     /// `connected` or `disconnected`.
     state: &'static str,
+    /// Seconds since the last good frame (null: none yet).
+    last_frame_age_seconds: Option<f64>,
+    /// The source's counters (as in `/metrics`).
+    counters: Value,
 }
 
 #[derive(Serialize)]
@@ -275,6 +279,24 @@ fn summary<'a>(
             } else {
                 "disconnected"
             },
+            last_frame_age_seconds: source
+                .map(|s| SourceShared::get(&s.last_frame_unix_ns))
+                .filter(|&t| t != 0)
+                .map(|t| now_ns.saturating_sub(t) as f64 * 1e-9),
+            counters: source.map_or(Value::Null, |s| {
+                let g = SourceShared::get;
+                json!({
+                    "connections": g(&s.connections),
+                    "frames": g(&s.frames),
+                    "bytes": g(&s.bytes),
+                    "crc_errors": g(&s.crc_errors),
+                    "resyncs": g(&s.resyncs),
+                    "skipped_bytes": g(&s.bytes_skipped),
+                    "missing_samples": g(&s.samples_missing),
+                    "late_frames": g(&s.frames_late),
+                    "rejected": s.rejected().into_iter().collect::<std::collections::BTreeMap<_, _>>(),
+                })
+            }),
         },
         machine: spec.machine.as_deref().map(|m| MachineInfo {
             name: m,
