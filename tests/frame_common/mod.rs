@@ -1,27 +1,13 @@
 //! Shared helpers for the `frame_*` tests: a deterministic sample generator
 //! for the P2 demo channels, an independent bitwise CRC-32, byte patching.
-#![allow(dead_code, clippy::unwrap_used)] // each test file uses a subset; tests may unwrap
+#![allow(dead_code, unused_imports, clippy::unwrap_used)] // each test file uses a subset; tests may unwrap
 
 use bandwatch::frame::bwf1::{self, Header};
 use bandwatch::frame::{SampleFormat, SampleSlice, I24_MAX, I24_MIN};
 
-/// CRC-32/IEEE computed bit by bit, written from the algorithm's parameters
-/// (reflected polynomial 0xEDB88320, init 0xFFFFFFFF, final XOR 0xFFFFFFFF;
-/// common practice), independent of crc32fast.
-pub fn crc32_bitwise(bytes: &[u8]) -> u32 {
-    let mut crc = 0xFFFF_FFFFu32;
-    for &b in bytes {
-        crc ^= u32::from(b);
-        for _ in 0..8 {
-            crc = if crc & 1 != 0 {
-                (crc >> 1) ^ 0xEDB8_8320
-            } else {
-                crc >> 1
-            };
-        }
-    }
-    !crc
-}
+/// CRC-32/IEEE computed bit by bit from the algorithm's parameters
+/// (common practice), independent of crc32fast; shared with `selftest`.
+pub use bandwatch::selftest::crc32_bitwise;
 
 /// Rewrites a frame's trailing CRC after its bytes were patched, so that a
 /// test reaches the header check it means to reach.
