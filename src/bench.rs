@@ -218,32 +218,47 @@ pub fn rss_bytes() -> u64 {
 /// Config text for `channels` channels of one source, with the demo's
 /// motor-de bands (velocity bands integrate, one band stays in g).
 fn config_text(channels: usize, n: usize, fs: f64, source: &str, averages: u32) -> String {
+    // The journal of the running pipeline (ingest phase) goes to a scratch
+    // directory; the rigs driven by hand write nothing.
+    let storage = std::env::temp_dir()
+        .join(format!("bandwatch-bench-{}", std::process::id()))
+        .display()
+        .to_string();
     let mut t = format!(
-        "[server]\nlisten = \"127.0.0.1:0\"\n[dsp]\nworkers = 2\n\n[[source]]\nname = \"bench\"\n{source}\nchannels = {channels}\nsample_rate_hz = {fs:?}\n"
+        "[server]\nlisten = \"127.0.0.1:0\"\n[dsp]\nworkers = 2\n[alarms]\nstorage_dir = {storage:?}\n\n[[source]]\nname = \"bench\"\n{source}\nchannels = {channels}\nsample_rate_hz = {fs:?}\n"
     );
     // Bands scale with the sample rate so that, at any rate, they hold the
     // same lines (the ingest phase raises the rate instead of the channels).
     let k = fs / FS;
-    let band = |name: &str, lo: f64, hi: f64, unit: &str, measure: &str| {
+    let band = |name: &str, lo: f64, hi: f64, unit: &str, measure: &str, alarm: &str| {
         format!(
-            "[[channel.band]]\nname = \"{name}\"\nlo_hz = {:?}\nhi_hz = {:?}\nunit = \"{unit}\"\nmeasure = \"{measure}\"\n",
+            "[[channel.band]]\nname = \"{name}\"\nlo_hz = {:?}\nhi_hz = {:?}\nunit = \"{unit}\"\nmeasure = \"{measure}\"\n{alarm}",
             lo * k,
             hi * k
         )
     };
+    // Alarms as the demo sets them: a zone preset on the overall velocity,
+    // fixed limits on the high-frequency acceleration (set well above the
+    // test signal, so they are evaluated on every spectrum and never trip).
+    let zone = "alarm = { zone = { group = 2, support = \"rigid\" }, hysteresis = 0.1, on_delay_s = 3.0 }\n";
+    let limits =
+        "alarm = { alert = { limit = 5.0 }, danger = { limit = 10.0 }, on_delay_s = 2.0 }\n";
     let bands = [
-        band("overall-velocity", 10.0, 1000.0, "mm/s", "rms"),
-        band("1x", 21.0, 28.5, "mm/s", "rms"),
-        band("2x", 45.0, 54.0, "mm/s", "rms"),
-        band("acceleration-hf", 1000.0, 10000.0, "g", "rms"),
-        band("1x-peak", 21.0, 28.5, "g", "peak"),
+        band("overall-velocity", 10.0, 1000.0, "mm/s", "rms", zone),
+        band("1x", 21.0, 28.5, "mm/s", "rms", ""),
+        band("2x", 45.0, 54.0, "mm/s", "rms", ""),
+        band("acceleration-hf", 1000.0, 10000.0, "g", "rms", limits),
+        band("1x-peak", 21.0, 28.5, "g", "peak", ""),
     ]
     .concat();
+    // The demo's sensor checks (flatline, clipping) and overall alarm.
+    let checks = "health = { flatline = { std_below = 0.0001, for_s = 2.0 }, clipping = { full_scale = 50.0 } }\n\
+                  overall_alarm = { rms = { alert = { limit = 5.0 }, danger = { limit = 10.0 }, on_delay_s = 2.0 } }\n";
     for c in 0..channels {
         t.push_str(&format!(
             "\n[[channel]]\nname = \"ch{c:04}\"\nsource = \"bench\"\nindex = {c}\nunit = \"g\"\n\
              scale = {G_PER_COUNT:?}\nblock = {n}\nwindow = \"hann\"\noverlap = {OVERLAP:?}\n\
-             averaging = {{ mode = \"linear\", count = {averages} }}\nintegration_low_cut_hz = 5.0\n{bands}"
+             averaging = {{ mode = \"linear\", count = {averages} }}\nintegration_low_cut_hz = 5.0\n{checks}{bands}"
         ));
     }
     t
@@ -287,6 +302,25 @@ fn signal_offset(c: usize, pos: u64, len: usize, chunk: usize) -> usize {
 fn ring_capacity(config: &Config, spec: &ChannelSpec) -> usize {
     let capacity = (config.ring_seconds * spec.sample_rate_hz).ceil() as usize;
     capacity.max(2 * spec.block)
+}
+
+/// A channel's DSP with its alarms (sensor checks, band and overall
+/// limits), as the daemon runs it; no journal or captures (no disk I/O).
+fn dsp_with_alarms(ch: &Arc<ChannelShared>, reader: crate::ring::RingReader) -> ChannelDsp {
+    let mut dsp = ChannelDsp::new(ch.clone(), reader);
+    dsp.set_gather(true);
+    let inbox = ch.alarm_inbox.lock().ok().and_then(|mut g| g.take());
+    if let Some(inbox) = inbox {
+        dsp.set_alarms(crate::alarm::engine::ChannelAlarms::new(
+            &ch.spec,
+            &|_| None,
+            &|_| None,
+            None,
+            None,
+            inbox,
+        ));
+    }
+    dsp
 }
 
 /// Polls every channel until none has work left.
@@ -416,13 +450,27 @@ pub struct DspRig {
 }
 
 impl DspRig {
-    fn new(config: &Config, shared: Vec<Arc<ChannelShared>>, signal: Arc<Vec<f32>>) -> DspRig {
+    /// Channels of `shared`, with their alarms (as the daemon runs them)
+    /// or without (the spectrum step alone: window, FFT, power, average,
+    /// bands, overall levels, publish).
+    fn new(
+        config: &Config,
+        shared: Vec<Arc<ChannelShared>>,
+        signal: Arc<Vec<f32>>,
+        alarms: bool,
+    ) -> DspRig {
         let mut dsps = Vec::new();
         let mut writers = Vec::new();
         for ch in &shared {
             let cap = ring_capacity(config, &ch.spec);
             let (w, r) = channel_ring(cap, ch.spec.sample_rate_hz, ch.counters.clone());
-            dsps.push(ChannelDsp::new(ch.clone(), r));
+            dsps.push(if alarms {
+                dsp_with_alarms(ch, r)
+            } else {
+                let mut d = ChannelDsp::new(ch.clone(), r);
+                d.set_gather(true);
+                d
+            });
             writers.push(w);
         }
         let spec = &shared[0].spec;
@@ -438,13 +486,13 @@ impl DspRig {
         }
     }
 
-    fn for_channels(config: &Config, signal: Arc<Vec<f32>>) -> DspRig {
+    fn for_channels(config: &Config, signal: Arc<Vec<f32>>, alarms: bool) -> DspRig {
         let shared = config
             .channels
             .iter()
             .map(|c| Arc::new(ChannelShared::new(c.clone())))
             .collect();
-        DspRig::new(config, shared, signal)
+        DspRig::new(config, shared, signal, alarms)
     }
 
     fn write_round(&mut self) {
@@ -601,7 +649,7 @@ impl PathRig {
         for ch in &shared {
             let cap = ring_capacity(config, &ch.spec);
             let (w, r) = channel_ring(cap, ch.spec.sample_rate_hz, ch.counters.clone());
-            dsps.push(ChannelDsp::new(ch.clone(), r));
+            dsps.push(dsp_with_alarms(ch, r));
             outputs.attach(
                 ch.spec.index,
                 ChannelInput {
@@ -698,7 +746,7 @@ pub fn memory_probe(n: usize, channels: usize) -> Result<MemoryProbe, BenchError
     let config = bench_config(channels.max(1), n, FS, UNUSED_SOURCE)?;
     let signal = Arc::new(test_signal(4 * FS as usize, FS));
     let rss_before = rss_bytes();
-    let mut rig = DspRig::for_channels(&config, signal);
+    let mut rig = DspRig::for_channels(&config, signal, true);
     let cap = ring_capacity(&config, &config.channels[0]);
     let rounds = cap.div_ceil(rig.chunk) + 3;
     for _ in 0..rounds {
@@ -1161,7 +1209,7 @@ fn http_round(
     let done = Arc::new(AtomicU64::new(0));
     let mut rigs: Vec<DspRig> = sets
         .into_iter()
-        .map(|s| DspRig::new(&config, s, signal.clone()))
+        .map(|s| DspRig::new(&config, s, signal.clone(), true))
         .collect();
     // Publish once so that every spectrum route has data.
     for r in &mut rigs {
@@ -1419,7 +1467,7 @@ fn wants(args: &BenchArgs, phase: &str) -> bool {
 /// Bad options, a socket or file that cannot be opened, or a rig that
 /// lost data (which would make its numbers meaningless).
 pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
-    if args.n < 16 || args.n % 4 != 0 {
+    if args.n < 16 || !args.n.is_multiple_of(4) {
         return Err(BenchError::Usage(format!(
             "--n {} must be at least 16 and a multiple of 4",
             args.n
@@ -1463,6 +1511,7 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
         let mut f64_rate = Vec::new();
         // Per row: (rate, the FFT rate measured beside it) per repeat.
         let mut dsp: Vec<Vec<(f64, f64)>> = vec![Vec::new(); args.channels.len()];
+        let mut dsp_alarms: Vec<Vec<(f64, f64)>> = vec![Vec::new(); args.channels.len()];
         let mut path: Vec<Vec<Vec<(f64, f64)>>> =
             vec![vec![Vec::new(); formats.len()]; args.channels.len()];
         let mut dsp_rigs = Vec::new();
@@ -1470,7 +1519,10 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
         for &c in &args.channels {
             let config = bench_config(c, n, FS, UNUSED_SOURCE)?;
             if wants(args, "dsp") {
-                dsp_rigs.push(DspRig::for_channels(&config, signal.clone()));
+                dsp_rigs.push((
+                    DspRig::for_channels(&config, signal.clone(), false),
+                    DspRig::for_channels(&config, signal.clone(), true),
+                ));
             }
             if wants(args, "path") {
                 path_rigs.push(
@@ -1489,8 +1541,9 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
                 f32_rate.push(fft32.rate(min) * hop as f64);
                 f64_rate.push(fft64.rate(min) * hop as f64);
             }
-            for (i, rig) in dsp_rigs.iter_mut().enumerate() {
-                dsp[i].push(rig.rate(&mut fft32, min)?);
+            for (i, (plain, alarmed)) in dsp_rigs.iter_mut().enumerate() {
+                dsp[i].push(plain.rate(&mut fft32, min)?);
+                dsp_alarms[i].push(alarmed.rate(&mut fft32, min)?);
             }
             for (i, rigs) in path_rigs.iter_mut().enumerate() {
                 for (j, rig) in rigs.iter_mut().enumerate() {
@@ -1533,6 +1586,16 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
                     target: (c == 64).then(|| ">= 0.70 x fft".into()),
                 });
             }
+            for (i, &c) in args.channels.iter().enumerate() {
+                rows.push(Row {
+                    phase: "dsp".into(),
+                    case: format!("{c} ch + alarms"),
+                    unit: "samples/s/core".into(),
+                    value: Summary::of(&rates(&dsp_alarms[i])),
+                    ratio: ratio(&dsp_alarms[i]),
+                    target: None,
+                });
+            }
         }
         if wants(args, "path") {
             for (i, &c) in args.channels.iter().enumerate() {
@@ -1550,12 +1613,12 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
         }
         // What the 4096-channel target needs, from the measured DSP rate.
         if let Some(i) = args.channels.iter().position(|&c| c == 1024) {
-            if !dsp.is_empty() && !dsp[i].is_empty() {
+            if !dsp_alarms.is_empty() && !dsp_alarms[i].is_empty() {
                 let need = 4096.0 * FS;
-                let cores: Vec<f64> = dsp[i].iter().map(|r| need / r.0).collect();
+                let cores: Vec<f64> = dsp_alarms[i].iter().map(|r| need / r.0).collect();
                 rows.push(Row {
                     phase: "dsp".into(),
-                    case: "4096 ch x 25.6 kHz".into(),
+                    case: "4096 ch x 25.6 kHz + alarms".into(),
                     unit: "cores needed".into(),
                     value: Summary::of(&cores),
                     ratio: None,

@@ -108,6 +108,7 @@ impl Pipeline {
             let capacity = capacity.max(2 * spec.block);
             let (w, r) = channel_ring(capacity, spec.sample_rate_hz, ch.counters.clone());
             let mut dsp = ChannelDsp::with_machines(ch.clone(), r, &state.machines);
+            dsp.set_gather(true);
             let inbox = ch.alarm_inbox.lock().ok().and_then(|mut g| g.take());
             if let Some(inbox) = inbox {
                 let name = spec.name.clone();

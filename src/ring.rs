@@ -231,6 +231,11 @@ impl RingReader {
     pub fn occupied(&self) -> usize {
         self.cons.occupied_len()
     }
+
+    /// Samples the ring can hold.
+    pub fn capacity(&self) -> usize {
+        self.cons.capacity().get()
+    }
 }
 
 #[cfg(test)]

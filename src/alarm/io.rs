@@ -124,7 +124,7 @@ impl Outbox {
                 let n = self.shared.dropped[kind].fetch_add(1, Ordering::Relaxed) + 1;
                 // Log the first and then every 100th, so a storm is visible
                 // without flooding the log.
-                if n == 1 || n % 100 == 0 {
+                if n == 1 || n.is_multiple_of(100) {
                     tracing::error!(kind, dropped = n, "alarm I/O queue full: record dropped");
                 }
                 false

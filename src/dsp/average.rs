@@ -8,7 +8,43 @@
 //! - `peak-hold`: the largest value per line over `count` blocks.
 //! - `none`: every block as it is.
 
+use realfft::num_complex::Complex;
+
 use crate::config::AveragingMode;
+use crate::dsp::simd::vectorized;
+use crate::dsp::spectrum::fold_power;
+
+/// A power spectrum to average, stored or still as FFT lines.
+trait Spectrum {
+    /// Sets every `acc[k]` to `op(acc[k], P[k])`.
+    fn fold(&self, acc: &mut [f32], op: impl Fn(f32, f32) -> f32 + Copy);
+}
+
+struct Stored<'a>(&'a [f32]);
+
+impl Spectrum for Stored<'_> {
+    #[inline]
+    fn fold(&self, acc: &mut [f32], op: impl Fn(f32, f32) -> f32 + Copy) {
+        let p = self.0;
+        vectorized(
+            #[inline(always)]
+            move || {
+                for (a, &v) in acc.iter_mut().zip(p) {
+                    *a = op(*a, v);
+                }
+            },
+        );
+    }
+}
+
+struct Lines<'a>(&'a [Complex<f32>], f32);
+
+impl Spectrum for Lines<'_> {
+    #[inline]
+    fn fold(&self, acc: &mut [f32], op: impl Fn(f32, f32) -> f32 + Copy) {
+        fold_power(self.0, self.1, acc, op);
+    }
+}
 
 pub struct Averager {
     mode: AveragingMode,
@@ -37,27 +73,44 @@ impl Averager {
         self.acc.fill(0.0);
     }
 
-    /// Adds one spectrum; returns true when a new result is ready.
+    /// Adds one power spectrum; returns true when a new result is ready.
     pub fn push(&mut self, p: &[f32]) -> bool {
+        self.push_with(Stored(p))
+    }
+
+    /// Adds the power spectrum of the FFT lines `x` (see
+    /// [`fold_power`]) without storing it first: the power of each line
+    /// goes straight into the running average.
+    pub fn push_lines(&mut self, x: &[Complex<f32>], norm: f32) -> bool {
+        self.push_with(Lines(x, norm))
+    }
+
+    /// The averaging itself, for a spectrum however it is given.
+    #[inline]
+    fn push_with(&mut self, p: impl Spectrum) -> bool {
         match self.mode {
             AveragingMode::None => {
-                self.result.copy_from_slice(p);
+                p.fold(&mut self.result, |_, v| v);
                 self.result_averages = 1;
                 true
             }
             AveragingMode::Linear => {
-                for (a, &v) in self.acc.iter_mut().zip(p) {
-                    *a += v;
-                }
+                p.fold(&mut self.acc, |a, v| a + v);
                 self.n += 1;
                 if self.n < self.count {
                     return false;
                 }
                 let inv = 1.0 / self.n as f32;
-                for (r, a) in self.result.iter_mut().zip(self.acc.iter_mut()) {
-                    *r = *a * inv;
-                    *a = 0.0;
-                }
+                let (result, acc) = (&mut self.result, &mut self.acc);
+                vectorized(
+                    #[inline(always)]
+                    move || {
+                        for (r, a) in result.iter_mut().zip(acc.iter_mut()) {
+                            *r = *a * inv;
+                            *a = 0.0;
+                        }
+                    },
+                );
                 self.result_averages = self.n;
                 self.n = 0;
                 true
@@ -66,11 +119,9 @@ impl Averager {
                 self.n = (self.n + 1).min(self.count);
                 let alpha = 1.0 / self.n as f32;
                 if self.n == 1 {
-                    self.acc.copy_from_slice(p);
+                    p.fold(&mut self.acc, |_, v| v);
                 } else {
-                    for (a, &v) in self.acc.iter_mut().zip(p) {
-                        *a += alpha * (v - *a);
-                    }
+                    p.fold(&mut self.acc, move |a, v| a + alpha * (v - a));
                 }
                 self.result.copy_from_slice(&self.acc);
                 self.result_averages = self.n;
@@ -78,11 +129,9 @@ impl Averager {
             }
             AveragingMode::PeakHold => {
                 if self.n == 0 {
-                    self.acc.copy_from_slice(p);
+                    p.fold(&mut self.acc, |_, v| v);
                 } else {
-                    for (a, &v) in self.acc.iter_mut().zip(p) {
-                        *a = a.max(v);
-                    }
+                    p.fold(&mut self.acc, |a, v| a.max(v));
                 }
                 self.n += 1;
                 if self.n < self.count {
@@ -92,6 +141,16 @@ impl Averager {
                 self.result_averages = self.n;
                 self.n = 0;
                 true
+            }
+        }
+    }
+
+    /// Blocks still to push before the next result (at least 1).
+    pub fn blocks_to_result(&self) -> u32 {
+        match self.mode {
+            AveragingMode::None | AveragingMode::Exponential => 1,
+            AveragingMode::Linear | AveragingMode::PeakHold => {
+                self.count.saturating_sub(self.n).max(1)
             }
         }
     }

@@ -20,9 +20,11 @@
 //! current speed, has no value: it is reported as out of service, never
 //! clipped to what fits.
 
-use std::sync::Arc;
+use std::collections::HashMap;
+use std::sync::{Arc, Mutex, OnceLock};
 
 use crate::config::{BandEdges, BandSpec, ChannelSpec, Measure};
+use crate::dsp::simd::weighted_sum_max;
 use crate::units::{line_factor, Unit};
 
 /// Why a band has no value.
@@ -84,19 +86,47 @@ pub fn unit_weights(channel: &ChannelSpec, unit: Unit) -> Vec<f32> {
         .collect()
 }
 
-/// Weights shared by the bands of one channel that use the same unit.
+/// Weights shared by every band, of every channel, that converts the same
+/// unit to the same unit on the same lines: one table in cache for a
+/// thousand alike channels, not a thousand. Made once per process (the
+/// configuration fixes them), read-only after.
 #[derive(Default)]
-pub struct WeightCache(Vec<(&'static str, Arc<[f32]>)>);
+pub struct WeightCache;
 
 impl WeightCache {
     pub fn get(&mut self, channel: &ChannelSpec, unit: Unit) -> Arc<[f32]> {
-        if let Some((_, w)) = self.0.iter().find(|(s, _)| *s == unit.symbol) {
-            return w.clone();
+        type Key = (&'static str, &'static str, u64, usize, u64);
+        type Table = Mutex<HashMap<Key, Arc<[f32]>>>;
+        static TABLES: OnceLock<Table> = OnceLock::new();
+        let key = (
+            channel.unit.symbol,
+            unit.symbol,
+            channel.df_hz().to_bits(),
+            channel.bins(),
+            channel.integration_low_cut_hz.to_bits(),
+        );
+        let tables = TABLES.get_or_init(|| Mutex::new(HashMap::new()));
+        match tables.lock() {
+            Ok(mut t) => t
+                .entry(key)
+                .or_insert_with(|| unit_weights(channel, unit).into())
+                .clone(),
+            Err(_) => unit_weights(channel, unit).into(),
         }
-        let w: Arc<[f32]> = unit_weights(channel, unit).into();
-        self.0.push((unit.symbol, w.clone()));
-        w
     }
+}
+
+/// Σ p[k]·w[k], and the first index and value of the largest product
+/// (`simd::weighted_sum_max`, then a search for the first line holding it:
+/// the same product computed the same way gives the same bits).
+fn weighted_sum_and_peak(p: &[f32], w: &[f32]) -> (f64, usize, f32) {
+    let (sum, top) = weighted_sum_max(p, w);
+    let k = p
+        .iter()
+        .zip(w)
+        .position(|(&pv, &wv)| pv * wv == top)
+        .unwrap_or(0);
+    (sum, k, top)
 }
 
 #[derive(Debug, Clone)]
@@ -189,7 +219,7 @@ impl BandPlan {
         }
         let ranges = &mut ranges[..n];
         ranges.sort_unstable();
-        let mut sum = [0f64; 4];
+        let mut sum = 0f64;
         let mut best = (usize::MAX, f32::NEG_INFINITY);
         let mut next = 0usize; // first line not yet counted (windows may overlap)
         let mut any = false;
@@ -200,12 +230,10 @@ impl BandPlan {
                 continue;
             }
             any = true;
-            for (i, k) in (a..=b).enumerate() {
-                let v = power[k] * self.weights[k];
-                sum[i & 3] += v as f64;
-                if v > best.1 {
-                    best = (k, v);
-                }
+            let (s, k, v) = weighted_sum_and_peak(&power[a..=b], &self.weights[a..=b]);
+            sum += s;
+            if v > best.1 {
+                best = (a + k, v);
             }
             next = b + 1;
         }
@@ -219,9 +247,7 @@ impl BandPlan {
             };
         }
         let value = match self.measure {
-            Measure::Rms => (sum.iter().sum::<f64>() * self.inv_noise_bw)
-                .max(0.0)
-                .sqrt(),
+            Measure::Rms => (sum * self.inv_noise_bw).max(0.0).sqrt(),
             Measure::Peak => (2.0 * best.1.max(0.0) as f64).sqrt(),
         };
         BandValue {

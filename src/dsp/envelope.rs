@@ -79,7 +79,7 @@ impl EnvelopeEngine {
         self.full.fill(zero);
         let nyq = self.n / 2;
         for k in self.lo_line..=self.hi_line {
-            let gain = if k == 0 || (k == nyq && self.n % 2 == 0) {
+            let gain = if k == 0 || (k == nyq && self.n.is_multiple_of(2)) {
                 1.0
             } else {
                 2.0

@@ -44,7 +44,7 @@ pub fn band_pass_ranges(block: &[f32], fs: f64, ranges: &[(f64, f64)]) -> Vec<f3
     }
     // realfft's inverse wants the DC and Nyquist lines purely real.
     spec[0].im = 0.0;
-    if n % 2 == 0 {
+    if n.is_multiple_of(2) {
         if let Some(last) = spec.last_mut() {
             last.im = 0.0;
         }

@@ -12,6 +12,7 @@
 //! - `speed`: running speed from a tach pulse train or a tracked peak
 //! - `envelope`: band-pass + analytic signal → envelope (demodulation)
 //! - `filter`: band-limited time signal of a block (for the waveform API)
+//! - `simd`: run-time choice of vector instructions for the hot loops
 //! - `worker`: the OS threads that own channels and run the above
 
 pub mod average;
@@ -19,6 +20,7 @@ pub mod bands;
 pub mod envelope;
 pub mod filter;
 pub mod orders;
+pub mod simd;
 pub mod spectrum;
 pub mod speed;
 pub mod stats;

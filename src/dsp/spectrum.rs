@@ -30,6 +30,7 @@ use realfft::num_complex::Complex;
 use realfft::{RealFftPlanner, RealToComplex};
 
 use crate::config::Detrend;
+use crate::dsp::simd::vectorized;
 use crate::dsp::window::{Window, WindowKind};
 
 /// Forward plans by length, made once per process.
@@ -118,16 +119,53 @@ impl SpectrumEngine {
     /// # Panics
     /// If the slice lengths are wrong (a programming error, not input).
     pub fn compute(&mut self, block: &[f32], out: &mut [f32]) {
-        assert_eq!(block.len(), self.block);
         assert_eq!(out.len(), self.bins());
-        TEMPS.with(|t| match t.try_borrow_mut() {
-            Ok(mut t) => self.compute_with(block, out, &mut t),
-            // Only re-entry could hold the borrow; use private buffers then.
-            Err(_) => self.compute_with(block, out, &mut Temps::default()),
-        });
+        let norm = self.norm;
+        let done = self.transform(block, None, |x| fold_power(x, norm, out, |_, p| p));
+        if !done {
+            out.fill(f32::NAN);
+        }
     }
 
-    fn compute_with(&self, block: &[f32], out: &mut [f32], t: &mut Temps) {
+    /// 1/(Σw)²: [`fold_power`]'s `norm` for the lines of [`transform`](Self::transform).
+    pub fn norm(&self) -> f32 {
+        self.norm
+    }
+
+    /// Windows `block` into the FFT and hands its one-sided spectrum
+    /// X[0..=nfft/2] to `lines`. With detrending on, `mean` is the block's
+    /// mean when the caller already has it (the worker sums samples as they
+    /// arrive); `None` computes it here. Returns false, without calling
+    /// `lines`, only if the FFT refused its buffers (their lengths come from
+    /// the plan itself, so this does not happen).
+    ///
+    /// # Panics
+    /// If `block` has the wrong length (a programming error, not input).
+    pub fn transform(
+        &self,
+        block: &[f32],
+        mean: Option<f64>,
+        lines: impl FnOnce(&[Complex<f32>]),
+    ) -> bool {
+        assert_eq!(block.len(), self.block);
+        let mean = match self.detrend {
+            Detrend::None => 0.0,
+            Detrend::Mean => mean.unwrap_or_else(|| crate::dsp::stats::mean(block)) as f32,
+        };
+        TEMPS.with(|t| match t.try_borrow_mut() {
+            Ok(mut t) => self.transform_with(block, mean, lines, &mut t),
+            // Only re-entry could hold the borrow; use private buffers then.
+            Err(_) => self.transform_with(block, mean, lines, &mut Temps::default()),
+        })
+    }
+
+    fn transform_with(
+        &self,
+        block: &[f32],
+        mean: f32,
+        lines: impl FnOnce(&[Complex<f32>]),
+        t: &mut Temps,
+    ) -> bool {
         let Temps {
             input,
             output,
@@ -136,36 +174,66 @@ impl SpectrumEngine {
         input.resize(self.nfft, 0.0);
         output.resize(self.bins(), Complex::default());
         scratch.resize(self.fft.get_scratch_len(), Complex::default());
-        let mean = match self.detrend {
-            Detrend::None => 0.0,
-            Detrend::Mean => crate::dsp::stats::mean(block) as f32,
-        };
-        for ((dst, &x), &w) in input.iter_mut().zip(block).zip(&self.window.coeffs) {
-            *dst = (x - mean) * w;
-        }
+        // The window fused into the copy out of the block.
+        let coeffs = &self.window.coeffs;
+        vectorized(
+            #[inline(always)]
+            || {
+                for ((dst, &x), &w) in input.iter_mut().zip(block).zip(coeffs) {
+                    *dst = (x - mean) * w;
+                }
+            },
+        );
         input[self.block..].fill(0.0);
-        // The lengths come from the plan itself, so this cannot fail.
         if self
             .fft
             .process_with_scratch(input, output, scratch)
             .is_err()
         {
-            out.fill(f32::NAN);
-            return;
+            return false;
         }
-        // Every line doubled in one branch-free (vectorisable) pass, then
-        // DC and Nyquist put back: the same products as doubling all but
-        // those two.
-        let norm = self.norm;
-        for (o, x) in out.iter_mut().zip(output.iter()) {
-            *o = 2.0 * ((x.re * x.re + x.im * x.im) * norm);
-        }
-        let last = out.len() - 1;
-        for k in [0, last] {
-            let x = output[k];
-            out[k] = (x.re * x.re + x.im * x.im) * norm;
-        }
+        lines(output);
+        true
     }
+}
+
+/// Folds the one-sided power of the lines `x` into `acc`, line by line:
+/// `acc[k] = op(acc[k], P[k])` with P[k] = c_k·|X[k]|²·norm (c_k = 1 at DC
+/// and Nyquist, 2 between). Power is computed where it is used, so no
+/// power spectrum is stored between the FFT and the averager.
+///
+/// # Panics
+/// If `acc` is not as long as `x` (a programming error).
+#[inline]
+pub fn fold_power(
+    x: &[Complex<f32>],
+    norm: f32,
+    acc: &mut [f32],
+    op: impl Fn(f32, f32) -> f32 + Copy,
+) {
+    assert_eq!(x.len(), acc.len());
+    let n = x.len();
+    if n == 0 {
+        return;
+    }
+    let line = move |c: Complex<f32>| (c.re * c.re + c.im * c.im) * norm;
+    acc[0] = op(acc[0], line(x[0]));
+    if n == 1 {
+        return;
+    }
+    // Between DC and Nyquist every line is doubled: one branch-free,
+    // vectorisable pass (values, not references, inside the loop, so that
+    // nothing is reloaded per line).
+    let (mid, xs) = (&mut acc[1..n - 1], &x[1..n - 1]);
+    vectorized(
+        #[inline(always)]
+        move || {
+            for (a, &c) in mid.iter_mut().zip(xs) {
+                *a = op(*a, 2.0 * line(c));
+            }
+        },
+    );
+    acc[n - 1] = op(acc[n - 1], line(x[n - 1]));
 }
 
 #[cfg(test)]

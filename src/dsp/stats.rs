@@ -1,22 +1,37 @@
 //! Time-domain statistics of a block: mean, RMS, peak, peak-to-peak, crest
 //! factor. Sums run in f64 over several independent accumulators so the
-//! compiler can keep them in parallel lanes.
+//! compiler can keep them in parallel lanes (see `simd`).
+
+use crate::dsp::simd::{moments, vectorized};
+
+/// Independent accumulators of the reductions below: enough to fill the
+/// vector lanes of AVX2 (4 × f64) twice over and hide the add latency.
+const LANES: usize = 8;
+
+/// Sum of `x` in f64, over independent accumulators.
+pub fn sum(x: &[f32]) -> f64 {
+    vectorized(
+        #[inline(always)]
+        || {
+            let mut acc = [0f64; LANES];
+            let (chunks, rest) = x.as_chunks::<LANES>();
+            for c in chunks {
+                for (a, &v) in acc.iter_mut().zip(c) {
+                    *a += v as f64;
+                }
+            }
+            let tail: f64 = rest.iter().map(|&v| v as f64).sum();
+            acc.iter().sum::<f64>() + tail
+        },
+    )
+}
 
 /// Mean of `x` (0 for an empty slice).
 pub fn mean(x: &[f32]) -> f64 {
     if x.is_empty() {
         return 0.0;
     }
-    let mut acc = [0f64; 4];
-    let chunks = x.chunks_exact(4);
-    let rest = chunks.remainder();
-    for c in chunks {
-        for (a, &v) in acc.iter_mut().zip(c) {
-            *a += v as f64;
-        }
-    }
-    let tail: f64 = rest.iter().map(|&v| v as f64).sum();
-    (acc.iter().sum::<f64>() + tail) / x.len() as f64
+    sum(x) / x.len() as f64
 }
 
 /// Overall levels of one block, in the channel's units.
@@ -35,33 +50,21 @@ pub struct Overall {
 }
 
 pub fn overall(x: &[f32]) -> Overall {
+    overall_about(x, mean(x))
+}
+
+/// [`overall`] of a block whose mean `m` is already known (one pass).
+pub fn overall_about(x: &[f32], m: f64) -> Overall {
     if x.is_empty() {
         return Overall::default();
     }
-    let m = mean(x);
-    let mut sq = [0f64; 4];
-    let mut lo = [f32::INFINITY; 4];
-    let mut hi = [f32::NEG_INFINITY; 4];
-    let chunks = x.chunks_exact(4);
-    let rest = chunks.remainder();
-    for c in chunks {
-        for i in 0..4 {
-            let v = c[i];
-            let d = v as f64 - m;
-            sq[i] += d * d;
-            lo[i] = lo[i].min(v);
-            hi[i] = hi[i].max(v);
-        }
-    }
-    for &v in rest {
-        let d = v as f64 - m;
-        sq[0] += d * d;
-        lo[0] = lo[0].min(v);
-        hi[0] = hi[0].max(v);
-    }
-    let min = lo.iter().fold(f32::INFINITY, |a, &b| a.min(b)) as f64;
-    let max = hi.iter().fold(f32::NEG_INFINITY, |a, &b| a.max(b)) as f64;
-    let rms = (sq.iter().sum::<f64>() / x.len() as f64).sqrt();
+    // Moments about the mean rounded to f32, then the exact correction
+    // for that rounding: Σ(x−m)² = Σd² − n·d̄², d = x − m₃₂.
+    let mo = moments(x, m as f32);
+    let n = x.len() as f64;
+    let d_mean = mo.sum / n;
+    let rms = (mo.sum2 / n - d_mean * d_mean).max(0.0).sqrt();
+    let (min, max) = (f64::from(mo.min), f64::from(mo.max));
     let peak = (max - m).abs().max((min - m).abs());
     Overall {
         mean: m,

@@ -32,7 +32,6 @@ struct EnvelopeState {
     spectrum: SpectrumEngine,
     averager: Averager,
     signal: Vec<f32>,
-    power: Vec<f32>,
 }
 
 /// A channel whose data measures a machine's speed.
@@ -62,17 +61,23 @@ pub struct ChannelDsp {
     speed_roles: Vec<SpeedRole>,
     frame: Vec<f32>,
     filled: usize,
+    /// Sums (f64) of the frame's samples by hop-long segment, added as
+    /// samples arrive (while they are in cache): the block mean for
+    /// detrending and the overall levels without another pass.
+    segment_sums: Vec<f64>,
     /// Stream index of `frame[0]`.
     frame_first_sample: u64,
     /// Stream index of the next sample read.
     next_sample: u64,
     /// Latest time anchor: (stream index, ns since epoch).
     anchor: (u64, u64),
-    power: Vec<f32>,
     band_values: Vec<BandValue>,
     spare: Option<Arc<ChannelSnapshot>>,
     seq: u64,
     blocks_per_turn: usize,
+    /// Whether to wait for all the samples of the next result (see
+    /// [`ChannelDsp::set_gather`]).
+    gather: bool,
     alarms: Option<Box<ChannelAlarms>>,
 }
 
@@ -90,7 +95,7 @@ impl ChannelDsp {
         let spec = shared.spec.clone();
         let engine = SpectrumEngine::new(spec.window, spec.block, spec.nfft, spec.detrend);
         let nbw = engine.noise_bandwidth_lines();
-        let mut cache = WeightCache::default();
+        let mut cache = WeightCache;
         let bands: Vec<BandPlan> = spec
             .bands
             .iter()
@@ -111,7 +116,6 @@ impl ChannelDsp {
                 ),
                 averager: Averager::new(spec.averaging, spec.average_count, spec.bins()),
                 signal: vec![0.0; spec.block],
-                power: vec![0.0; spec.bins()],
             })
         });
         let df = spec.df_hz();
@@ -155,8 +159,8 @@ impl ChannelDsp {
             speed_roles,
             averager: Averager::new(spec.averaging, spec.average_count, spec.bins()),
             band_values: vec![BandValue::default(); bands.len()],
-            power: vec![0.0; spec.bins()],
             frame: vec![0.0; spec.block],
+            segment_sums: vec![0.0; spec.block.div_ceil(spec.hop.clamp(1, spec.block))],
             bands,
             engine,
             filled: 0,
@@ -166,6 +170,7 @@ impl ChannelDsp {
             spare: None,
             seq: 0,
             blocks_per_turn: MAX_BLOCKS_PER_TURN,
+            gather: false,
             alarms: None,
             reader,
             shared,
@@ -176,6 +181,31 @@ impl ChannelDsp {
     /// 1); `replay` sets 1 so that it sees every published spectrum.
     pub fn set_blocks_per_turn(&mut self, n: usize) {
         self.blocks_per_turn = n.max(1);
+    }
+
+    /// With `gather` on, the channel leaves samples in its ring until the
+    /// ring holds every sample the next averaged result needs, then
+    /// computes that result's blocks back to back (with linear averaging
+    /// of 4, four blocks in one turn instead of one per wake-up). The
+    /// result is the same and is published at the same moment (when its
+    /// last sample has arrived), but the channel's block and average stay
+    /// in cache from one block to the next instead of being fetched from
+    /// memory for every block: with many channels that is most of the cost
+    /// outside the FFT. The daemon's workers and the benchmark run with it
+    /// on; a channel that measures speed (tach, peak) never waits, so the
+    /// speed the other channels use is as fresh as before. Off by default
+    /// (the replay tool and tests feed samples one by one and read at once).
+    pub fn set_gather(&mut self, gather: bool) {
+        self.gather = gather && self.speed_roles.is_empty();
+    }
+
+    /// Samples the ring must hold before the next result can be computed
+    /// in one go (bounded by the blocks one turn may compute and by half
+    /// the ring, so that waiting never fills it).
+    fn samples_for_next_result(&self) -> usize {
+        let blocks = (self.averager.blocks_to_result() as usize).min(self.blocks_per_turn);
+        let need = (self.frame.len() - self.filled) + (blocks - 1) * self.hop();
+        need.min(self.reader.capacity() / 2)
     }
 
     pub fn shared(&self) -> &Arc<ChannelShared> {
@@ -203,6 +233,10 @@ impl ChannelDsp {
     pub fn poll(&mut self) -> bool {
         let mut worked = false;
         let mut blocks = 0;
+        if self.gather && self.reader.occupied() < self.samples_for_next_result() {
+            // Not all there yet; marks wait in the ring with their samples.
+            blocks = self.blocks_per_turn;
+        }
         while blocks < self.blocks_per_turn {
             match self.reader.read(&mut self.frame[self.filled..]) {
                 ReadEvent::Empty => break,
@@ -215,6 +249,7 @@ impl ChannelDsp {
                     if self.filled == 0 {
                         self.frame_first_sample = self.next_sample;
                     }
+                    self.sum_arrived(self.filled, self.filled + n);
                     let ts = self.timestamp_of(self.next_sample);
                     if let Some(a) = &mut self.alarms {
                         let fs = self.shared.spec.sample_rate_hz;
@@ -261,6 +296,7 @@ impl ChannelDsp {
         if let Some(reason) = m.gap {
             // No block may span a gap: start the block over.
             self.filled = 0;
+            self.segment_sums.fill(0.0);
             if let Some(a) = &mut self.alarms {
                 if reason != GapReason::Restart || self.seq > 0 {
                     a.on_gap();
@@ -288,27 +324,60 @@ impl ChannelDsp {
         (t0 as f64 + dt).max(0.0) as u64
     }
 
+    fn hop(&self) -> usize {
+        self.shared.spec.hop.clamp(1, self.frame.len())
+    }
+
+    /// Adds `frame[from..to]` (just arrived) to the segment sums.
+    fn sum_arrived(&mut self, from: usize, to: usize) {
+        let hop = self.hop();
+        let mut a = from;
+        while a < to {
+            let seg = a / hop;
+            let b = ((seg + 1) * hop).min(to);
+            self.segment_sums[seg] += stats::sum(&self.frame[a..b]);
+            a = b;
+        }
+    }
+
+    /// Mean of the full frame.
+    fn frame_mean(&self) -> f64 {
+        self.segment_sums.iter().sum::<f64>() / self.frame.len() as f64
+    }
+
     fn block_ready(&mut self) {
-        self.engine.compute(&self.frame, &mut self.power);
+        let mean = self.frame_mean();
+        let (averager, norm) = (&mut self.averager, self.engine.norm());
+        let mut ready = false;
+        self.engine.transform(&self.frame, Some(mean), |x| {
+            ready = averager.push_lines(x, norm);
+        });
         self.shared.counters.blocks.fetch_add(1, Ordering::Relaxed);
         if let Some(e) = &mut self.envelope {
             e.engine.envelope(&self.frame, &mut e.signal);
-            e.spectrum.compute(&e.signal, &mut e.power);
+            let (averager, norm) = (&mut e.averager, e.spectrum.norm());
             // Same mode and count as the raw averager: both are ready on
             // the same block.
-            e.averager.push(&e.power);
+            e.spectrum.transform(&e.signal, None, |x| {
+                averager.push_lines(x, norm);
+            });
         }
-        if self.averager.push(&self.power) {
-            self.publish();
+        if ready {
+            self.publish(mean);
         }
-        // Slide by one hop; the overlap stays for the next block.
-        let hop = self.shared.spec.hop.min(self.frame.len());
+        // Slide by one hop; the overlap stays for the next block, and so
+        // do the sums of its segments.
+        let hop = self.hop();
         self.frame.copy_within(hop.., 0);
+        self.segment_sums.copy_within(1.., 0);
+        if let Some(last) = self.segment_sums.last_mut() {
+            *last = 0.0;
+        }
         self.filled = self.frame.len() - hop;
         self.frame_first_sample += hop as u64;
     }
 
-    fn publish(&mut self) {
+    fn publish(&mut self, mean: f64) {
         let avg = self.averager.result();
         let df = self.shared.spec.df_hz();
         for role in &self.speed_roles {
@@ -346,7 +415,7 @@ impl ChannelDsp {
         snap.first_sample = self.frame_first_sample;
         snap.timestamp_ns = self.timestamp_of(self.frame_first_sample);
         snap.averages = self.averager.result_averages();
-        snap.overall = stats::overall(&self.frame);
+        snap.overall = stats::overall_about(&self.frame, mean);
         snap.power.clear();
         snap.power.extend_from_slice(avg);
         snap.envelope_power.clear();

@@ -310,7 +310,7 @@ fn summary<'a>(
         envelope_hz: spec.envelope.map(|(a, b)| [a, b]),
         expected_update_interval_seconds: expected_interval_seconds(spec),
         spectrum_age_seconds: age,
-        stale: age.map_or(true, |a| a > stale_after_seconds(spec)),
+        stale: age.is_none_or(|a| a > stale_after_seconds(spec)),
     }
 }
 

@@ -175,7 +175,7 @@ impl FaultPlan {
     }
 
     fn hits(every: u64, n: u64) -> bool {
-        every > 0 && n % every == 0
+        every > 0 && n.is_multiple_of(every)
     }
 
     /// Takes frame n (counted from 1) and returns the chunks to send now.
