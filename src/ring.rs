@@ -95,6 +95,15 @@ impl RingWriter {
     /// sequence gap. NaN and infinite samples are dropped, counted and cut
     /// the segment. Returns the number of samples accepted.
     pub fn write(&mut self, first_sample: u64, timestamp_ns: u64, samples: &[f32]) -> usize {
+        // The common case, every sample finite, is found by one pass that
+        // vectorises (no early exit); only a run that holds a NaN or an
+        // infinity takes the splitting loop below.
+        if samples.is_empty() {
+            return 0;
+        }
+        if all_finite(samples) {
+            return self.write_run(first_sample, timestamp_ns, samples);
+        }
         let mut accepted = 0;
         let mut start = 0;
         while start < samples.len() {
@@ -116,6 +125,27 @@ impl RingWriter {
             start = run_end + 1;
         }
         accepted
+    }
+
+    /// As [`RingWriter::write`] for a run the caller knows to be finite
+    /// (e.g. integer counts scaled by a finite factor whose bound is
+    /// checked, see `SourceOutputs`): no scan. A non-finite sample here is
+    /// a bug in the caller; debug builds check it.
+    pub fn write_finite(&mut self, first_sample: u64, timestamp_ns: u64, samples: &[f32]) -> usize {
+        debug_assert!(
+            all_finite(samples),
+            "write_finite given a non-finite sample"
+        );
+        if samples.is_empty() {
+            return 0;
+        }
+        self.write_run(first_sample, timestamp_ns, samples)
+    }
+
+    /// The time of the sample `samples` after one taken at `timestamp_ns`,
+    /// as [`RingWriter::write`] stamps the parts of a run it splits.
+    pub fn stamp(&self, timestamp_ns: u64, samples: u64) -> u64 {
+        timestamp_ns.saturating_add(self.offset_ns(samples))
     }
 
     fn offset_ns(&self, samples: u64) -> u64 {
@@ -176,6 +206,12 @@ impl RingWriter {
     pub fn vacant(&self) -> usize {
         self.prod.vacant_len()
     }
+}
+
+/// True when no sample is NaN or infinite. Branch-free over the slice (an
+/// `&` fold, not `all`, which stops early and does not vectorise).
+fn all_finite(samples: &[f32]) -> bool {
+    samples.iter().fold(true, |ok, x| ok & x.is_finite())
 }
 
 /// What [`RingReader::read`] found.
