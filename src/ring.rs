@@ -191,9 +191,16 @@ impl RingWriter {
         self.pushed += n as u64;
         self.since_anchor += n as u64;
         self.next_sample = Some(first_sample + run.len() as u64);
-        self.counters
-            .samples_in
-            .fetch_add(n as u64, std::sync::atomic::Ordering::Relaxed);
+        // A plain load and store, not `fetch_add`: this writer is the only
+        // one that changes its channel's `samples_in` (one ring, one writer
+        // per channel), so the count stays exact, and the store does not
+        // wait, as a locked add on x86 does, for the stores of the copy
+        // above to reach the cache.
+        let c = &self.counters.samples_in;
+        c.store(
+            c.load(std::sync::atomic::Ordering::Relaxed) + n as u64,
+            std::sync::atomic::Ordering::Relaxed,
+        );
         if n < run.len() {
             self.counters
                 .add_dropped(GapReason::RingOverflow, (run.len() - n) as u64);
