@@ -16,6 +16,7 @@
 use std::sync::Arc;
 
 use ringbuf::traits::{Consumer, Observer, Producer, Split};
+use ringbuf::wrap::frozen::FrozenProd;
 use ringbuf::{HeapCons, HeapProd, HeapRb};
 
 use crate::counters::{ChannelCounters, GapReason};
@@ -50,7 +51,7 @@ pub fn channel_ring(
     let (mprod, mcons) = HeapRb::<Mark>::new(MARK_CAPACITY).split();
     (
         RingWriter {
-            prod,
+            prod: prod.freeze(),
             marks: mprod,
             pushed: 0,
             next_sample: None,
@@ -69,7 +70,14 @@ pub fn channel_ring(
 
 /// The source's end of the ring.
 pub struct RingWriter {
-    prod: HeapProd<f32>,
+    /// The sample producer, frozen: it works on its own copies of the two
+    /// indices, publishes its write index after every run
+    /// (`commit`) and reads the reader's index (`fetch`, a cache line the
+    /// reader's core owns) only when its stale copy says the run does not
+    /// fit. The stale copy can only under-state the free space (the reader
+    /// only moves forward), so the fetch makes the same accept/drop
+    /// decision a fresh read would.
+    prod: FrozenProd<Arc<HeapRb<f32>>>,
     marks: HeapProd<Mark>,
     pushed: u64,
     /// Stream index the next contiguous sample would have.
@@ -187,7 +195,11 @@ impl RingWriter {
                 self.pending = None;
             }
         }
+        if self.prod.vacant_len() < run.len() {
+            self.prod.fetch();
+        }
         let n = self.prod.push_slice(run);
+        self.prod.commit();
         self.pushed += n as u64;
         self.since_anchor += n as u64;
         self.next_sample = Some(first_sample + run.len() as u64);
@@ -211,6 +223,7 @@ impl RingWriter {
 
     /// Free space in the ring, in samples.
     pub fn vacant(&self) -> usize {
+        self.prod.fetch();
         self.prod.vacant_len()
     }
 }
