@@ -299,3 +299,110 @@ pub(crate) fn note_frame(state: &SourceShared) {
         .last_frame_unix_ns
         .store(unix_now_ns(), Ordering::Relaxed);
 }
+
+#[cfg(test)]
+#[allow(clippy::unwrap_used)] // tests may unwrap: a panic is a failed test
+mod tests {
+    use super::*;
+    use crate::counters::ChannelCounters;
+    use crate::ring::{channel_ring, ReadEvent, RingReader};
+
+    fn outputs(width: usize, attach: &[usize]) -> (SourceOutputs, Vec<(usize, RingReader)>) {
+        let mut out = SourceOutputs::new(width);
+        let mut readers = Vec::new();
+        for &c in attach {
+            let counters = Arc::new(ChannelCounters::default());
+            let (w, r) = channel_ring(1 << 16, 1000.0, counters);
+            out.attach(
+                c,
+                ChannelInput {
+                    writer: w,
+                    scale: 0.5 + c as f64 * 1e-3,
+                    offset: c as f64 - 3.0,
+                    waker: std::thread::current(),
+                },
+            );
+            readers.push((c, r));
+        }
+        (out, readers)
+    }
+
+    fn samples_of(r: &mut RingReader) -> Vec<f32> {
+        let mut buf = vec![0.0; 4096];
+        let mut got = Vec::new();
+        loop {
+            match r.read(&mut buf) {
+                ReadEvent::Samples(n) => got.extend_from_slice(&buf[..n]),
+                ReadEvent::Mark(_) => {}
+                ReadEvent::Empty => return got,
+            }
+        }
+    }
+
+    /// Tiles must not change what each channel receives: a width that is
+    /// not a multiple of the tile, a frame longer than a tile, gaps in the
+    /// attached channels, and wire bytes against the typed slice. The
+    /// expected value is the per-sample formula the source applies.
+    #[test]
+    fn tiles_give_each_channel_its_own_samples() {
+        let (width, instants) = (37, 3 * TILE_INSTANTS + 11);
+        let attach = [0, 5, 16, 17, 36];
+        let raw: Vec<i16> = (0..width * instants)
+            .map(|i| ((i * 7919) % 65536) as i32 as i16)
+            .collect();
+        let bytes: Vec<u8> = raw.iter().flat_map(|x| x.to_le_bytes()).collect();
+        for wire in [false, true] {
+            let (mut out, mut readers) = outputs(width, &attach);
+            if wire {
+                out.write_frame(0, 0, &WireI16(&bytes));
+            } else {
+                out.write_interleaved(0, 0, &raw);
+            }
+            for (c, r) in &mut readers {
+                let (s, o) = (0.5 + *c as f64 * 1e-3, *c as f64 - 3.0);
+                let want: Vec<f32> = (0..instants)
+                    .map(|t| (f64::from(raw[t * width + *c]) * s + o) as f32)
+                    .collect();
+                let got = samples_of(r);
+                assert_eq!(got.len(), instants, "channel {c}");
+                assert!(
+                    got.iter()
+                        .zip(&want)
+                        .all(|(a, b)| a.to_bits() == b.to_bits()),
+                    "channel {c} (wire {wire})"
+                );
+            }
+        }
+    }
+
+    #[test]
+    fn a_nan_in_a_float_tile_is_still_dropped_and_counted() {
+        let counters = Arc::new(ChannelCounters::default());
+        let (w, mut r) = channel_ring(4096, 1000.0, counters.clone());
+        let mut out = SourceOutputs::new(2);
+        out.attach(
+            1,
+            ChannelInput {
+                writer: w,
+                scale: 1.0,
+                offset: 0.0,
+                waker: std::thread::current(),
+            },
+        );
+        let mut raw = vec![1.0f32; 2 * 300];
+        raw[2 * 280 + 1] = f32::NAN;
+        raw[2 * 10] = f32::NAN; // channel 0: not attached, not counted here
+        out.write_interleaved(0, 0, &raw);
+        assert_eq!(samples_of(&mut r).len(), 299);
+        assert_eq!(counters.dropped(GapReason::NonFinite), 1);
+    }
+
+    #[test]
+    fn finiteness_bound() {
+        // i24 counts at 6e-6 g/count: finite. A scale that takes a count
+        // past f32::MAX (about 3.4e38) must keep the check.
+        assert!(scaled_is_finite(8_388_608.0, 6e-6, 0.0));
+        assert!(!scaled_is_finite(8_388_608.0, 1e32, 0.0));
+        assert!(!scaled_is_finite(32768.0, 1.0, f64::INFINITY));
+    }
+}
