@@ -724,7 +724,6 @@ impl PathRig {
 fn unreachable_framing() -> StreamFraming {
     StreamFraming::Bwf1 {
         decoder: crate::frame::bwf1::StreamDecoder::new(),
-        samples: crate::frame::Samples::default(),
     }
 }
 

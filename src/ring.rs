@@ -16,6 +16,7 @@
 use std::sync::Arc;
 
 use ringbuf::traits::{Consumer, Observer, Producer, Split};
+use ringbuf::wrap::frozen::FrozenProd;
 use ringbuf::{HeapCons, HeapProd, HeapRb};
 
 use crate::counters::{ChannelCounters, GapReason};
@@ -50,7 +51,7 @@ pub fn channel_ring(
     let (mprod, mcons) = HeapRb::<Mark>::new(MARK_CAPACITY).split();
     (
         RingWriter {
-            prod,
+            prod: prod.freeze(),
             marks: mprod,
             pushed: 0,
             next_sample: None,
@@ -69,7 +70,14 @@ pub fn channel_ring(
 
 /// The source's end of the ring.
 pub struct RingWriter {
-    prod: HeapProd<f32>,
+    /// The sample producer, frozen: it works on its own copies of the two
+    /// indices, publishes its write index after every run
+    /// (`commit`) and reads the reader's index (`fetch`, a cache line the
+    /// reader's core owns) only when its stale copy says the run does not
+    /// fit. The stale copy can only under-state the free space (the reader
+    /// only moves forward), so the fetch makes the same accept/drop
+    /// decision a fresh read would.
+    prod: FrozenProd<Arc<HeapRb<f32>>>,
     marks: HeapProd<Mark>,
     pushed: u64,
     /// Stream index the next contiguous sample would have.
@@ -95,6 +103,15 @@ impl RingWriter {
     /// sequence gap. NaN and infinite samples are dropped, counted and cut
     /// the segment. Returns the number of samples accepted.
     pub fn write(&mut self, first_sample: u64, timestamp_ns: u64, samples: &[f32]) -> usize {
+        // The common case, every sample finite, is found by one pass that
+        // vectorises (no early exit); only a run that holds a NaN or an
+        // infinity takes the splitting loop below.
+        if samples.is_empty() {
+            return 0;
+        }
+        if all_finite(samples) {
+            return self.write_run(first_sample, timestamp_ns, samples);
+        }
         let mut accepted = 0;
         let mut start = 0;
         while start < samples.len() {
@@ -116,6 +133,27 @@ impl RingWriter {
             start = run_end + 1;
         }
         accepted
+    }
+
+    /// As [`RingWriter::write`] for a run the caller knows to be finite
+    /// (e.g. integer counts scaled by a finite factor whose bound is
+    /// checked, see `SourceOutputs`): no scan. A non-finite sample here is
+    /// a bug in the caller; debug builds check it.
+    pub fn write_finite(&mut self, first_sample: u64, timestamp_ns: u64, samples: &[f32]) -> usize {
+        debug_assert!(
+            all_finite(samples),
+            "write_finite given a non-finite sample"
+        );
+        if samples.is_empty() {
+            return 0;
+        }
+        self.write_run(first_sample, timestamp_ns, samples)
+    }
+
+    /// The time of the sample `samples` after one taken at `timestamp_ns`,
+    /// as [`RingWriter::write`] stamps the parts of a run it splits.
+    pub fn stamp(&self, timestamp_ns: u64, samples: u64) -> u64 {
+        timestamp_ns.saturating_add(self.offset_ns(samples))
     }
 
     fn offset_ns(&self, samples: u64) -> u64 {
@@ -157,13 +195,24 @@ impl RingWriter {
                 self.pending = None;
             }
         }
+        if self.prod.vacant_len() < run.len() {
+            self.prod.fetch();
+        }
         let n = self.prod.push_slice(run);
+        self.prod.commit();
         self.pushed += n as u64;
         self.since_anchor += n as u64;
         self.next_sample = Some(first_sample + run.len() as u64);
-        self.counters
-            .samples_in
-            .fetch_add(n as u64, std::sync::atomic::Ordering::Relaxed);
+        // A plain load and store, not `fetch_add`: this writer is the only
+        // one that changes its channel's `samples_in` (one ring, one writer
+        // per channel), so the count stays exact, and the store does not
+        // wait, as a locked add on x86 does, for the stores of the copy
+        // above to reach the cache.
+        let c = &self.counters.samples_in;
+        c.store(
+            c.load(std::sync::atomic::Ordering::Relaxed) + n as u64,
+            std::sync::atomic::Ordering::Relaxed,
+        );
         if n < run.len() {
             self.counters
                 .add_dropped(GapReason::RingOverflow, (run.len() - n) as u64);
@@ -174,8 +223,15 @@ impl RingWriter {
 
     /// Free space in the ring, in samples.
     pub fn vacant(&self) -> usize {
+        self.prod.fetch();
         self.prod.vacant_len()
     }
+}
+
+/// True when no sample is NaN or infinite. Branch-free over the slice (an
+/// `&` fold, not `all`, which stops early and does not vectorise).
+fn all_finite(samples: &[f32]) -> bool {
+    samples.iter().fold(true, |ok, x| ok & x.is_finite())
 }
 
 /// What [`RingReader::read`] found.

@@ -436,6 +436,18 @@ pub fn decode_datagram(datagram: &[u8]) -> Result<Frame, FrameError> {
 /// # Errors
 /// As [`decode_datagram`].
 pub fn decode_datagram_into(datagram: &[u8], samples: &mut Samples) -> Result<Header, FrameError> {
+    let (header, body) = decode_datagram_body(datagram)?;
+    samples.decode_from(header.format, body);
+    Ok(header)
+}
+
+/// As [`decode_datagram`], without decoding the samples: the header and
+/// the sample section as wire bytes (`header.body_bytes()` of them, in
+/// `header.format`), for a reader that scales straight from the bytes.
+///
+/// # Errors
+/// As [`decode_datagram`].
+pub fn decode_datagram_body(datagram: &[u8]) -> Result<(Header, &[u8]), FrameError> {
     let n = datagram.len().min(MAGIC.len());
     if datagram[..n] != MAGIC[..n] {
         return Err(FrameError::BadMagic { offset: 0 });
@@ -456,9 +468,8 @@ pub fn decode_datagram_into(datagram: &[u8], samples: &mut Samples) -> Result<He
             extra: len - total,
         });
     }
-    let frame = checked_frame(datagram, &header, 0)?;
-    samples.decode_from(header.format, frame);
-    Ok(header)
+    let body = checked_frame(datagram, &header, 0)?;
+    Ok((header, body))
 }
 
 /// Checks the CRC of a complete frame (`bytes.len() == frame_bytes`) and
@@ -500,9 +511,23 @@ impl DatagramDecoder {
     /// # Errors
     /// As [`decode_datagram`].
     pub fn decode(&mut self, datagram: &[u8], samples: &mut Samples) -> Result<Header, FrameError> {
+        let (header, body) = self.decode_body(datagram)?;
+        samples.decode_from(header.format, body);
+        Ok(header)
+    }
+
+    /// As [`DatagramDecoder::decode`], returning the sample section as
+    /// wire bytes (see [`decode_datagram_body`]).
+    ///
+    /// # Errors
+    /// As [`decode_datagram`].
+    pub fn decode_body<'a>(
+        &mut self,
+        datagram: &'a [u8],
+    ) -> Result<(Header, &'a [u8]), FrameError> {
         let len = datagram.len() as u64;
         self.stats.bytes_in += len;
-        match decode_datagram_into(datagram, samples) {
+        match decode_datagram_body(datagram) {
             Ok(h) => {
                 self.stats.frames += 1;
                 self.stats.frame_bytes += len;
@@ -620,6 +645,23 @@ impl StreamDecoder {
     /// scans on for the next magic at the next call. `samples` is only
     /// changed when a good frame is returned.
     pub fn next_frame_into(&mut self, samples: &mut Samples) -> Result<Option<Header>, FrameError> {
+        match self.next_frame_body()? {
+            Some((header, body)) => {
+                samples.decode_from(header.format, body);
+                Ok(Some(header))
+            }
+            None => Ok(None),
+        }
+    }
+
+    /// As [`StreamDecoder::next_frame_into`], without decoding: the next
+    /// good frame's header and its sample section as wire bytes
+    /// (`header.body_bytes()` of them, in `header.format`), borrowed from
+    /// the decoder's buffer until the next call or push.
+    ///
+    /// # Errors
+    /// As [`StreamDecoder::next_frame_into`].
+    pub fn next_frame_body(&mut self) -> Result<Option<(Header, &[u8])>, FrameError> {
         loop {
             match self.step() {
                 Step::Wait => return Ok(None),
@@ -642,12 +684,12 @@ impl StreamDecoder {
                     return Err(err);
                 }
                 Step::Frame(header, total) => {
-                    let body = &self.buf[self.start + HEADER_BYTES..self.start + total - CRC_BYTES];
-                    samples.decode_from(header.format, body);
+                    let at = self.start;
                     self.start += total;
                     self.stats.frames += 1;
                     self.stats.frame_bytes += total as u64;
-                    return Ok(Some(header));
+                    let body = &self.buf[at + HEADER_BYTES..at + total - CRC_BYTES];
+                    return Ok(Some((header, body)));
                 }
             }
         }

@@ -17,9 +17,9 @@ use crate::counters::GapReason;
 use crate::frame::bwf1::{FrameError, Header, StreamDecoder};
 use crate::frame::lines::{LineBatch, LineDecoder, LineEvent};
 use crate::frame::raw::RawDecoder;
-use crate::frame::Samples;
+use crate::frame::{SampleFormat, Samples};
 use crate::snapshot::{unix_now_ns, SourceShared};
-use crate::source::{note_frame, SourceOutputs};
+use crate::source::{note_frame, SourceOutputs, WireF32, WireF64, WireI16, WireI24, WireI32};
 
 /// Error logs of one kind are written at most this often per source.
 const LOG_EVERY: Duration = Duration::from_secs(5);
@@ -99,8 +99,10 @@ impl FrameSink {
         self.reject(e.reason().as_str(), e);
     }
 
-    /// Passes one BWF1 frame on, if it fits this source.
-    pub fn bwf1(&mut self, h: &Header, samples: &Samples) {
+    /// Passes one BWF1 frame on, if it fits this source. `body` is its
+    /// sample section as wire bytes, as the decoders return it: it is
+    /// scaled into the rings straight from them.
+    pub fn bwf1(&mut self, h: &Header, body: &[u8]) {
         if h.channels as usize != self.channels {
             let msg = format!(
                 "frame at sample {} has {} channels, the config says {}",
@@ -142,11 +144,14 @@ impl FrameSink {
         } else {
             h.timestamp_ns
         };
-        match samples {
-            Samples::I16(v) => self.out.write_interleaved(h.first_sample, ts, v),
-            Samples::I32(v) => self.out.write_interleaved(h.first_sample, ts, v),
-            Samples::F32(v) => self.out.write_interleaved(h.first_sample, ts, v),
-            Samples::F64(v) => self.out.write_interleaved(h.first_sample, ts, v),
+        debug_assert_eq!(body.len() as u64, h.body_bytes(), "a decoder's frame body");
+        let at = h.first_sample;
+        match h.format {
+            SampleFormat::I16 => self.out.write_frame(at, ts, &WireI16(body)),
+            SampleFormat::I24 => self.out.write_frame(at, ts, &WireI24(body)),
+            SampleFormat::I32 => self.out.write_frame(at, ts, &WireI32(body)),
+            SampleFormat::F32 => self.out.write_frame(at, ts, &WireF32(body)),
+            SampleFormat::F64 => self.out.write_frame(at, ts, &WireF64(body)),
         }
         note_frame(&self.state);
     }
@@ -180,7 +185,6 @@ impl FrameSink {
 pub enum StreamFraming {
     Bwf1 {
         decoder: StreamDecoder,
-        samples: Samples,
     },
     Lines {
         decoder: LineDecoder,
@@ -201,7 +205,6 @@ impl StreamFraming {
         Ok(match spec.framing {
             Framing::Bwf1 => StreamFraming::Bwf1 {
                 decoder: StreamDecoder::with_max_frame_bytes(spec.max_frame_bytes),
-                samples: Samples::default(),
             },
             Framing::Lines => StreamFraming::Lines {
                 decoder: LineDecoder::new(channels),
@@ -218,12 +221,12 @@ impl StreamFraming {
     /// Decodes `bytes` and passes everything complete to `sink`.
     pub fn feed(&mut self, bytes: &[u8], sink: &mut FrameSink) {
         match self {
-            StreamFraming::Bwf1 { decoder, samples } => {
+            StreamFraming::Bwf1 { decoder } => {
                 let before = decoder.stats().clone();
                 decoder.push(bytes);
                 loop {
-                    match decoder.next_frame_into(samples) {
-                        Ok(Some(h)) => sink.bwf1(&h, samples),
+                    match decoder.next_frame_body() {
+                        Ok(Some((h, body))) => sink.bwf1(&h, body),
                         Ok(None) => break,
                         Err(e) => sink.frame_error(&e),
                     }

@@ -13,7 +13,6 @@ use tokio::sync::watch;
 
 use crate::config::{Backoff, SecondConnection, SourceKind, SourceSpec, StreamSpec};
 use crate::frame::bwf1::DatagramDecoder;
-use crate::frame::Samples;
 use crate::snapshot::{unix_now_ns, SourceShared};
 use crate::source::framed::{FrameSink, StreamFraming};
 use crate::source::SourceOutputs;
@@ -327,7 +326,6 @@ async fn udp(
     // fills it was longer than allowed, and the kernel truncated it.
     let mut buf = vec![0u8; max_datagram + 1];
     let mut decoder = DatagramDecoder::new();
-    let mut samples = Samples::default();
     let mut tick = tokio::time::interval(Duration::from_secs(1));
     let mut last = tokio::time::Instant::now();
     sink.restart();
@@ -346,8 +344,8 @@ async fn udp(
                         sink.reject("oversize_datagram", &msg);
                         continue;
                     }
-                    match decoder.decode(&buf[..n], &mut samples) {
-                        Ok(h) => sink.bwf1(&h, &samples),
+                    match decoder.decode_body(&buf[..n]) {
+                        Ok((h, body)) => sink.bwf1(&h, body),
                         Err(e) => sink.frame_error(&e),
                     }
                     sink.out.wake();
