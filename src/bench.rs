@@ -1362,7 +1362,7 @@ fn render_probe(state: &Arc<AppState>, min: Duration) -> Result<(f64, usize, usi
     while times.len() < 5 || t0.elapsed() < min {
         let t = Instant::now();
         body = m
-            .render()
+            .render_fresh()
             .map_err(|e| BenchError::Lost(format!("render /metrics: {e}")))?;
         times.push(t.elapsed().as_secs_f64() * 1e3);
     }
