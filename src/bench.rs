@@ -15,8 +15,9 @@
 //!   process allocated is counted.
 //! - `ingest`: BWF1 over real loopback TCP and UDP into the running
 //!   pipeline: the highest aggregate sample rate held with zero drops.
-//! - `http`: `/metrics` and spectrum latency at a fixed request rate while
-//!   the DSP runs flat out, and the DSP throughput lost to that load.
+//! - `http`: `/metrics` render time and body size, and `/metrics` and
+//!   spectrum latency at fixed request rates while the DSP runs flat out,
+//!   paced to real time, or not at all, and what that load costs the DSP.
 //! - `welch`: not a phase of the default run; the mode
 //!   `bench/compare_scipy.py` drives (`--signal FILE`).
 //!
@@ -90,8 +91,8 @@ pub struct BenchArgs {
     /// http: channel counts (each also gets the render and body-size rows).
     #[arg(long, value_delimiter = ',', default_value = "64")]
     pub http_channels: Vec<usize>,
-    /// http: DSP load during the requests, `flat` (flat out) and/or `paced`
-    /// (real time: 25.6 kHz per channel).
+    /// http: DSP load during the requests, `flat` (flat out), `paced`
+    /// (real time: 25.6 kHz per channel) and/or `idle` (no DSP work).
     #[arg(long, value_delimiter = ',', default_value = "flat,paced")]
     pub http_load: Vec<String>,
     /// http: request rates, requests/s (alternating /metrics and spectrum).
@@ -1044,6 +1045,8 @@ pub enum DspLoad {
     /// At the channels' real-time rate (each channel gets 25 600 samples per
     /// second of wall time), sleeping when ahead: the load of the target.
     Paced,
+    /// No DSP work during the round: what serving alone costs and reaches.
+    Idle,
 }
 
 impl DspLoad {
@@ -1051,6 +1054,7 @@ impl DspLoad {
         match s {
             "flat" => Some(DspLoad::Flat),
             "paced" => Some(DspLoad::Paced),
+            "idle" => Some(DspLoad::Idle),
             _ => None,
         }
     }
@@ -1058,6 +1062,7 @@ impl DspLoad {
         match self {
             DspLoad::Flat => "flat",
             DspLoad::Paced => "paced",
+            DspLoad::Idle => "idle",
         }
     }
 }
@@ -1413,6 +1418,12 @@ fn dsp_thread(
         rig.run_until(stop, done);
         return (rig, t0.elapsed(), 0.0);
     }
+    if load == DspLoad::Idle {
+        while !stop.load(Ordering::Relaxed) {
+            std::thread::sleep(Duration::from_millis(5));
+        }
+        return (rig, Duration::ZERO, 0.0);
+    }
     let mut k: u32 = 0;
     while !stop.load(Ordering::Relaxed) {
         let due = t0 + period * k;
@@ -1528,7 +1539,7 @@ fn http_phase(
     let mut loads = Vec::new();
     for l in &args.http_load {
         loads.push(DspLoad::parse(l).ok_or_else(|| {
-            BenchError::Usage(format!("--http-load {l:?}: expected flat or paced"))
+            BenchError::Usage(format!("--http-load {l:?}: expected flat, paced or idle"))
         })?);
     }
     if loads.is_empty() {
@@ -1576,8 +1587,8 @@ fn http_phase(
         }
         let body = Summary::of(&bytes).median;
         rows.push(ms_row(format!("render {channels} ch"), &render, None));
-        rows.push(row(format!("body {channels} ch"), "bytes", &bytes));
-        rows.push(row(format!("body {channels} ch"), "lines", &lines));
+        rows.push(row(format!("body {channels} ch bytes"), "bytes", &bytes));
+        rows.push(row(format!("body {channels} ch lines"), "lines", &lines));
         for &load in &loads {
             let l = load.as_str();
             let mut base_cores = Vec::new();
@@ -1662,6 +1673,7 @@ fn http_phase(
                         rows.push(row(format!("{t} DSP"), "cores busy", &a.cores));
                         rows.push(row(format!("{t} DSP behind"), "s at end", &a.behind));
                     }
+                    DspLoad::Idle => {}
                 }
                 notes.push(format!(
                     "http {t}: /metrics at {} req/s needs {} bytes/s; {} non-200 responses, {} errors, {} unsent (waited past the {HTTP_GRACE_S} s grace; counted with their wait so far)",
@@ -1673,11 +1685,11 @@ fn http_phase(
                 ));
             }
             rows.push(row(
-                format!("{tag} back-to-back"),
+                format!("{tag} back-to-back n"),
                 "/metrics/s",
                 &closed_rps,
             ));
-            rows.push(row(format!("{tag} back-to-back"), "bytes/s", &closed_bps));
+            rows.push(row(format!("{tag} back-to-back B"), "bytes/s", &closed_bps));
             if load == DspLoad::Flat {
                 rows.push(row(
                     format!("{tag} back-to-back DSP lost"),
@@ -1688,7 +1700,7 @@ fn http_phase(
         }
     }
     notes.push(
-        "http: requests alternate /metrics and /api/v1/channels/ch0000/spectrum on one keep-alive connection (rate = both together), latency from when each was due; channels have 5 bands, each with an alert and danger alarm; 2 DSP threads: flat = flat out, paced = each channel at 25.6 kHz of wall time; render = one uncached /metrics render with the DSP idle; back-to-back = /metrics requested as soon as the last response is read".into(),
+        "http: requests alternate /metrics and /api/v1/channels/ch0000/spectrum on one keep-alive connection (rate = both together), latency from when each was due; channels have 5 bands, each with an alert and danger alarm; 2 DSP threads: flat = flat out, paced = each channel at 25.6 kHz of wall time, idle = no DSP work; render = one uncached /metrics render with the DSP idle; back-to-back = /metrics requested as soon as the last response is read".into(),
     );
     Ok(())
 }
