@@ -1,14 +1,27 @@
 //! `/metrics`: Prometheus text exposition.
 //!
-//! Two kinds of series live in one `Registry`:
+//! Two kinds of series:
 //!
 //! - static ones the process updates itself (`bandwatch_build_info`,
-//!   `bandwatch_start_time_seconds`, `bandwatch_http_requests_total`);
-//! - everything derived from channels and sources, built by
+//!   `bandwatch_start_time_seconds`, `bandwatch_http_requests_total`), kept
+//!   in a prometheus crate `Registry` and encoded by its `TextEncoder`;
+//! - everything derived from channels and sources, written by
 //!   [`PipelineCollector`] at scrape time from the latest snapshots and
-//!   counters. One scrape therefore reads each snapshot once (never half
-//!   old, half new), a channel that is gone leaves no stale series, and the
-//!   registry never grows or churns per series.
+//!   counters, straight into text. One scrape reads each snapshot once
+//!   (never half old, half new), and a channel that is gone leaves no stale
+//!   series.
+//!
+//! The direct encoder writes what `Registry::gather` + `TextEncoder` would
+//! (families sorted by name, series by label values, values as Rust
+//! prints an `f64`), without building a `prometheus::proto` object per
+//! series: label sets are escaped once when the collector is built (names
+//! are fixed by the config), the text goes into per-family buffers reused
+//! from scrape to scrape, and integral values skip float formatting. The
+//! one difference: non-finite values are written `+Inf`, `-Inf`, `NaN` as
+//! the text format specifies (the crate wrote Rust's `inf`).
+//!
+//! A rendered body is shared by the scrapes that arrive within
+//! [`RENDER_MAX_AGE`] of the start of its render; never longer.
 //!
 //! Names follow the Prometheus naming guide: `bandwatch_` prefix, SI base
 //! units in the name (values are converted with `Unit::to_si`), `_total` on
@@ -16,13 +29,13 @@
 //! source, kind, reason, path, status).
 
 use std::collections::HashMap;
-use std::sync::Arc;
+use std::fmt::Write as _;
+use std::sync::{Arc, Mutex, MutexGuard};
+use std::time::{Duration, Instant};
 
+use axum::body::Bytes;
 use axum::http::StatusCode;
-use prometheus::core::{Collector, Desc};
-use prometheus::proto::{
-    Counter as PCounter, Gauge as PGauge, LabelPair, Metric, MetricFamily, MetricType,
-};
+use prometheus::proto::MetricType;
 use prometheus::{Encoder, Gauge, IntCounterVec, IntGaugeVec, Opts, Registry, TextEncoder};
 
 use crate::config::Measure;
@@ -33,12 +46,44 @@ use crate::units::Quantity;
 /// Content type of the text exposition format.
 pub const CONTENT_TYPE: &str = prometheus::TEXT_FORMAT;
 
-/// The registry behind `/metrics` and the static series the HTTP layer
-/// updates.
+/// Longest time a rendered `/metrics` body is served again: scrapes within
+/// this time of the start of a render share its body. Snapshots change
+/// only when a channel publishes (every hop × averages / fs, 0.32 s at the
+/// demo's settings), so a scrape sees values at most this much older than
+/// an uncached render would show.
+pub const RENDER_MAX_AGE: Duration = Duration::from_millis(200);
+
+/// Monotonic time for the render cache (tests step it by hand).
+pub type MonoClock = Arc<dyn Fn() -> Duration + Send + Sync>;
+
+fn process_mono() -> Duration {
+    static BASE: std::sync::OnceLock<Instant> = std::sync::OnceLock::new();
+    BASE.get_or_init(Instant::now).elapsed()
+}
+
+/// The last rendered body and when its render started.
+struct Cached {
+    at: Duration,
+    body: Bytes,
+}
+
+/// The registry behind `/metrics`, the static series the HTTP layer
+/// updates, and the render cache.
 pub struct Metrics {
     registry: Registry,
     /// `None` only if the prometheus crate refused its constant options.
     http_requests: Option<IntCounterVec>,
+    collector: PipelineCollector,
+    max_age: Duration,
+    mono: MonoClock,
+    cache: Mutex<Option<Cached>>,
+    /// Held while rendering, so that concurrent scrapes wait for one
+    /// render instead of each doing their own.
+    rendering: Mutex<()>,
+}
+
+fn lock<T>(m: &Mutex<T>) -> MutexGuard<'_, T> {
+    m.lock().unwrap_or_else(std::sync::PoisonError::into_inner)
 }
 
 impl Metrics {
@@ -52,6 +97,18 @@ impl Metrics {
     /// As [`Metrics::new`], with the wall clock used for ages replaced
     /// (tests pin it to get a reproducible exposition).
     pub fn with_clock(app: Arc<AppState>, clock: fn() -> u64) -> Metrics {
+        Metrics::with_cache(app, clock, RENDER_MAX_AGE, Arc::new(process_mono))
+    }
+
+    /// As [`Metrics::with_clock`], with the cache's max-age and monotonic
+    /// clock given (tests step the clock; `Duration::ZERO` disables the
+    /// cache).
+    pub fn with_cache(
+        app: Arc<AppState>,
+        clock: fn() -> u64,
+        max_age: Duration,
+        mono: MonoClock,
+    ) -> Metrics {
         let registry = Registry::new();
         let http_requests = IntCounterVec::new(
             Opts::new(
@@ -89,10 +146,14 @@ impl Metrics {
             g.set(app.started_unix_ns as f64 * 1e-9);
             register(&registry, Box::new(g));
         }
-        register(&registry, Box::new(PipelineCollector::new(app, clock)));
         Metrics {
             registry,
             http_requests,
+            collector: PipelineCollector::new(app, clock),
+            max_age,
+            mono,
+            cache: Mutex::new(None),
+            rendering: Mutex::new(()),
         }
     }
 
@@ -103,19 +164,56 @@ impl Metrics {
         }
     }
 
-    /// Gathers every family and encodes the text exposition.
+    /// The body cached less than the max-age ago, if any.
+    pub fn cached(&self) -> Option<Bytes> {
+        let now = (self.mono)();
+        let c = lock(&self.cache);
+        c.as_ref()
+            .filter(|c| now.saturating_sub(c.at) < self.max_age)
+            .map(|c| c.body.clone())
+    }
+
+    /// The text exposition: the cached body if it is younger than the
+    /// max-age, else a new render (one at a time: a scrape that arrives
+    /// during a render waits for it and shares its body).
     ///
     /// # Errors
-    /// If the encoder rejects a family (a programming error: an empty name).
-    pub fn render(&self) -> Result<Vec<u8>, prometheus::Error> {
-        let families = self.registry.gather();
-        let mut out = Vec::with_capacity(64 * 1024);
-        TextEncoder::new().encode(&families, &mut out)?;
-        Ok(out)
+    /// If the encoder rejects a static family (a programming error).
+    pub fn render(&self) -> Result<Bytes, prometheus::Error> {
+        if let Some(b) = self.cached() {
+            return Ok(b);
+        }
+        let _one = lock(&self.rendering);
+        if let Some(b) = self.cached() {
+            return Ok(b);
+        }
+        let at = (self.mono)();
+        let body = Bytes::from(self.render_fresh()?);
+        if !self.max_age.is_zero() {
+            *lock(&self.cache) = Some(Cached {
+                at,
+                body: body.clone(),
+            });
+        }
+        Ok(body)
+    }
+
+    /// Renders the exposition now, bypassing the cache.
+    ///
+    /// # Errors
+    /// If the encoder rejects a static family (a programming error).
+    pub fn render_fresh(&self) -> Result<Vec<u8>, prometheus::Error> {
+        let mut statics = Vec::new();
+        for f in self.registry.gather() {
+            let mut text = Vec::new();
+            TextEncoder::new().encode(std::slice::from_ref(&f), &mut text)?;
+            statics.push((f.name().to_string(), text));
+        }
+        Ok(self.collector.encode(&statics))
     }
 }
 
-fn register(registry: &Registry, c: Box<dyn Collector>) {
+fn register(registry: &Registry, c: Box<dyn prometheus::core::Collector>) {
     if let Err(e) = registry.register(c) {
         tracing::error!(error = %e, "cannot register a metrics collector");
     }
@@ -125,17 +223,9 @@ fn register(registry: &Registry, c: Box<dyn Collector>) {
 // The scrape-time collector
 // ---------------------------------------------------------------------------
 
-/// One metric family whose members are built at scrape time.
-#[derive(Debug, Clone)]
-struct FamilyDef {
-    name: String,
-    help: String,
-    kind: MetricType,
-}
-
 /// Families with a fixed name.
 #[derive(Debug, Clone, Copy)]
-enum Fixed {
+pub(crate) enum Fixed {
     BandPeakFrequency,
     CrestFactor,
     SamplesReceived,
@@ -173,7 +263,7 @@ enum Fixed {
     AlarmLimitDimensionless,
 }
 
-const FIXED: [(Fixed, &str, &str, MetricType, &[&str]); 35] = [
+pub(crate) const FIXED: [(Fixed, &str, &str, MetricType, &[&str]); 35] = [
     (
         Fixed::BandPeakFrequency,
         "bandwatch_band_peak_frequency_hertz",
@@ -423,7 +513,7 @@ const FIXED: [(Fixed, &str, &str, MetricType, &[&str]); 35] = [
 
 /// Time-domain levels exported per channel, in the order of the four
 /// consecutive families a quantity gets.
-const OVERALL: [(&str, &str); 4] = [
+pub(crate) const OVERALL: [(&str, &str); 4] = [
     ("mean", "Mean of the newest block"),
     ("rms", "RMS about the mean of the newest block"),
     (
@@ -433,7 +523,7 @@ const OVERALL: [(&str, &str); 4] = [
     ("peak_to_peak", "Maximum minus minimum of the newest block"),
 ];
 
-fn si_words(q: Quantity) -> &'static str {
+pub(crate) fn si_words(q: Quantity) -> &'static str {
     match q {
         Quantity::Displacement => "metres",
         Quantity::Velocity => "metres per second",
@@ -444,13 +534,180 @@ fn si_words(q: Quantity) -> &'static str {
     }
 }
 
-/// Builds every channel- and source-derived family at scrape time.
+/// A family the collector writes: its name and its `# HELP` and `# TYPE`
+/// lines.
+#[derive(Debug, Clone)]
+struct FamilyText {
+    name: String,
+    head: String,
+}
+
+impl FamilyText {
+    fn new(name: String, help: &str, kind: MetricType) -> FamilyText {
+        let mut head = String::new();
+        if !help.is_empty() {
+            head.push_str("# HELP ");
+            head.push_str(&name);
+            head.push(' ');
+            push_escaped(&mut head, help, false);
+            head.push('\n');
+        }
+        head.push_str("# TYPE ");
+        head.push_str(&name);
+        head.push_str(match kind {
+            MetricType::COUNTER => " counter\n",
+            MetricType::GAUGE => " gauge\n",
+            MetricType::SUMMARY => " summary\n",
+            MetricType::HISTOGRAM => " histogram\n",
+            MetricType::UNTYPED => " untyped\n",
+        });
+        FamilyText { name, head }
+    }
+}
+
+/// Appends `v` escaped as the text format says: a backslash as `\\`, a
+/// line feed as `\n`, and, in label values (`quote`), a double quote as
+/// `\"`. Everything else is written as it is (UTF-8).
+pub fn push_escaped(out: &mut String, v: &str, quote: bool) {
+    let mut rest = v;
+    while let Some(p) = rest.find(|c| c == '\\' || c == '\n' || (quote && c == '"')) {
+        out.push_str(&rest[..p]);
+        out.push_str(match rest.as_bytes()[p] {
+            b'\\' => "\\\\",
+            b'\n' => "\\n",
+            _ => "\\\"",
+        });
+        rest = &rest[p + 1..];
+    }
+    out.push_str(rest);
+}
+
+/// `{name="value",…}` with the values escaped; empty for no labels.
+fn label_set(pairs: &[(&str, &str)]) -> String {
+    if pairs.is_empty() {
+        return String::new();
+    }
+    let mut s = String::from("{");
+    for (k, (name, value)) in pairs.iter().enumerate() {
+        if k > 0 {
+            s.push(',');
+        }
+        s.push_str(name);
+        s.push_str("=\"");
+        push_escaped(&mut s, value, true);
+        s.push('"');
+    }
+    s.push('}');
+    s
+}
+
+/// Integers below 2^53 are exact in an f64 and print the same either way.
+const EXACT: f64 = 9_007_199_254_740_992.0;
+
+fn push_uint(out: &mut String, mut v: u64) {
+    let mut buf = [0u8; 20];
+    let mut i = buf.len();
+    loop {
+        i -= 1;
+        buf[i] = b'0' + (v % 10) as u8;
+        v /= 10;
+        if v == 0 {
+            break;
+        }
+    }
+    out.push_str(std::str::from_utf8(&buf[i..]).unwrap_or("0"));
+}
+
+/// Appends a sample value as the text format wants it: `NaN`, `+Inf`,
+/// `-Inf`; finite values as Rust's `Display` prints an `f64` (shortest
+/// digits that read back exactly, never an exponent), which is what the
+/// prometheus crate's encoder wrote. Integral values below 2^53 take a
+/// short path with the same digits.
+pub fn push_value(out: &mut String, v: f64) {
+    if v.is_nan() {
+        out.push_str("NaN");
+    } else if v.is_infinite() {
+        out.push_str(if v > 0.0 { "+Inf" } else { "-Inf" });
+    } else if v.trunc() == v && v.abs() < EXACT && v != 0.0 {
+        if v < 0.0 {
+            out.push('-');
+        }
+        push_uint(out, v.abs() as u64);
+    } else if v == 0.0 {
+        out.push_str(if v.is_sign_negative() { "-0" } else { "0" });
+    } else {
+        let _ = write!(out, "{v}");
+    }
+}
+
+/// A counter value: as the f64 it used to be converted to.
+fn push_count(out: &mut String, v: u64) {
+    if (v as f64) < EXACT {
+        push_uint(out, v);
+    } else {
+        push_value(out, v as f64);
+    }
+}
+
+fn put_f(out: &mut String, name: &str, labels: &str, v: f64) {
+    out.push_str(name);
+    out.push_str(labels);
+    out.push(' ');
+    push_value(out, v);
+    out.push('\n');
+}
+
+fn put_u(out: &mut String, name: &str, labels: &str, v: u64) {
+    out.push_str(name);
+    out.push_str(labels);
+    out.push(' ');
+    push_count(out, v);
+    out.push('\n');
+}
+
+fn bit(b: bool) -> f64 {
+    if b {
+        1.0
+    } else {
+        0.0
+    }
+}
+
+/// One channel's label sets, escaped once, and the order of its bands
+/// and alarms by name (the order the series sort in).
+struct ChannelText {
+    /// `{channel="…"}`
+    ch: String,
+    /// `{channel="…",reason="…"}`, sorted by reason.
+    reasons: Vec<(GapReason, String)>,
+    band_order: Vec<usize>,
+    /// Per band: `{channel="…",band="…"}`.
+    band: Vec<String>,
+    alarm_order: Vec<usize>,
+    /// Per alarm: `{channel="…",band="…"}`.
+    alarm: Vec<String>,
+    /// Per alarm: (index into `AlarmState::ALL`, `{…,to="…"}`), sorted by
+    /// state name.
+    to: Vec<Vec<(usize, String)>>,
+    /// Per alarm: `{…,level="alert"}`, `{…,level="danger"}`.
+    level: Vec<[String; 2]>,
+}
+
+/// Indices of `items` in the order of `key` (stable).
+fn order_by<T, K: Ord>(items: &[T], key: impl Fn(&T) -> K) -> Vec<usize> {
+    let mut o: Vec<usize> = (0..items.len()).collect();
+    o.sort_by_key(|&i| key(&items[i]));
+    o
+}
+
+/// Writes every channel- and source-derived family at scrape time.
 pub struct PipelineCollector {
     app: Arc<AppState>,
     clock: fn() -> u64,
+    fixed: Vec<FamilyText>,
     /// Families whose names depend on the config (band measure × quantity,
-    /// overall levels × quantity).
-    dynamic: Vec<FamilyDef>,
+    /// overall levels × quantity, alarm limits × quantity).
+    dynamic: Vec<FamilyText>,
     /// Per channel, per band: index into `dynamic`.
     band_slot: Vec<Vec<usize>>,
     /// Per channel: index of the first of its 4 overall families.
@@ -458,45 +715,49 @@ pub struct PipelineCollector {
     /// Per channel, per alarm: index into `dynamic` of its limit family
     /// (None: dimensionless, exported in `bandwatch_alarm_limit`).
     limit_slot: Vec<Vec<Option<usize>>>,
-    descs: Vec<Desc>,
+    channels: Vec<ChannelText>,
+    channel_order: Vec<usize>,
+    /// Per source: `{source="…"}` and `{source="…",kind="…"}`.
+    sources: Vec<(String, String)>,
+    source_order: Vec<usize>,
+    /// Per machine: `{machine="…",source="…"}`.
+    machines: Vec<String>,
+    machine_order: Vec<usize>,
+    /// Fixed (0..FIXED.len()) and dynamic (FIXED.len()..) families by name.
+    family_order: Vec<usize>,
+    /// One text buffer per family, kept from scrape to scrape.
+    bufs: Mutex<Vec<String>>,
 }
 
 impl PipelineCollector {
     pub fn new(app: Arc<AppState>, clock: fn() -> u64) -> PipelineCollector {
-        let mut dynamic: Vec<FamilyDef> = Vec::new();
+        let mut dynamic: Vec<FamilyText> = Vec::new();
         let mut index: HashMap<String, usize> = HashMap::new();
-        let mut labels_of: Vec<&[&str]> = Vec::new();
-        let mut slot = |name: String, help: String, labels: &'static [&'static str]| {
+        let mut slot = |name: String, help: String| {
             *index.entry(name.clone()).or_insert_with(|| {
-                dynamic.push(FamilyDef {
-                    name,
-                    help,
-                    kind: MetricType::GAUGE,
-                });
-                labels_of.push(labels);
+                dynamic.push(FamilyText::new(name, &help, MetricType::GAUGE));
                 dynamic.len() - 1
             })
         };
         let mut band_slot = Vec::with_capacity(app.channels.len());
         let mut overall_slot = Vec::with_capacity(app.channels.len());
         let mut limit_slot = Vec::with_capacity(app.channels.len());
+        let mut channels = Vec::with_capacity(app.channels.len());
         for ch in &app.channels {
-            let q = ch.spec.unit.quantity;
+            let spec = &ch.spec;
+            let q = spec.unit.quantity;
             let first = slot(
                 format!("bandwatch_channel_{}_{}", OVERALL[0].0, q.metric_suffix()),
                 format!("{}, in {}.", OVERALL[0].1, si_words(q)),
-                &["channel"],
             );
             for (what, help) in &OVERALL[1..] {
                 slot(
                     format!("bandwatch_channel_{what}_{}", q.metric_suffix()),
                     format!("{help}, in {}.", si_words(q)),
-                    &["channel"],
                 );
             }
             overall_slot.push(first);
-            let bands = ch
-                .spec
+            let bands = spec
                 .bands
                 .iter()
                 .map(|b| {
@@ -518,13 +779,11 @@ impl PipelineCollector {
                             q.metric_suffix()
                         ),
                         help,
-                        &["channel", "band"],
                     )
                 })
                 .collect();
             band_slot.push(bands);
-            let limits = ch
-                .spec
+            let limits = spec
                 .alarms
                 .iter()
                 .map(|a| {
@@ -533,194 +792,195 @@ impl PipelineCollector {
                         slot(
                             format!("bandwatch_alarm_limit_{}", q.metric_suffix()),
                             format!("Limit of an alarm, by level, in {}.", si_words(q)),
-                            &["channel", "band", "level"],
                         )
                     })
                 })
                 .collect();
             limit_slot.push(limits);
+
+            let name = spec.name.as_str();
+            let mut reasons: Vec<(GapReason, String)> = GapReason::ALL
+                .iter()
+                .map(|&r| (r, label_set(&[("channel", name), ("reason", r.as_str())])))
+                .collect();
+            reasons.sort_by_key(|(r, _)| r.as_str());
+            let mut states: Vec<(usize, &str)> = crate::alarm::state::AlarmState::ALL
+                .iter()
+                .enumerate()
+                .map(|(k, s)| (k, s.as_str()))
+                .collect();
+            states.sort_by_key(|&(_, s)| s);
+            channels.push(ChannelText {
+                ch: label_set(&[("channel", name)]),
+                reasons,
+                band_order: order_by(&spec.bands, |b| b.name.clone()),
+                band: spec
+                    .bands
+                    .iter()
+                    .map(|b| label_set(&[("channel", name), ("band", &b.name)]))
+                    .collect(),
+                alarm_order: order_by(&spec.alarms, |a| a.name.clone()),
+                alarm: spec
+                    .alarms
+                    .iter()
+                    .map(|a| label_set(&[("channel", name), ("band", &a.name)]))
+                    .collect(),
+                to: spec
+                    .alarms
+                    .iter()
+                    .map(|a| {
+                        states
+                            .iter()
+                            .map(|&(k, s)| {
+                                (
+                                    k,
+                                    label_set(&[("channel", name), ("band", &a.name), ("to", s)]),
+                                )
+                            })
+                            .collect()
+                    })
+                    .collect(),
+                level: spec
+                    .alarms
+                    .iter()
+                    .map(|a| {
+                        ["alert", "danger"].map(|l| {
+                            label_set(&[("channel", name), ("band", &a.name), ("level", l)])
+                        })
+                    })
+                    .collect(),
+            });
         }
-        // The four overall families of a quantity are created together, so
-        // `first..first + 4` holds them even when a later channel reuses them.
-        let mut descs = Vec::new();
-        let fixed = FIXED
+        let fixed: Vec<FamilyText> = FIXED
             .iter()
-            .map(|(_, name, help, _, labels)| (name.to_string(), help.to_string(), *labels));
-        let dyns = dynamic
+            .map(|(_, name, help, kind, _)| FamilyText::new(name.to_string(), help, *kind))
+            .collect();
+        let mut family_order: Vec<usize> = (0..fixed.len() + dynamic.len()).collect();
+        family_order.sort_by(|&a, &b| {
+            let name = |i: usize| {
+                if i < fixed.len() {
+                    fixed[i].name.as_str()
+                } else {
+                    dynamic[i - fixed.len()].name.as_str()
+                }
+            };
+            name(a).cmp(name(b))
+        });
+        let sources = app
+            .sources
             .iter()
-            .zip(&labels_of)
-            .map(|(d, l)| (d.name.clone(), d.help.clone(), *l));
-        for (name, help, labels) in fixed.chain(dyns) {
-            match Desc::new(
-                name,
-                help,
-                labels.iter().map(|s| s.to_string()).collect(),
-                HashMap::new(),
-            ) {
-                Ok(d) => descs.push(d),
-                Err(e) => tracing::error!(error = %e, "invalid metric descriptor"),
-            }
-        }
+            .map(|s| {
+                (
+                    label_set(&[("source", &s.name)]),
+                    label_set(&[("source", &s.name), ("kind", s.kind)]),
+                )
+            })
+            .collect();
+        let machines = app
+            .machines
+            .iter()
+            .map(|m| label_set(&[("machine", &m.spec.name), ("source", m.spec.speed.as_str())]))
+            .collect();
+        let bufs = vec![String::new(); fixed.len() + dynamic.len()];
         PipelineCollector {
+            channel_order: order_by(&app.channels, |c| c.spec.name.clone()),
+            source_order: order_by(&app.sources, |s| s.name.clone()),
+            machine_order: order_by(&app.machines, |m| {
+                (m.spec.name.clone(), m.spec.speed.as_str())
+            }),
             app,
             clock,
+            fixed,
             dynamic,
             band_slot,
             overall_slot,
             limit_slot,
-            descs,
+            channels,
+            sources,
+            machines,
+            family_order,
+            bufs: Mutex::new(bufs),
         }
     }
-}
 
-fn label(name: &str, value: &str) -> LabelPair {
-    let mut l = LabelPair::default();
-    l.set_name(name.to_string());
-    l.set_value(value.to_string());
-    l
-}
-
-fn gauge(labels: Vec<LabelPair>, v: f64) -> Metric {
-    let mut g = PGauge::default();
-    g.set_value(v);
-    let mut m = Metric::default();
-    m.set_label(labels);
-    m.set_gauge(g);
-    m
-}
-
-fn counter(labels: Vec<LabelPair>, v: u64) -> Metric {
-    let mut c = PCounter::default();
-    c.set_value(v as f64);
-    let mut m = Metric::default();
-    m.set_label(labels);
-    m.set_counter(c);
-    m
-}
-
-fn family(name: &str, help: &str, kind: MetricType, metrics: Vec<Metric>) -> MetricFamily {
-    let mut f = MetricFamily::default();
-    f.set_name(name.to_string());
-    f.set_help(help.to_string());
-    f.set_field_type(kind);
-    f.set_metric(metrics);
-    f
-}
-
-impl Collector for PipelineCollector {
-    fn desc(&self) -> Vec<&Desc> {
-        self.descs.iter().collect()
-    }
-
-    fn collect(&self) -> Vec<MetricFamily> {
+    /// Writes the whole exposition: this collector's families and
+    /// `statics` (name and encoded text of each static family, in name
+    /// order), all in name order.
+    fn encode(&self, statics: &[(String, Vec<u8>)]) -> Vec<u8> {
+        use std::sync::atomic::Ordering::Relaxed;
         let now_ns = (self.clock)();
-        let n = self.app.channels.len();
-        let mut fixed: Vec<Vec<Metric>> = FIXED
-            .iter()
-            .map(|(f, ..)| match f {
-                Fixed::SamplesDropped | Fixed::Discontinuities => {
-                    Vec::with_capacity(n * GapReason::ALL.len())
-                }
-                Fixed::SourceUp
-                | Fixed::SourceFrames
-                | Fixed::SourceBytes
-                | Fixed::SourceLastFrame
-                | Fixed::SourceConnections
-                | Fixed::SourceCrcErrors
-                | Fixed::SourceResyncs
-                | Fixed::SourceSkippedBytes
-                | Fixed::SourceMissingSamples
-                | Fixed::SourceLateFrames
-                | Fixed::SourceRejected => Vec::with_capacity(self.app.sources.len()),
-                _ => Vec::with_capacity(n),
-            })
-            .collect();
-        let mut dynamic: Vec<Vec<Metric>> = vec![Vec::new(); self.dynamic.len()];
-        let ch_label = |name: &str| vec![label("channel", name)];
+        let mut guard = lock(&self.bufs);
+        let bufs: &mut Vec<String> = &mut guard;
+        for b in bufs.iter_mut() {
+            b.clear();
+        }
+        let nf = FIXED.len();
+        let fname = |f: Fixed| FIXED[f as usize].1;
 
-        for (i, ch) in self.app.channels.iter().enumerate() {
+        for &i in &self.channel_order {
+            let ch = &self.app.channels[i];
+            let t = &self.channels[i];
             let spec = &ch.spec;
-            let name = spec.name.as_str();
             let c = &ch.counters;
-            let put = |fixed: &mut Vec<Vec<Metric>>, f: Fixed, m: Metric| fixed[f as usize].push(m);
-            put(
-                &mut fixed,
-                Fixed::SamplesReceived,
-                counter(ch_label(name), ChannelCounters::get(&c.samples_in)),
-            );
-            put(
-                &mut fixed,
-                Fixed::SamplesProcessed,
-                counter(ch_label(name), ChannelCounters::get(&c.samples_processed)),
-            );
-            put(
-                &mut fixed,
-                Fixed::Blocks,
-                counter(ch_label(name), ChannelCounters::get(&c.blocks)),
-            );
-            put(
-                &mut fixed,
-                Fixed::Spectra,
-                counter(ch_label(name), ChannelCounters::get(&c.spectra)),
-            );
-            for r in GapReason::ALL {
-                let labels = || vec![label("channel", name), label("reason", r.as_str())];
-                put(
-                    &mut fixed,
-                    Fixed::SamplesDropped,
-                    counter(labels(), c.dropped(r)),
+            for (f, v) in [
+                (Fixed::SamplesReceived, &c.samples_in),
+                (Fixed::SamplesProcessed, &c.samples_processed),
+                (Fixed::Blocks, &c.blocks),
+                (Fixed::Spectra, &c.spectra),
+            ] {
+                put_u(
+                    &mut bufs[f as usize],
+                    fname(f),
+                    &t.ch,
+                    ChannelCounters::get(v),
                 );
-                put(
-                    &mut fixed,
-                    Fixed::Discontinuities,
-                    counter(labels(), c.discontinuities(r)),
+            }
+            for (r, labels) in &t.reasons {
+                let f = Fixed::SamplesDropped;
+                put_u(&mut bufs[f as usize], fname(f), labels, c.dropped(*r));
+                let f = Fixed::Discontinuities;
+                put_u(
+                    &mut bufs[f as usize],
+                    fname(f),
+                    labels,
+                    c.discontinuities(*r),
                 );
             }
 
             if let Some(board) = ch.alarm_board.load_full() {
-                put(
-                    &mut fixed,
-                    Fixed::HealthOk,
-                    gauge(ch_label(name), if board.health.ok { 1.0 } else { 0.0 }),
-                );
-                for (j, (a, v)) in spec.alarms.iter().zip(&board.alarms).enumerate() {
-                    let labels = || vec![label("channel", name), label("band", &a.name)];
-                    put(
-                        &mut fixed,
-                        Fixed::AlarmState,
-                        gauge(labels(), v.state.metric_value() as f64),
-                    );
-                    put(
-                        &mut fixed,
-                        Fixed::AlarmLatched,
-                        gauge(labels(), if v.latched { 1.0 } else { 0.0 }),
-                    );
-                    put(
-                        &mut fixed,
-                        Fixed::AlarmAcknowledged,
-                        gauge(labels(), if v.acknowledged { 1.0 } else { 0.0 }),
-                    );
-                    put(
-                        &mut fixed,
-                        Fixed::AlarmSince,
-                        gauge(labels(), v.since_unix_ns as f64 * 1e-9),
-                    );
-                    for (k, st) in crate::alarm::state::AlarmState::ALL.iter().enumerate() {
-                        let mut l = labels();
-                        l.push(label("to", st.as_str()));
-                        put(
-                            &mut fixed,
-                            Fixed::AlarmTransitions,
-                            counter(l, v.transitions[k]),
-                        );
+                let f = Fixed::HealthOk;
+                put_f(&mut bufs[f as usize], fname(f), &t.ch, bit(board.health.ok));
+                for &j in &t.alarm_order {
+                    let (Some(a), Some(v)) = (spec.alarms.get(j), board.alarms.get(j)) else {
+                        continue;
+                    };
+                    let labels = &t.alarm[j];
+                    for (f, x) in [
+                        (Fixed::AlarmState, v.state.metric_value() as f64),
+                        (Fixed::AlarmLatched, bit(v.latched)),
+                        (Fixed::AlarmAcknowledged, bit(v.acknowledged)),
+                        (Fixed::AlarmSince, v.since_unix_ns as f64 * 1e-9),
+                    ] {
+                        put_f(&mut bufs[f as usize], fname(f), labels, x);
                     }
-                    for (level, lim) in [("alert", v.alert_limit), ("danger", v.danger_limit)] {
+                    for (k, labels) in &t.to[j] {
+                        let f = Fixed::AlarmTransitions;
+                        put_u(&mut bufs[f as usize], fname(f), labels, v.transitions[*k]);
+                    }
+                    for (level, lim) in [v.alert_limit, v.danger_limit].into_iter().enumerate() {
                         let Some(lim) = lim else { continue };
-                        let mut l = labels();
-                        l.push(label("level", level));
+                        let labels = &t.level[j][level];
                         match (self.limit_slot[i].get(j).copied().flatten(), a.unit) {
-                            (Some(slot), Some(u)) => dynamic[slot].push(gauge(l, lim * u.to_si)),
-                            _ => put(&mut fixed, Fixed::AlarmLimitDimensionless, gauge(l, lim)),
+                            (Some(slot), Some(u)) => put_f(
+                                &mut bufs[nf + slot],
+                                &self.dynamic[slot].name,
+                                labels,
+                                lim * u.to_si,
+                            ),
+                            _ => {
+                                let f = Fixed::AlarmLimitDimensionless;
+                                put_f(&mut bufs[f as usize], fname(f), labels, lim);
+                            }
                         }
                     }
                 }
@@ -729,18 +989,19 @@ impl Collector for PipelineCollector {
             // One load per channel per scrape: every value below comes from
             // the same snapshot.
             let Some(snap) = ch.latest() else { continue };
-            put(
-                &mut fixed,
-                Fixed::SpectrumAge,
-                gauge(
-                    ch_label(name),
-                    now_ns.saturating_sub(snap.published_unix_ns) as f64 * 1e-9,
-                ),
+            let f = Fixed::SpectrumAge;
+            put_f(
+                &mut bufs[f as usize],
+                fname(f),
+                &t.ch,
+                now_ns.saturating_sub(snap.published_unix_ns) as f64 * 1e-9,
             );
-            put(
-                &mut fixed,
-                Fixed::LastSpectrum,
-                gauge(ch_label(name), snap.published_unix_ns as f64 * 1e-9),
+            let f = Fixed::LastSpectrum;
+            put_f(
+                &mut bufs[f as usize],
+                fname(f),
+                &t.ch,
+                snap.published_unix_ns as f64 * 1e-9,
             );
             let si = spec.unit.to_si;
             let o = &snap.overall;
@@ -749,85 +1010,102 @@ impl Collector for PipelineCollector {
                 .into_iter()
                 .enumerate()
             {
-                dynamic[first + k].push(gauge(ch_label(name), v * si));
-            }
-            put(
-                &mut fixed,
-                Fixed::CrestFactor,
-                gauge(ch_label(name), o.crest_factor),
-            );
-            for ((b, v), &slot) in spec.bands.iter().zip(&snap.bands).zip(&self.band_slot[i]) {
-                let labels = || vec![label("channel", name), label("band", &b.name)];
-                put(
-                    &mut fixed,
-                    Fixed::BandInService,
-                    gauge(labels(), if v.is_ok() { 1.0 } else { 0.0 }),
+                let slot = first + k;
+                put_f(
+                    &mut bufs[nf + slot],
+                    &self.dynamic[slot].name,
+                    &t.ch,
+                    v * si,
                 );
+            }
+            let f = Fixed::CrestFactor;
+            put_f(&mut bufs[f as usize], fname(f), &t.ch, o.crest_factor);
+            let n_bands = spec.bands.len().min(snap.bands.len());
+            for &j in &t.band_order {
+                if j >= n_bands {
+                    continue;
+                }
+                let (b, v, slot) = (&spec.bands[j], &snap.bands[j], self.band_slot[i][j]);
+                let labels = &t.band[j];
+                let f = Fixed::BandInService;
+                put_f(&mut bufs[f as usize], fname(f), labels, bit(v.is_ok()));
                 // A band without a value has no series: no invented zero.
                 if !v.is_ok() {
                     continue;
                 }
-                dynamic[slot].push(gauge(labels(), v.value * b.unit.to_si));
-                put(
-                    &mut fixed,
-                    Fixed::BandPeakFrequency,
-                    gauge(labels(), v.peak_hz),
+                put_f(
+                    &mut bufs[nf + slot],
+                    &self.dynamic[slot].name,
+                    labels,
+                    v.value * b.unit.to_si,
                 );
+                let f = Fixed::BandPeakFrequency;
+                put_f(&mut bufs[f as usize], fname(f), labels, v.peak_hz);
             }
         }
 
-        for m in &self.app.machines {
-            let labels = || {
-                vec![
-                    label("machine", &m.spec.name),
-                    label("source", m.spec.speed.as_str()),
-                ]
-            };
+        for &k in &self.machine_order {
+            let m = &self.app.machines[k];
+            let labels = &self.machines[k];
             let speed = m.speed_hz();
-            fixed[Fixed::MachineSpeedKnown as usize]
-                .push(gauge(labels(), if speed.is_some() { 1.0 } else { 0.0 }));
+            let f = Fixed::MachineSpeedKnown;
+            put_f(
+                &mut bufs[f as usize],
+                fname(f),
+                labels,
+                bit(speed.is_some()),
+            );
             if let Some(hz) = speed {
-                fixed[Fixed::MachineSpeed as usize].push(gauge(labels(), hz));
+                let f = Fixed::MachineSpeed;
+                put_f(&mut bufs[f as usize], fname(f), labels, hz);
             }
         }
 
         if let Some(io) = &self.app.alarm_io {
-            use std::sync::atomic::Ordering::Relaxed;
+            // In the order of the `kind` label's values.
             for (kind, w, d) in [
                 (
-                    "events",
-                    io.events_written.load(Relaxed),
-                    io.dropped_events(),
+                    "{kind=\"baselines\"}",
+                    io.baselines_written.load(Relaxed),
+                    io.dropped_baselines(),
                 ),
                 (
-                    "captures",
+                    "{kind=\"captures\"}",
                     io.captures_written.load(Relaxed),
                     io.dropped_captures(),
                 ),
                 (
-                    "baselines",
-                    io.baselines_written.load(Relaxed),
-                    io.dropped_baselines(),
+                    "{kind=\"events\"}",
+                    io.events_written.load(Relaxed),
+                    io.dropped_events(),
                 ),
             ] {
-                fixed[Fixed::AlarmRecordsWritten as usize]
-                    .push(counter(vec![label("kind", kind)], w));
-                fixed[Fixed::AlarmRecordsDropped as usize]
-                    .push(counter(vec![label("kind", kind)], d));
+                let f = Fixed::AlarmRecordsWritten;
+                put_u(&mut bufs[f as usize], fname(f), kind, w);
+                let f = Fixed::AlarmRecordsDropped;
+                put_u(&mut bufs[f as usize], fname(f), kind, d);
             }
-            fixed[Fixed::AlarmWriteErrors as usize]
-                .push(counter(vec![], io.write_errors.load(Relaxed)));
-            fixed[Fixed::AlarmCapturesPruned as usize]
-                .push(counter(vec![], io.captures_pruned.load(Relaxed)));
+            let f = Fixed::AlarmWriteErrors;
+            put_u(
+                &mut bufs[f as usize],
+                fname(f),
+                "",
+                io.write_errors.load(Relaxed),
+            );
+            let f = Fixed::AlarmCapturesPruned;
+            put_u(
+                &mut bufs[f as usize],
+                fname(f),
+                "",
+                io.captures_pruned.load(Relaxed),
+            );
         }
 
-        for s in &self.app.sources {
-            use std::sync::atomic::Ordering::Relaxed;
-            let src = || vec![label("source", &s.name)];
-            fixed[Fixed::SourceUp as usize].push(gauge(
-                vec![label("source", &s.name), label("kind", s.kind)],
-                if s.is_connected() { 1.0 } else { 0.0 },
-            ));
+        for &k in &self.source_order {
+            let s = &self.app.sources[k];
+            let (src, up) = &self.sources[k];
+            let f = Fixed::SourceUp;
+            put_f(&mut bufs[f as usize], fname(f), up, bit(s.is_connected()));
             for (f, c) in [
                 (Fixed::SourceFrames, &s.frames),
                 (Fixed::SourceBytes, &s.bytes),
@@ -838,30 +1116,51 @@ impl Collector for PipelineCollector {
                 (Fixed::SourceMissingSamples, &s.samples_missing),
                 (Fixed::SourceLateFrames, &s.frames_late),
             ] {
-                fixed[f as usize].push(counter(src(), c.load(Relaxed)));
+                put_u(&mut bufs[f as usize], fname(f), src, c.load(Relaxed));
             }
-            for (reason, n) in s.rejected() {
-                fixed[Fixed::SourceRejected as usize].push(counter(
-                    vec![label("source", &s.name), label("reason", reason)],
-                    n,
-                ));
+            let mut rejected = s.rejected();
+            rejected.sort_by_key(|&(r, _)| r);
+            for (reason, n) in rejected {
+                let f = Fixed::SourceRejected;
+                let labels = label_set(&[("source", &s.name), ("reason", reason)]);
+                put_u(&mut bufs[f as usize], fname(f), &labels, n);
             }
             let last = s.last_frame_unix_ns.load(Relaxed);
             if last != 0 {
-                fixed[Fixed::SourceLastFrame as usize].push(gauge(src(), last as f64 * 1e-9));
+                let f = Fixed::SourceLastFrame;
+                put_f(&mut bufs[f as usize], fname(f), src, last as f64 * 1e-9);
             }
         }
 
-        let mut out = Vec::with_capacity(FIXED.len() + self.dynamic.len());
-        for ((_, name, help, kind, _), metrics) in FIXED.iter().zip(fixed) {
-            if !metrics.is_empty() {
-                out.push(family(name, help, *kind, metrics));
+        // Families in name order, the static ones merged in.
+        let head = |i: usize| {
+            if i < nf {
+                &self.fixed[i]
+            } else {
+                &self.dynamic[i - nf]
+            }
+        };
+        let total: usize = self
+            .family_order
+            .iter()
+            .filter(|&&i| !bufs[i].is_empty())
+            .map(|&i| head(i).head.len() + bufs[i].len())
+            .sum::<usize>()
+            + statics.iter().map(|(_, t)| t.len()).sum::<usize>();
+        let mut out = Vec::with_capacity(total);
+        let mut st = statics.iter().peekable();
+        for &i in &self.family_order {
+            let h = head(i);
+            while let Some((_, text)) = st.next_if(|(name, _)| name.as_str() < h.name.as_str()) {
+                out.extend_from_slice(text);
+            }
+            if !bufs[i].is_empty() {
+                out.extend_from_slice(h.head.as_bytes());
+                out.extend_from_slice(bufs[i].as_bytes());
             }
         }
-        for (def, metrics) in self.dynamic.iter().zip(dynamic) {
-            if !metrics.is_empty() {
-                out.push(family(&def.name, &def.help, def.kind, metrics));
-            }
+        for (_, text) in st {
+            out.extend_from_slice(text);
         }
         out
     }

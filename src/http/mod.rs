@@ -88,8 +88,24 @@ async fn count_unmatched(State(st): State<HttpState>) -> ApiError {
     e
 }
 
+/// Serves the cached body when it is fresh; otherwise renders on a
+/// blocking thread (a render of thousands of channels takes milliseconds
+/// and must not hold up the async workers serving other routes).
 async fn metrics_handler(State(st): State<HttpState>) -> Response {
-    match st.metrics.render() {
+    let body = match st.metrics.cached() {
+        Some(b) => Ok(b),
+        None => {
+            let m = st.metrics.clone();
+            match tokio::task::spawn_blocking(move || m.render()).await {
+                Ok(r) => r,
+                Err(e) => {
+                    tracing::error!(error = %e, "the /metrics render task failed");
+                    return ApiError::Internal.into_response();
+                }
+            }
+        }
+    };
+    match body {
         Ok(body) => (
             StatusCode::OK,
             [(header::CONTENT_TYPE, metrics::CONTENT_TYPE)],
@@ -103,5 +119,7 @@ async fn metrics_handler(State(st): State<HttpState>) -> Response {
     }
 }
 
+#[cfg(test)]
+mod metrics_proto;
 #[cfg(test)]
 mod tests;
