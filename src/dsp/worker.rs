@@ -12,7 +12,7 @@
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
 use std::thread::{self, JoinHandle, Thread};
-use std::time::Duration;
+use std::time::{Duration, Instant};
 
 use crate::alarm::engine::ChannelAlarms;
 use crate::config::{SpectrumKind, SpeedSource};
@@ -78,6 +78,9 @@ pub struct ChannelDsp {
     /// Whether to wait for all the samples of the next result (see
     /// [`ChannelDsp::set_gather`]).
     gather: bool,
+    /// When the channel began to wait for a result's samples, and the
+    /// longest it may wait.
+    waiting: Option<(Instant, Duration)>,
     alarms: Option<Box<ChannelAlarms>>,
 }
 
@@ -171,6 +174,7 @@ impl ChannelDsp {
             seq: 0,
             blocks_per_turn: MAX_BLOCKS_PER_TURN,
             gather: false,
+            waiting: None,
             alarms: None,
             reader,
             shared,
@@ -193,8 +197,12 @@ impl ChannelDsp {
     /// memory for every block: with many channels that is most of the cost
     /// outside the FFT. The daemon's workers and the benchmark run with it
     /// on; a channel that measures speed (tach, peak) never waits, so the
-    /// speed the other channels use is as fresh as before. Off by default
-    /// (the replay tool and tests feed samples one by one and read at once).
+    /// speed the other channels use is as fresh as before. A channel never
+    /// waits longer than twice the time its samples take to arrive at the
+    /// nominal rate, plus 0.1 s: when a stream stops (or slows), what it
+    /// sent is still read, checked and counted as processed within about a
+    /// second. Off by default (the replay tool feeds samples one by one and
+    /// reads at once).
     pub fn set_gather(&mut self, gather: bool) {
         self.gather = gather && self.speed_roles.is_empty();
     }
@@ -206,6 +214,35 @@ impl ChannelDsp {
         let blocks = (self.averager.blocks_to_result() as usize).min(self.blocks_per_turn);
         let need = (self.frame.len() - self.filled) + (blocks - 1) * self.hop();
         need.min(self.reader.capacity() / 2)
+    }
+
+    /// Samples waiting in the channel's ring, not yet read.
+    pub fn backlog(&self) -> usize {
+        self.reader.occupied()
+    }
+
+    /// Whether to leave the ring alone this turn (gather mode).
+    fn should_wait(&mut self) -> bool {
+        let need = self.samples_for_next_result();
+        let have = self.reader.occupied();
+        if have >= need || have == 0 {
+            self.waiting = None;
+            return false;
+        }
+        let now = Instant::now();
+        match self.waiting {
+            None => {
+                let fs = self.shared.spec.sample_rate_hz.max(1.0);
+                let most = Duration::from_secs_f64(2.0 * (need - have) as f64 / fs + 0.1);
+                self.waiting = Some((now, most));
+                true
+            }
+            Some((since, most)) if now.duration_since(since) < most => true,
+            Some(_) => {
+                self.waiting = None;
+                false
+            }
+        }
     }
 
     pub fn shared(&self) -> &Arc<ChannelShared> {
@@ -233,7 +270,7 @@ impl ChannelDsp {
     pub fn poll(&mut self) -> bool {
         let mut worked = false;
         let mut blocks = 0;
-        if self.gather && self.reader.occupied() < self.samples_for_next_result() {
+        if self.gather && self.should_wait() {
             // Not all there yet; marks wait in the ring with their samples.
             blocks = self.blocks_per_turn;
         }
