@@ -8,11 +8,9 @@
 //! - `peak-hold`: the largest value per line over `count` blocks.
 //! - `none`: every block as it is.
 
-use realfft::num_complex::Complex;
-
 use crate::config::AveragingMode;
 use crate::dsp::simd::vectorized;
-use crate::dsp::spectrum::fold_power;
+use crate::dsp::spectrum::Lines;
 
 /// A power spectrum to average, stored or still as FFT lines.
 trait Spectrum {
@@ -37,12 +35,12 @@ impl Spectrum for Stored<'_> {
     }
 }
 
-struct Lines<'a>(&'a [Complex<f32>], f32);
+struct Power<'a>(&'a Lines<'a>, f32);
 
-impl Spectrum for Lines<'_> {
+impl Spectrum for Power<'_> {
     #[inline]
     fn fold(&self, acc: &mut [f32], op: impl Fn(f32, f32) -> f32 + Copy) {
-        fold_power(self.0, self.1, acc, op);
+        self.0.fold_power(self.1, acc, op);
     }
 }
 
@@ -81,8 +79,8 @@ impl Averager {
     /// Adds the power spectrum of the FFT lines `x` (see
     /// [`fold_power`]) without storing it first: the power of each line
     /// goes straight into the running average.
-    pub fn push_lines(&mut self, x: &[Complex<f32>], norm: f32) -> bool {
-        self.push_with(Lines(x, norm))
+    pub fn push_lines(&mut self, x: &Lines<'_>, norm: f32) -> bool {
+        self.push_with(Power(x, norm))
     }
 
     /// The averaging itself, for a spectrum however it is given.

@@ -387,7 +387,7 @@ impl ChannelDsp {
         let (averager, norm) = (&mut self.averager, self.engine.norm());
         let mut ready = false;
         self.engine.transform(&self.frame, Some(mean), |x| {
-            ready = averager.push_lines(x, norm);
+            ready = averager.push_lines(&x, norm);
         });
         self.shared.counters.blocks.fetch_add(1, Ordering::Relaxed);
         if let Some(e) = &mut self.envelope {
@@ -396,7 +396,7 @@ impl ChannelDsp {
             // Same mode and count as the raw averager: both are ready on
             // the same block.
             e.spectrum.transform(&e.signal, None, |x| {
-                averager.push_lines(x, norm);
+                averager.push_lines(&x, norm);
             });
         }
         if ready {
