@@ -132,7 +132,7 @@ def main():
         x.astype("<f4").tofile(sig)
         cmd = [a.bandwatch, "bench", "--only", "welch", "--signal", sig,
                "--signal-channels", str(a.channels), "--n", str(n),
-               "--repeats", "1", "--json", out]
+               "--repeats", "3", "--json", out]
         for _ in range(a.repeats):
             subprocess.run(cmd, check=True)
             with open(out) as f:
