@@ -2207,7 +2207,7 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
             });
         }
         notes.push(format!(
-            "ingest: {LOAD_CHANNELS} channels of i16 BWF1 ({INGEST_FRAME_SAMPLES} instants a frame), per-channel rate doubled from 25.6 kHz until a step loses a sample or ends with the DSP more than {MAX_LAG_S} s behind, then bisected; sender, source and 2 DSP workers share the cores"
+            "ingest: {LOAD_CHANNELS} channels of i16 BWF1 ({INGEST_FRAME_SAMPLES} instants a frame), per-channel rate doubled from 25.6 kHz until a step loses a sample or ends with the DSP more than {MAX_LAG_S} s behind (beyond the samples held back for the next result), then bisected; sender, source and 2 DSP workers share the cores"
         ));
     }
 
