@@ -464,6 +464,10 @@ pub struct DspRig {
     next: u64,
     /// Samples per channel per round.
     chunk: usize,
+    /// Untimed rounds still to run before the first measurement: enough
+    /// for every ring to wrap once, so that its pages are touched (as a
+    /// daemon's are after its first seconds) and not counted as work.
+    warm_up: usize,
 }
 
 impl DspRig {
@@ -495,6 +499,7 @@ impl DspRig {
             // One hop per channel per round: every channel computes one
             // block per round, as a worker fed in real time does.
             chunk: spec.hop.min(ring_capacity(config, spec)),
+            warm_up: ring_capacity(config, spec).div_ceil(spec.hop.max(1)) + 2,
             shared,
             dsps,
             writers,
@@ -534,7 +539,7 @@ impl DspRig {
     /// Input samples per second over at least `min` of timed work, after
     /// warm-up rounds, side by side with the FFT: (rate, FFT rate).
     fn rate(&mut self, fft: &mut FftBench<f32>, min: Duration) -> Result<(f64, f64), BenchError> {
-        for _ in 0..4 {
+        for _ in 0..std::mem::take(&mut self.warm_up).max(4) {
             self.round();
         }
         let hop = self.shared[0].spec.hop;
@@ -577,6 +582,8 @@ struct PathRig {
     next: u64,
     instants: usize,
     channels: usize,
+    /// As [`DspRig`]'s: rounds that wrap every ring once, untimed.
+    warm_up: usize,
 }
 
 /// Encodes `instants` instants of `channels` channels as BWF1 frames of
@@ -700,6 +707,7 @@ impl PathRig {
             bytes,
             frame_bytes,
             next: 0,
+            warm_up: ring_capacity(config, spec).div_ceil(instants.max(1)) + 2,
             instants,
             channels,
         }
@@ -719,7 +727,7 @@ impl PathRig {
     }
 
     fn rate(&mut self, fft: &mut FftBench<f32>, min: Duration) -> Result<(f64, f64), BenchError> {
-        for _ in 0..4 {
+        for _ in 0..std::mem::take(&mut self.warm_up).max(4) {
             self.round();
         }
         let hop = self.shared[0].spec.hop;
