@@ -90,29 +90,24 @@ pub fn unit_weights(channel: &ChannelSpec, unit: Unit) -> Vec<f32> {
 /// unit to the same unit on the same lines: one table in cache for a
 /// thousand alike channels, not a thousand. Made once per process (the
 /// configuration fixes them), read-only after.
-#[derive(Default)]
-pub struct WeightCache;
-
-impl WeightCache {
-    pub fn get(&mut self, channel: &ChannelSpec, unit: Unit) -> Arc<[f32]> {
-        type Key = (&'static str, &'static str, u64, usize, u64);
-        type Table = Mutex<HashMap<Key, Arc<[f32]>>>;
-        static TABLES: OnceLock<Table> = OnceLock::new();
-        let key = (
-            channel.unit.symbol,
-            unit.symbol,
-            channel.df_hz().to_bits(),
-            channel.bins(),
-            channel.integration_low_cut_hz.to_bits(),
-        );
-        let tables = TABLES.get_or_init(|| Mutex::new(HashMap::new()));
-        match tables.lock() {
-            Ok(mut t) => t
-                .entry(key)
-                .or_insert_with(|| unit_weights(channel, unit).into())
-                .clone(),
-            Err(_) => unit_weights(channel, unit).into(),
-        }
+pub fn shared_weights(channel: &ChannelSpec, unit: Unit) -> Arc<[f32]> {
+    type Key = (&'static str, &'static str, u64, usize, u64);
+    type Table = Mutex<HashMap<Key, Arc<[f32]>>>;
+    static TABLES: OnceLock<Table> = OnceLock::new();
+    let key = (
+        channel.unit.symbol,
+        unit.symbol,
+        channel.df_hz().to_bits(),
+        channel.bins(),
+        channel.integration_low_cut_hz.to_bits(),
+    );
+    let tables = TABLES.get_or_init(|| Mutex::new(HashMap::new()));
+    match tables.lock() {
+        Ok(mut t) => t
+            .entry(key)
+            .or_insert_with(|| unit_weights(channel, unit).into())
+            .clone(),
+        Err(_) => unit_weights(channel, unit).into(),
     }
 }
 
@@ -143,11 +138,11 @@ impl BandPlan {
     /// Plans a band of `channel`; `noise_bw_lines` is
     /// `SpectrumEngine::noise_bandwidth_lines`.
     pub fn new(channel: &ChannelSpec, band: &BandSpec, noise_bw_lines: f64) -> BandPlan {
-        let weights = unit_weights(channel, band.unit).into();
+        let weights = shared_weights(channel, band.unit);
         Self::with_weights(channel, band, noise_bw_lines, weights)
     }
 
-    /// As [`new`](Self::new), with weights from a [`WeightCache`].
+    /// As [`new`](Self::new), with the given weights (from [`shared_weights`]).
     pub fn with_weights(
         channel: &ChannelSpec,
         band: &BandSpec,

@@ -18,7 +18,7 @@ use crate::alarm::engine::ChannelAlarms;
 use crate::config::{SpectrumKind, SpeedSource};
 use crate::counters::GapReason;
 use crate::dsp::average::Averager;
-use crate::dsp::bands::{BandPlan, BandValue, WeightCache};
+use crate::dsp::bands::{shared_weights, BandPlan, BandValue};
 use crate::dsp::envelope::EnvelopeEngine;
 use crate::dsp::spectrum::SpectrumEngine;
 use crate::dsp::speed::{track_peak, TachDetector};
@@ -98,11 +98,10 @@ impl ChannelDsp {
         let spec = shared.spec.clone();
         let engine = SpectrumEngine::new(spec.window, spec.block, spec.nfft, spec.detrend);
         let nbw = engine.noise_bandwidth_lines();
-        let mut cache = WeightCache;
         let bands: Vec<BandPlan> = spec
             .bands
             .iter()
-            .map(|b| BandPlan::with_weights(&spec, b, nbw, cache.get(&spec, b.unit)))
+            .map(|b| BandPlan::with_weights(&spec, b, nbw, shared_weights(&spec, b.unit)))
             .collect();
         let machine = spec
             .machine

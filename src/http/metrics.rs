@@ -523,6 +523,25 @@ pub(crate) const OVERALL: [(&str, &str); 4] = [
     ("peak_to_peak", "Maximum minus minimum of the newest block"),
 ];
 
+/// Name of a band value's family: `bandwatch_band_<measure>_<si unit>`.
+pub(crate) fn band_family(measure: Measure, q: Quantity) -> String {
+    format!("bandwatch_band_{}_{}", measure.as_str(), q.metric_suffix())
+}
+
+/// Help text of a band value's family.
+pub(crate) fn band_help(measure: Measure, q: Quantity) -> String {
+    match measure {
+        Measure::Rms => format!(
+            "RMS level of the band in the latest averaged spectrum, in {}.",
+            si_words(q)
+        ),
+        Measure::Peak => format!(
+            "Peak amplitude of the largest line of the band in the latest averaged spectrum, in {}.",
+            si_words(q)
+        ),
+    }
+}
+
 pub(crate) fn si_words(q: Quantity) -> &'static str {
     match q {
         Quantity::Displacement => "metres",
@@ -762,24 +781,8 @@ impl PipelineCollector {
                 .iter()
                 .map(|b| {
                     let q = b.unit.quantity;
-                    let help = match b.measure {
-                        Measure::Rms => format!(
-                            "RMS level of the band in the latest averaged spectrum, in {}.",
-                            si_words(q)
-                        ),
-                        Measure::Peak => format!(
-                            "Peak amplitude of the largest line of the band in the latest averaged spectrum, in {}.",
-                            si_words(q)
-                        ),
-                    };
-                    slot(
-                        format!(
-                            "bandwatch_band_{}_{}",
-                            b.measure.as_str(),
-                            q.metric_suffix()
-                        ),
-                        help,
-                    )
+                    let help = band_help(b.measure, q);
+                    slot(band_family(b.measure, q), help)
                 })
                 .collect();
             band_slot.push(bands);

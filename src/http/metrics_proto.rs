@@ -12,8 +12,7 @@ use prometheus::proto::{
 };
 use prometheus::{Encoder, Gauge, IntGaugeVec, Opts, Registry, TextEncoder};
 
-use super::metrics::{si_words, Fixed, FIXED, OVERALL};
-use crate::config::Measure;
+use super::metrics::{band_family, band_help, si_words, Fixed, FIXED, OVERALL};
 use crate::counters::{ChannelCounters, GapReason};
 use crate::snapshot::AppState;
 
@@ -115,25 +114,8 @@ impl ProtoCollector {
                 .iter()
                 .map(|b| {
                     let q = b.unit.quantity;
-                    let help = match b.measure {
-                        Measure::Rms => format!(
-                            "RMS level of the band in the latest averaged spectrum, in {}.",
-                            si_words(q)
-                        ),
-                        Measure::Peak => format!(
-                            "Peak amplitude of the largest line of the band in the latest averaged spectrum, in {}.",
-                            si_words(q)
-                        ),
-                    };
-                    slot(
-                        format!(
-                            "bandwatch_band_{}_{}",
-                            b.measure.as_str(),
-                            q.metric_suffix()
-                        ),
-                        help,
-                        &["channel", "band"],
-                    )
+                    let help = band_help(b.measure, q);
+                    slot(band_family(b.measure, q), help, &["channel", "band"])
                 })
                 .collect();
             band_slot.push(bands);

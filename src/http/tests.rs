@@ -774,8 +774,8 @@ fn golden_clock() -> u64 {
 /// `tests/golden/metrics.prom` (which `tests/external/prometheus_scrape.sh`
 /// also runs through `promtool check metrics`). Set
 /// `BANDWATCH_BLESS=1` to rewrite the file after a deliberate change.
-#[test]
-fn golden_exposition() {
+/// The fixed state behind `tests/golden/metrics.prom`.
+fn golden_state() -> Arc<AppState> {
     let cfg = parse_str(CONFIG).expect("valid");
     let mut app = AppState::new(&cfg);
     app.started_unix_ns = TS_NS - 3_600_000_000_000;
@@ -789,6 +789,12 @@ fn golden_exposition() {
     app.sources[0]
         .last_frame_unix_ns
         .store(TS_NS + 99_900_000_000, Ordering::Relaxed);
+    app
+}
+
+#[test]
+fn golden_exposition() {
+    let app = golden_state();
     let m = metrics::Metrics::with_clock(app, golden_clock);
     let text = String::from_utf8(m.render_fresh().expect("render")).expect("utf-8");
     let text = text.replace(env!("CARGO_PKG_VERSION"), "VERSION");
@@ -967,15 +973,7 @@ fn rich_state() -> Arc<AppState> {
 /// direct encoder. Everything finite must come out byte for byte the same.
 #[test]
 fn direct_encoder_matches_the_prometheus_crate() {
-    // The golden state.
-    let cfg = parse_str(CONFIG).expect("valid");
-    let mut app = AppState::new(&cfg);
-    app.started_unix_ns = TS_NS - 3_600_000_000_000;
-    let app = Arc::new(app);
-    publish(&app, 0, snapshot(TS_NS + 99_500_000_000));
-    app.sources[0]
-        .last_frame_unix_ns
-        .store(TS_NS + 99_900_000_000, Ordering::Relaxed);
+    let app = golden_state();
     let ours = metrics::Metrics::with_clock(app.clone(), golden_clock)
         .render_fresh()
         .expect("render");
