@@ -3,7 +3,9 @@
 //! metrics exporter and the API only read them. Plain relaxed atomics: each
 //! counter is monotonic on its own, no two need to agree at an instant.
 
-use std::sync::atomic::{AtomicU64, Ordering};
+use std::collections::BTreeMap;
+use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
+use std::sync::Mutex;
 
 /// Why a run of samples did not reach the DSP, or why a block was cut short.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
@@ -70,6 +72,78 @@ impl ChannelCounters {
     pub fn discontinuities(&self, reason: GapReason) -> u64 {
         self.discontinuities[reason.slot()].load(Ordering::Relaxed)
     }
+    pub fn get(counter: &AtomicU64) -> u64 {
+        counter.load(Ordering::Relaxed)
+    }
+}
+
+/// Counters and live state of one source, written by its task; metrics and
+/// the API read them. The source-side twin of [`ChannelCounters`].
+pub struct SourceCounters {
+    pub name: String,
+    pub kind: &'static str,
+    /// A peer is connected / the port is open / datagrams are arriving.
+    pub connected: AtomicBool,
+    /// Successful connects (TCP), accepted connections, opens (serial).
+    pub connections: AtomicU64,
+    /// Good frames (BWF1) or batches (lines, raw, sim).
+    pub frames: AtomicU64,
+    /// Bytes received.
+    pub bytes: AtomicU64,
+    /// Frames whose CRC did not match.
+    pub crc_errors: AtomicU64,
+    /// Times the stream decoder found the next magic after bad bytes.
+    pub resyncs: AtomicU64,
+    /// Bytes thrown away by the decoder (bad frames, junk, partial frames).
+    pub bytes_skipped: AtomicU64,
+    /// Instants lost in gaps of the sequence (first_sample jumps).
+    pub samples_missing: AtomicU64,
+    /// Frames dropped because they were duplicates or arrived late.
+    pub frames_late: AtomicU64,
+    /// Time of the last good frame, ns since the Unix epoch (0: never).
+    pub last_frame_unix_ns: AtomicU64,
+    /// Frames or connections rejected, by reason (a metric label). Written
+    /// only on the error path, so a mutex is fine here.
+    rejected: Mutex<BTreeMap<&'static str, u64>>,
+}
+
+impl SourceCounters {
+    pub fn new(name: &str, kind: &'static str) -> SourceCounters {
+        SourceCounters {
+            name: name.to_string(),
+            kind,
+            connected: AtomicBool::new(false),
+            connections: AtomicU64::new(0),
+            frames: AtomicU64::new(0),
+            bytes: AtomicU64::new(0),
+            crc_errors: AtomicU64::new(0),
+            resyncs: AtomicU64::new(0),
+            bytes_skipped: AtomicU64::new(0),
+            samples_missing: AtomicU64::new(0),
+            frames_late: AtomicU64::new(0),
+            last_frame_unix_ns: AtomicU64::new(0),
+            rejected: Mutex::new(BTreeMap::new()),
+        }
+    }
+
+    pub fn is_connected(&self) -> bool {
+        self.connected.load(Ordering::Relaxed)
+    }
+
+    pub fn add_rejected(&self, reason: &'static str, n: u64) {
+        if let Ok(mut m) = self.rejected.lock() {
+            *m.entry(reason).or_insert(0) += n;
+        }
+    }
+
+    /// Rejections so far, by reason.
+    pub fn rejected(&self) -> Vec<(&'static str, u64)> {
+        self.rejected
+            .lock()
+            .map(|m| m.iter().map(|(k, v)| (*k, *v)).collect())
+            .unwrap_or_default()
+    }
+
     pub fn get(counter: &AtomicU64) -> u64 {
         counter.load(Ordering::Relaxed)
     }

@@ -107,7 +107,7 @@ enum Command {
         json: bool,
     },
     /// Measure stage throughput, ingest, HTTP latency and memory side by side.
-    Bench(bandwatch::bench::BenchArgs),
+    Bench(bandwatch::tools::bench::BenchArgs),
 }
 
 fn main() -> ExitCode {
@@ -115,7 +115,7 @@ fn main() -> ExitCode {
     init_tracing(cli.log_format);
     match cli.command {
         Command::Selftest { json } => {
-            use bandwatch::selftest;
+            use bandwatch::tools::selftest;
             use std::io::Write as _;
             let checks = selftest::run();
             let text = if json {
@@ -131,7 +131,7 @@ fn main() -> ExitCode {
                 ExitCode::FAILURE
             }
         }
-        Command::Bench(args) => match bandwatch::bench::run(&args) {
+        Command::Bench(args) => match bandwatch::tools::bench::run(&args) {
             Ok(()) => ExitCode::SUCCESS,
             Err(e) => {
                 eprintln!("bench: {e}");
@@ -249,8 +249,8 @@ fn main() -> ExitCode {
                 Ok(state) => {
                     let rejected = state.rejected();
                     tracing::info!(
-                        frames = bandwatch::snapshot::SourceShared::get(&state.frames),
-                        missing = bandwatch::snapshot::SourceShared::get(&state.samples_missing),
+                        frames = bandwatch::counters::SourceCounters::get(&state.frames),
+                        missing = bandwatch::counters::SourceCounters::get(&state.samples_missing),
                         ?rejected,
                         "replay done"
                     );

@@ -9,8 +9,8 @@ use alarm_common::{names, TempDir};
 use bandwatch::alarm::baseline::{
     load, path_for, remove, save, Baseline, BaselineError, Learner, LimitRule, MIN_VALUES,
 };
-use bandwatch::alarm::config::RawAlarm;
 use bandwatch::alarm::state::{Direction, Input};
+use bandwatch::config::alarms::RawAlarm;
 
 /// Two-pass mean and sample σ, shifted by the first value (a plain sum of
 /// values near 1e7 would itself lose the digits NumAcc4 tests): a
@@ -136,10 +136,10 @@ fn alarm_spec_takes_its_limits_from_the_baseline() {
     .unwrap();
     let spec = raw.build("alarm").unwrap();
     assert!(spec.uses_baseline());
-    let learning = spec.machine_spec(None, 1e-3);
+    let learning = spec.levels(None, 1e-3);
     assert_eq!(learning.alert.unwrap().limit, None, "off while learning");
     let b = baseline(2.0, 0.25);
-    let m = spec.machine_spec(Some(&b), 1e-3);
+    let m = spec.levels(Some(&b), 1e-3);
     assert_eq!(m.alert.unwrap().limit, Some(2.75));
     assert_eq!(m.danger.unwrap().limit, Some(8.0));
 }

@@ -3,9 +3,9 @@
 
 #![allow(clippy::unwrap_used)] // tests may unwrap: a panic is a failed test
 
-use bandwatch::alarm::config::{LimitSource, RawAlarm, RawAlarms, RawHealth};
 use bandwatch::alarm::state::Direction;
 use bandwatch::alarm::token::TokenSource;
+use bandwatch::config::alarms::{LimitSource, RawAlarm, RawAlarms, RawHealth};
 
 fn alarm(text: &str) -> RawAlarm {
     toml::from_str(text).unwrap_or_else(|e| panic!("{text}: {e}"))
@@ -38,7 +38,7 @@ fn a_full_band_alarm() {
     assert_eq!(al.direction, Direction::High);
     let d = s.danger.unwrap();
     assert_eq!((d.hysteresis, d.on_delay_s, d.off_delay_s), (0.5, 1.0, 5.0));
-    let m = s.machine_spec(None, 1.0);
+    let m = s.levels(None, 1.0);
     assert_eq!(m.danger.unwrap().limit, Some(7.1));
 }
 

@@ -10,7 +10,7 @@
 use bandwatch::alarm::health::{
     BiasSpec, ClippingSpec, FlatlineSpec, GapSpec, HealthDetector, HealthSpec, Reason, StaleSpec,
 };
-use bandwatch::alarm::state::{AlarmMachine, AlarmState, Direction, Input, LevelSpec, MachineSpec};
+use bandwatch::alarm::state::{AlarmLevels, AlarmMachine, AlarmState, Direction, Input, LevelSpec};
 
 const FS: f64 = 1000.0;
 /// Samples per feed: 50 ms, not a multiple of the 0.1 s evaluation window.
@@ -58,7 +58,7 @@ impl Rig {
         Rig {
             h: HealthDetector::new(spec, FS, 0.0),
             alarm: AlarmMachine::new(
-                &MachineSpec {
+                &AlarmLevels {
                     alert: Some(lvl),
                     danger: None,
                     latching: false,

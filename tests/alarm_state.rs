@@ -7,8 +7,8 @@
 #![allow(clippy::unwrap_used)] // tests may unwrap: a panic is a failed test
 
 use bandwatch::alarm::state::{
-    AckError, AckOutcome, AlarmMachine, AlarmState, Cause, Direction, Input, LevelSpec,
-    MachineSpec, Severity,
+    AckError, AckOutcome, AlarmLevels, AlarmMachine, AlarmState, Cause, Direction, Input,
+    LevelSpec, Severity,
 };
 use proptest::prelude::*;
 
@@ -294,7 +294,7 @@ proptest! {
 
     #[test]
     fn machine_matches_reference((alert, danger, latching, ops) in case()) {
-        let spec = MachineSpec {
+        let spec = AlarmLevels {
             alert: alert.map(|(s, _)| s),
             danger: danger.map(|(s, _)| s),
             latching,
@@ -357,7 +357,7 @@ proptest! {
     #[test]
     fn memoryless_when_nothing_delays(values in prop::collection::vec(0.0f64..12.0, 1..100)) {
         let lvl = |limit| LevelSpec { limit: Some(limit), direction: Direction::High, hysteresis: 0.0, on_delay_s: 0.0, off_delay_s: 0.0 };
-        let mut m = AlarmMachine::new(&MachineSpec { alert: Some(lvl(5.0)), danger: Some(lvl(8.0)), latching: false }, 0.0);
+        let mut m = AlarmMachine::new(&AlarmLevels { alert: Some(lvl(5.0)), danger: Some(lvl(8.0)), latching: false }, 0.0);
         for (i, v) in values.iter().enumerate() {
             m.evaluate(i as f64, Input::Value(*v));
             let want = if *v >= 8.0 { AlarmState::Danger } else if *v >= 5.0 { AlarmState::Alert } else { AlarmState::Normal };
@@ -371,7 +371,7 @@ proptest! {
     fn trips_only_after_a_full_on_delay(ops in prop::collection::vec(op_strategy(), 1..200)) {
         let d = 1.0;
         let lvl = LevelSpec { limit: Some(5.0), direction: Direction::High, hysteresis: 0.0, on_delay_s: d, off_delay_s: 0.0 };
-        let mut m = AlarmMachine::new(&MachineSpec { alert: Some(lvl), danger: None, latching: false }, 0.0);
+        let mut m = AlarmMachine::new(&AlarmLevels { alert: Some(lvl), danger: None, latching: false }, 0.0);
         let mut t = 0.0;
         let mut run_start: Option<f64> = None;
         for op in ops {
@@ -419,7 +419,7 @@ fn dither(h: f64, on: f64, off: f64) -> Vec<(f64, AlarmState)> {
         off_delay_s: off,
     };
     let mut m = AlarmMachine::new(
-        &MachineSpec {
+        &AlarmLevels {
             alert: Some(lvl),
             danger: None,
             latching: false,
@@ -490,7 +490,7 @@ fn high(limit: f64, on: f64) -> LevelSpec {
 #[test]
 fn gaps_never_trip() {
     let mut m = AlarmMachine::new(
-        &MachineSpec {
+        &AlarmLevels {
             alert: Some(high(5.0, 0.0)),
             danger: Some(high(8.0, 0.0)),
             latching: true,
@@ -506,7 +506,7 @@ fn gaps_never_trip() {
 #[test]
 fn a_gap_restarts_the_on_delay() {
     let mut m = AlarmMachine::new(
-        &MachineSpec {
+        &AlarmLevels {
             alert: Some(high(5.0, 3.0)),
             danger: None,
             latching: false,
@@ -526,7 +526,7 @@ fn a_gap_restarts_the_on_delay() {
 #[test]
 fn inhibit_cancels_a_pending_trip_and_shows_inhibited() {
     let mut m = AlarmMachine::new(
-        &MachineSpec {
+        &AlarmLevels {
             alert: Some(high(5.0, 2.0)),
             danger: None,
             latching: false,
@@ -551,7 +551,7 @@ fn inhibit_cancels_a_pending_trip_and_shows_inhibited() {
 
 #[test]
 fn latched_alarm_restored_stays_until_ack() {
-    let spec = MachineSpec {
+    let spec = AlarmLevels {
         alert: Some(high(5.0, 0.0)),
         danger: Some(high(8.0, 0.0)),
         latching: true,

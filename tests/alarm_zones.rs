@@ -9,8 +9,8 @@
 
 #![allow(clippy::unwrap_used)] // tests may unwrap: a panic is a failed test
 
-use bandwatch::alarm::config::RawAlarm;
-use bandwatch::alarm::zones::{boundaries, MachineGroup, Support, Zone, ZonePreset, GUIDANCE};
+use bandwatch::config::alarms::RawAlarm;
+use bandwatch::config::zones::{boundaries, MachineGroup, Support, Zone, ZonePreset, GUIDANCE};
 use bandwatch::units::Unit;
 
 #[test]
@@ -63,7 +63,7 @@ fn zone_config_resolves_and_refuses_non_velocity_bands() {
     let spec = raw
         .build("channel \"pump-de\" band \"overall\".alarm")
         .unwrap();
-    let m = spec.machine_spec(None, Unit::parse("mm/s").unwrap().to_si);
+    let m = spec.levels(None, Unit::parse("mm/s").unwrap().to_si);
     assert_eq!(m.alert.unwrap().limit, Some(4.5));
     assert_eq!(m.danger.unwrap().limit, Some(7.1));
     assert!(m.latching);

@@ -16,9 +16,9 @@ use bandwatch::dsp::envelope::EnvelopeEngine;
 use bandwatch::dsp::spectrum::SpectrumEngine;
 use bandwatch::dsp::speed::track_peak;
 use bandwatch::dsp::window::WindowKind;
-use bandwatch::dsp::worker::ChannelDsp;
+use bandwatch::pipeline::state::ChannelShared;
+use bandwatch::pipeline::worker::ChannelDsp;
 use bandwatch::ring::channel_ring;
-use bandwatch::snapshot::ChannelShared;
 
 fn temp_dir(name: &str) -> PathBuf {
     let d = std::env::temp_dir().join(format!("bandwatch-{name}-{}", std::process::id()));
@@ -55,7 +55,7 @@ fn config(text: &str) -> Config {
     }
 }
 
-fn bpfo_state(state: &bandwatch::snapshot::AppState) -> Option<(AlarmState, bool)> {
+fn bpfo_state(state: &bandwatch::pipeline::state::AppState) -> Option<(AlarmState, bool)> {
     let ch = state.channel("pump-de")?;
     let i = ch.spec.alarms.iter().position(|a| a.name == "bpfo")?;
     let b = ch.alarm_board.load_full()?;

@@ -5,17 +5,17 @@
 use std::f64::consts::PI;
 use std::sync::Arc;
 
+use bandwatch::config::bearing::{BearingGeometry, Defect};
 use bandwatch::config::{parse_str, BandEdges, Detrend};
 use bandwatch::dsp::bands::{BandPlan, BandStatus};
 use bandwatch::dsp::envelope::EnvelopeEngine;
 use bandwatch::dsp::filter::band_pass;
-use bandwatch::dsp::orders::{BearingGeometry, Defect};
 use bandwatch::dsp::spectrum::SpectrumEngine;
 use bandwatch::dsp::speed::{track_peak, TachDetector};
 use bandwatch::dsp::window::WindowKind;
-use bandwatch::dsp::worker::ChannelDsp;
+use bandwatch::pipeline::state::{ChannelShared, MachineShared};
+use bandwatch::pipeline::worker::ChannelDsp;
 use bandwatch::ring::channel_ring;
-use bandwatch::snapshot::{ChannelShared, MachineShared};
 
 const FS: f64 = 25_600.0;
 

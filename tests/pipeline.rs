@@ -6,9 +6,9 @@ use std::time::{Duration, Instant};
 
 use bandwatch::config::parse_str;
 use bandwatch::counters::GapReason;
-use bandwatch::dsp::worker::ChannelDsp;
+use bandwatch::pipeline::state::ChannelShared;
+use bandwatch::pipeline::worker::ChannelDsp;
 use bandwatch::ring::channel_ring;
-use bandwatch::snapshot::ChannelShared;
 
 fn one_channel(block: usize, overlap: f64) -> bandwatch::config::ChannelSpec {
     let text = format!(

@@ -24,7 +24,7 @@ use bandwatch::config::{AveragingMode, Detrend};
 use bandwatch::dsp::average::Averager;
 use bandwatch::dsp::spectrum::SpectrumEngine;
 use bandwatch::dsp::window::{Window, WindowKind};
-use bandwatch::selftest::{
+use bandwatch::tools::selftest::{
     cg_tolerance, db, highest_sidelobe_db, parseval_error as shared_parseval_error,
     scallop_tolerance_db, tone_reading as reading, ENBW_TOLERANCE, SIDELOBE_TOLERANCE_DB,
     WINDOW_FIGURES as TABLE,
@@ -80,7 +80,7 @@ fn coherent_gain_enbw_and_overlap_correlation_match_the_table() {
     }
 }
 
-// `reading` (bandwatch::selftest::tone_reading): the amplitude read for a
+// `reading` (bandwatch::tools::selftest::tone_reading): the amplitude read for a
 // unit tone `offset` lines above line N/4, as √(2·max P) near the tone.
 
 #[test]
@@ -499,7 +499,7 @@ fn tone_above_nyquist_folds_to_fs_minus_f() {
 
 /// Band RMS over all lines of a long white-noise record (block 1024, 64
 /// averages) against the time-domain RMS of the same samples; returns the
-/// relative error (bandwatch::selftest::parseval_error).
+/// relative error (bandwatch::tools::selftest::parseval_error).
 fn parseval_error(window: &str, noverlap: usize, seed: u64) -> f64 {
     shared_parseval_error(window, noverlap, seed).expect("parseval run")
 }

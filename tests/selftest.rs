@@ -9,7 +9,7 @@ use std::collections::BTreeSet;
 use std::process::Command;
 
 use bandwatch::dsp::window::WindowKind;
-use bandwatch::selftest::{self, Check};
+use bandwatch::tools::selftest::{self, Check};
 
 fn find<'a>(checks: &'a [Check], name: &str) -> &'a Check {
     checks

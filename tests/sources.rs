@@ -6,9 +6,10 @@ use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 use bandwatch::config::parse_str;
+use bandwatch::counters::SourceCounters;
 use bandwatch::frame::bwf1::{encode, Header};
 use bandwatch::frame::{SampleFormat, SampleSlice};
-use bandwatch::snapshot::{AppState, SourceShared};
+use bandwatch::pipeline::state::AppState;
 use bandwatch::tools::send::{send, Faults, SendOptions, SendReport, WireFormat};
 use bandwatch::tools::Endpoint;
 use bandwatch::Pipeline;
@@ -74,7 +75,7 @@ fn get(c: &std::sync::atomic::AtomicU64) -> u64 {
     c.load(Ordering::Relaxed)
 }
 
-fn src(state: &AppState) -> Arc<SourceShared> {
+fn src(state: &AppState) -> Arc<SourceCounters> {
     state.sources[0].clone()
 }
 
@@ -93,7 +94,7 @@ async fn send_frames(to: Endpoint, frames: u64, faults: Faults, rate_x: f64) -> 
 
 /// Starts a UDP daemon, sends 100 frames with `faults`, waits until the
 /// source has seen every datagram it was sent.
-async fn udp_run(faults: Faults) -> (SendReport, Arc<SourceShared>, Pipeline) {
+async fn udp_run(faults: Faults) -> (SendReport, Arc<SourceCounters>, Pipeline) {
     let port = free_udp_port();
     let p = Pipeline::start(&config_with(&udp_source(port))).expect("pipeline");
     let state = src(&p.state);

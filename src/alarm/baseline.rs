@@ -24,19 +24,10 @@ use serde::{Deserialize, Serialize};
 
 use super::fsutil::{atomic_write, safe_name};
 use super::state::{Direction, Input};
+pub use crate::config::alarms::LimitRule;
 
 /// Fewest values a baseline is made from.
 pub const MIN_VALUES: u64 = 10;
-
-/// How a limit follows from a baseline.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
-#[serde(rename_all = "kebab-case")]
-pub enum LimitRule {
-    /// `mean × factor`.
-    Factor(f64),
-    /// `mean + k·σ` for a high level, `mean − k·σ` for a low one.
-    Sigma(f64),
-}
 
 /// A learned baseline, as stored.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]

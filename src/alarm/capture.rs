@@ -45,6 +45,7 @@ use serde::{Deserialize, Serialize};
 
 use super::fsutil::{fsync_dir, write_synced, TEMP_SUFFIX};
 use super::journal::{rfc3339, EventLimits};
+pub use crate::config::alarms::Retention;
 use crate::frame::bwf1::{encode_into, Header};
 use crate::frame::{SampleFormat, SampleSlice};
 
@@ -436,13 +437,6 @@ pub fn validate_id(id: &str) -> Result<(), CaptureError> {
     } else {
         Err(CaptureError::BadId(id.chars().take(MAX_ID_LEN).collect()))
     }
-}
-
-/// Retention bounds of the capture directory.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
-pub struct Retention {
-    pub max_count: usize,
-    pub max_bytes: u64,
 }
 
 /// What start-up cleaning removed.

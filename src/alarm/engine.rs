@@ -28,10 +28,10 @@ use crate::alarm::health::{HealthDetector, Reasons};
 use crate::alarm::io::{Message, Outbox};
 use crate::alarm::journal::{Event, EventLimits};
 use crate::alarm::state::{AckError, AlarmMachine, AlarmMemory, AlarmState, Cause, Input};
+use crate::clock::unix_now_ns;
 use crate::config::{AlarmTarget, ChannelAlarm, ChannelSpec};
 use crate::dsp::bands::BandValue;
 use crate::dsp::stats::Overall;
-use crate::snapshot::unix_now_ns;
 
 /// What an operator asks of an alarm, with where to send the answer.
 #[derive(Debug)]
@@ -187,7 +187,7 @@ impl ChannelAlarms {
             } else {
                 None
             };
-            let mut m = AlarmMachine::new(&a.spec.machine_spec(baseline.as_ref(), to_si), now);
+            let mut m = AlarmMachine::new(&a.spec.levels(baseline.as_ref(), to_si), now);
             if let Some(mem) = memories(&a.name) {
                 m.restore(mem, now);
             }
@@ -345,7 +345,7 @@ impl ChannelAlarms {
                         None => Err(CommandError::NoBaseline),
                         Some(learn_s) => {
                             let to_si = a.unit.map_or(1.0, |u| u.to_si);
-                            let ms = a.spec.machine_spec(None, to_si);
+                            let ms = a.spec.levels(None, to_si);
                             self.machines[alarm].set_limits(
                                 ms.alert.and_then(|l| l.limit),
                                 ms.danger.and_then(|l| l.limit),
@@ -415,7 +415,7 @@ impl ChannelAlarms {
                         finished_unix_ns: unix_now_ns(),
                     };
                     let to_si = a.unit.map_or(1.0, |u| u.to_si);
-                    let ms = a.spec.machine_spec(Some(&b), to_si);
+                    let ms = a.spec.levels(Some(&b), to_si);
                     self.machines[i].set_limits(
                         ms.alert.and_then(|l| l.limit),
                         ms.danger.and_then(|l| l.limit),

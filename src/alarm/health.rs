@@ -40,75 +40,9 @@ pub const EVAL_WINDOW_S: f64 = 0.1;
 /// Smallest number of samples per evaluation window.
 pub const MIN_EVAL_SAMPLES: usize = 16;
 
-#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
-pub struct FlatlineSpec {
-    /// Standard deviation (channel unit) under which a window is flat.
-    pub std_below: f64,
-    /// Seconds of flat windows before the channel is not OK.
-    pub for_s: f64,
-}
-
-#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
-pub struct ClippingSpec {
-    /// Converter full scale in the channel's unit (the largest magnitude the
-    /// converter can report).
-    pub full_scale: f64,
-    /// Fraction of full scale at which a sample counts as clipped, (0, 1].
-    pub fraction: f64,
-    /// Clipped samples in one window that make it a fault, >= 1.
-    pub samples: usize,
-}
-
-#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
-pub struct BiasSpec {
-    /// Lowest acceptable window mean, channel unit.
-    pub lo: f64,
-    /// Highest acceptable window mean, channel unit.
-    pub hi: f64,
-}
-
-#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
-pub struct StaleSpec {
-    pub after_s: f64,
-}
-
-#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
-pub struct GapSpec {
-    /// More than this many discontinuities within the window is a fault.
-    pub max: u32,
-    pub window_s: f64,
-}
-
-/// The validated health checks of one channel.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
-pub struct HealthSpec {
-    pub flatline: Option<FlatlineSpec>,
-    pub clipping: Option<ClippingSpec>,
-    pub bias: Option<BiasSpec>,
-    pub stale: Option<StaleSpec>,
-    pub gaps: Option<GapSpec>,
-    /// Seconds without any fault before the channel is OK again.
-    pub recover_s: f64,
-}
-
-impl Default for HealthSpec {
-    /// What a channel without a `health` table gets: stale after 5 s, more
-    /// than 10 gaps a minute, 5 s to recover. Flatline, clipping and bias
-    /// need the sensor's figures and are off unless configured.
-    fn default() -> HealthSpec {
-        HealthSpec {
-            flatline: None,
-            clipping: None,
-            bias: None,
-            stale: Some(StaleSpec { after_s: 5.0 }),
-            gaps: Some(GapSpec {
-                max: 10,
-                window_s: 60.0,
-            }),
-            recover_s: 5.0,
-        }
-    }
-}
+pub use crate::config::alarms::{
+    BiasSpec, ClippingSpec, FlatlineSpec, GapSpec, HealthSpec, StaleSpec,
+};
 
 /// One reason for a channel being not OK.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]

@@ -33,27 +33,10 @@ use serde::{Deserialize, Serialize};
 use super::fsutil::fsync_dir;
 use super::health::HealthChange;
 use super::state::{AlarmMemory, Severity, Transition};
+pub use crate::config::alarms::JournalLimits;
 
 /// File name of the active journal.
 pub const ACTIVE: &str = "journal.jsonl";
-
-/// Journal bounds.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
-pub struct JournalLimits {
-    /// Largest size of one file, bytes (a single larger event still goes in).
-    pub max_bytes: u64,
-    /// Files kept in all, the active one included, >= 2.
-    pub max_files: u32,
-}
-
-impl Default for JournalLimits {
-    fn default() -> JournalLimits {
-        JournalLimits {
-            max_bytes: 4 << 20,
-            max_files: 8,
-        }
-    }
-}
 
 /// What an event records.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]

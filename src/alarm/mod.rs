@@ -26,7 +26,6 @@
 
 pub mod baseline;
 pub mod capture;
-pub mod config;
 pub mod engine;
 mod fsutil;
 pub mod health;
@@ -34,6 +33,5 @@ pub mod io;
 pub mod journal;
 pub mod state;
 pub mod token;
-pub mod zones;
 
 pub use fsutil::safe_name;

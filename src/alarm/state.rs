@@ -43,6 +43,12 @@
 
 use serde::{Deserialize, Serialize};
 
+use super::baseline::Baseline;
+use crate::config::alarms::AlarmSpec;
+pub use crate::config::alarms::Direction;
+use crate::config::alarms::LevelConfig;
+use crate::config::alarms::LimitSource;
+
 /// Severity of a level, ordered: normal < alert < danger.
 #[derive(
     Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash, Default, Serialize, Deserialize,
@@ -130,26 +136,6 @@ impl From<Severity> for AlarmState {
     }
 }
 
-/// Which side of the limit is abnormal.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize)]
-#[serde(rename_all = "kebab-case")]
-pub enum Direction {
-    /// At or above the limit is abnormal (the usual case for vibration).
-    #[default]
-    High,
-    /// At or below the limit is abnormal (e.g. a lost signal, low pressure).
-    Low,
-}
-
-impl Direction {
-    pub fn as_str(self) -> &'static str {
-        match self {
-            Direction::High => "high",
-            Direction::Low => "low",
-        }
-    }
-}
-
 /// One level (alert or danger) as the machine runs it.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize)]
 pub struct LevelSpec {
@@ -167,11 +153,39 @@ pub struct LevelSpec {
 
 /// Everything an [`AlarmMachine`] needs.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize)]
-pub struct MachineSpec {
+pub struct AlarmLevels {
     pub alert: Option<LevelSpec>,
     pub danger: Option<LevelSpec>,
     /// Latching alarms hold their highest state until acknowledged.
     pub latching: bool,
+}
+
+/// Resolving a configured alarm into the levels a machine runs (the config
+/// holds the data; the alarm stage gives it behaviour).
+impl AlarmSpec {
+    /// The alarm levels with limits resolved: fixed ones as given, zone ones
+    /// converted to the band's velocity unit (`unit_to_si`: its factor to
+    /// m/s), baseline ones from `baseline` (`None` while learning: that
+    /// level is off until the baseline exists).
+    pub fn levels(&self, baseline: Option<&Baseline>, unit_to_si: f64) -> AlarmLevels {
+        let zone = self.zone.map(|z| z.limits(unit_to_si));
+        let level = |l: &LevelConfig, is_danger: bool| LevelSpec {
+            limit: match l.source {
+                LimitSource::Fixed(v) => Some(v),
+                LimitSource::Baseline(rule) => baseline.map(|b| b.limit(rule, l.direction)),
+                LimitSource::Zone => zone.map(|z| if is_danger { z.danger } else { z.alert }),
+            },
+            direction: l.direction,
+            hysteresis: l.hysteresis,
+            on_delay_s: l.on_delay_s,
+            off_delay_s: l.off_delay_s,
+        };
+        AlarmLevels {
+            alert: self.alert.as_ref().map(|l| level(l, false)),
+            danger: self.danger.as_ref().map(|l| level(l, true)),
+            latching: self.latching,
+        }
+    }
 }
 
 /// One evaluation's input.
@@ -374,7 +388,7 @@ pub struct AlarmMachine {
 
 impl AlarmMachine {
     /// A machine in the normal state since `now`.
-    pub fn new(spec: &MachineSpec, now: f64) -> AlarmMachine {
+    pub fn new(spec: &AlarmLevels, now: f64) -> AlarmMachine {
         AlarmMachine {
             alert: spec.alert.map(Level::new),
             danger: spec.danger.map(Level::new),
@@ -610,8 +624,8 @@ mod tests {
         }
     }
 
-    fn spec(latching: bool) -> MachineSpec {
-        MachineSpec {
+    fn spec(latching: bool) -> AlarmLevels {
+        AlarmLevels {
             alert: Some(level(4.5, 0.5, 0.0, 0.0)),
             danger: Some(level(7.1, 0.5, 0.0, 0.0)),
             latching,
@@ -637,7 +651,7 @@ mod tests {
 
     #[test]
     fn on_delay_needs_continuous_condition() {
-        let s = MachineSpec {
+        let s = AlarmLevels {
             alert: Some(level(1.0, 0.0, 2.0, 0.0)),
             danger: None,
             latching: false,

@@ -13,15 +13,10 @@
 use std::fmt;
 use std::path::{Path, PathBuf};
 
+pub use crate::config::alarms::TokenSource;
+
 /// Shortest token accepted (bytes). 16 random bytes in hex are 32.
 pub const MIN_TOKEN_LEN: usize = 16;
-
-/// Where the token comes from.
-#[derive(Debug, Clone, PartialEq, Eq)]
-pub enum TokenSource {
-    File(PathBuf),
-    Env(String),
-}
 
 /// A loaded token. Its `Debug` never shows the secret.
 #[derive(Clone)]

@@ -5,40 +5,10 @@
 //! analysis wants and what `scipy.signal.get_window` returns by default.
 //! Each is a sum of cosines w[n] = Σ_k (−1)^k a_k cos(2πkn/N).
 
-use serde::Deserialize;
+pub use crate::config::WindowKind;
 
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Deserialize)]
-#[serde(rename_all = "kebab-case")]
-pub enum WindowKind {
-    Rectangular,
-    Hann,
-    /// Hamming with a0 = 0.54, a1 = 0.46.
-    Hamming,
-    /// 4-term Blackman-Harris, −92 dB sidelobes (Harris 1978).
-    BlackmanHarris,
-    /// 5-term flat top as in scipy.signal.windows.flattop (D'Antona & Ferrero 2006).
-    FlatTop,
-}
-
+/// The window functions' formulas (the kind itself is config vocabulary).
 impl WindowKind {
-    pub const ALL: [WindowKind; 5] = [
-        WindowKind::Rectangular,
-        WindowKind::Hann,
-        WindowKind::Hamming,
-        WindowKind::BlackmanHarris,
-        WindowKind::FlatTop,
-    ];
-
-    pub fn as_str(self) -> &'static str {
-        match self {
-            WindowKind::Rectangular => "rectangular",
-            WindowKind::Hann => "hann",
-            WindowKind::Hamming => "hamming",
-            WindowKind::BlackmanHarris => "blackman-harris",
-            WindowKind::FlatTop => "flat-top",
-        }
-    }
-
     /// Cosine-sum coefficients a_k.
     pub fn coefficients(self) -> &'static [f64] {
         match self {

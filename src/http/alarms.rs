@@ -17,11 +17,11 @@ use serde_json::{json, Value};
 use crate::alarm::capture;
 use crate::alarm::engine::{AlarmBoard, AlarmCommand, AlarmView, CommandError};
 use crate::alarm::journal::rfc3339;
-use crate::alarm::zones::GUIDANCE;
+use crate::config::zones::GUIDANCE;
 use crate::config::AlarmTarget;
 use crate::http::error::ApiError;
 use crate::http::HttpState;
-use crate::snapshot::ChannelShared;
+use crate::pipeline::state::ChannelShared;
 
 /// How long an action waits for the worker.
 const COMMAND_TIMEOUT: Duration = Duration::from_secs(5);

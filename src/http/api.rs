@@ -13,13 +13,15 @@ use axum::Json;
 use serde::Serialize;
 use serde_json::{json, Map, Value};
 
+use crate::clock::unix_now_ns;
 use crate::config::{AveragingMode, BandEdges, ChannelSpec};
+use crate::counters::SourceCounters;
 use crate::counters::{ChannelCounters, GapReason};
 use crate::dsp::bands::BandStatus;
 use crate::http::error::ApiError;
 use crate::http::scaling::{line_range, Conversion, Scaling};
 use crate::http::HttpState;
-use crate::snapshot::{unix_now_ns, AppState, ChannelShared, ChannelSnapshot, SourceShared};
+use crate::pipeline::state::{AppState, ChannelShared, ChannelSnapshot};
 use crate::units::{convertible, Unit};
 
 /// Shortest time after which a channel counts as stale, whatever its rate.
@@ -280,11 +282,11 @@ fn summary<'a>(
                 "disconnected"
             },
             last_frame_age_seconds: source
-                .map(|s| SourceShared::get(&s.last_frame_unix_ns))
+                .map(|s| SourceCounters::get(&s.last_frame_unix_ns))
                 .filter(|&t| t != 0)
                 .map(|t| now_ns.saturating_sub(t) as f64 * 1e-9),
             counters: source.map_or(Value::Null, |s| {
-                let g = SourceShared::get;
+                let g = SourceCounters::get;
                 json!({
                     "connections": g(&s.connections),
                     "frames": g(&s.frames),

@@ -38,9 +38,10 @@ use axum::http::StatusCode;
 use prometheus::proto::MetricType;
 use prometheus::{Encoder, Gauge, IntCounterVec, IntGaugeVec, Opts, Registry, TextEncoder};
 
+use crate::clock::unix_now_ns;
 use crate::config::Measure;
 use crate::counters::{ChannelCounters, GapReason};
-use crate::snapshot::{unix_now_ns, AppState};
+use crate::pipeline::state::AppState;
 use crate::units::Quantity;
 
 /// Content type of the text exposition format.

@@ -14,7 +14,7 @@ use prometheus::{Encoder, Gauge, IntGaugeVec, Opts, Registry, TextEncoder};
 
 use super::metrics::{band_family, band_help, si_words, Fixed, FIXED, OVERALL};
 use crate::counters::{ChannelCounters, GapReason};
-use crate::snapshot::AppState;
+use crate::pipeline::state::AppState;
 
 /// One metric family whose members are built at scrape time.
 #[derive(Debug, Clone)]

@@ -24,7 +24,7 @@ use axum::Router;
 
 pub use crate::http::error::ApiError;
 use crate::http::metrics::Metrics;
-use crate::snapshot::AppState;
+use crate::pipeline::state::AppState;
 
 /// Route label for requests that matched no route (keeps the
 /// `path` label of `bandwatch_http_requests_total` bounded).

@@ -14,11 +14,12 @@ use serde_json::Value;
 use tower::ServiceExt;
 
 use super::*;
+use crate::clock::unix_now_ns;
 use crate::config::parse_str;
 use crate::counters::GapReason;
 use crate::dsp::bands::BandValue;
 use crate::dsp::stats::Overall;
-use crate::snapshot::{unix_now_ns, ChannelSnapshot};
+use crate::pipeline::state::ChannelSnapshot;
 
 /// fs = 25 600 Hz (the sim's rate), block = nfft = 256: lines every
 /// 100 Hz, 129 lines, Nyquist 12 800 Hz. Hann: ENBW 1.5 lines (Harris 1978,

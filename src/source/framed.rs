@@ -12,13 +12,14 @@ use std::sync::atomic::Ordering;
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
+use crate::clock::unix_now_ns;
 use crate::config::{Framing, StreamSpec};
 use crate::counters::GapReason;
+use crate::counters::SourceCounters;
 use crate::frame::bwf1::{FrameError, Header, StreamDecoder};
 use crate::frame::lines::{LineBatch, LineDecoder, LineEvent};
 use crate::frame::raw::RawDecoder;
 use crate::frame::{SampleFormat, Samples};
-use crate::snapshot::{unix_now_ns, SourceShared};
 use crate::source::{note_frame, SourceOutputs, WireF32, WireF64, WireI16, WireI24, WireI32};
 
 /// Error logs of one kind are written at most this often per source.
@@ -57,7 +58,7 @@ impl LogLimiter {
 /// Where decoded samples go, with the checks of this source.
 pub struct FrameSink {
     pub out: SourceOutputs,
-    pub state: Arc<SourceShared>,
+    pub state: Arc<SourceCounters>,
     channels: usize,
     sample_rate_hz: f64,
     next_sample: Option<u64>,
@@ -65,7 +66,7 @@ pub struct FrameSink {
 }
 
 impl FrameSink {
-    pub fn new(out: SourceOutputs, state: Arc<SourceShared>, sample_rate_hz: f64) -> FrameSink {
+    pub fn new(out: SourceOutputs, state: Arc<SourceCounters>, sample_rate_hz: f64) -> FrameSink {
         FrameSink {
             channels: out.width(),
             out,

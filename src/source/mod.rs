@@ -23,10 +23,11 @@ use std::thread::Thread;
 use tokio::sync::watch;
 use tokio::task::JoinHandle;
 
+use crate::clock::unix_now_ns;
 use crate::config::{Config, SourceKind, SourceSpec};
 use crate::counters::GapReason;
+use crate::counters::SourceCounters;
 use crate::ring::RingWriter;
-use crate::snapshot::{unix_now_ns, SourceShared};
 
 /// A raw sample as it arrives: integer counts or floating-point values.
 pub trait RawSample: Copy {
@@ -272,7 +273,7 @@ impl SourceOutputs {
 pub fn spawn_all(
     config: &Config,
     mut outputs: Vec<SourceOutputs>,
-    shared: &[Arc<SourceShared>],
+    shared: &[Arc<SourceCounters>],
     shutdown: watch::Receiver<bool>,
 ) -> Vec<JoinHandle<()>> {
     let mut tasks = Vec::new();
@@ -293,7 +294,7 @@ pub fn spawn_all(
 
 /// Records that a source delivered a good frame or batch now. (Bytes are
 /// counted where they are read, good or bad.)
-pub(crate) fn note_frame(state: &SourceShared) {
+pub(crate) fn note_frame(state: &SourceCounters) {
     state.frames.fetch_add(1, Ordering::Relaxed);
     state
         .last_frame_unix_ns

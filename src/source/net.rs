@@ -11,9 +11,10 @@ use tokio::io::{AsyncRead, AsyncReadExt};
 use tokio::net::{TcpListener, TcpStream, UdpSocket};
 use tokio::sync::watch;
 
+use crate::clock::unix_now_ns;
 use crate::config::{Backoff, SecondConnection, SourceKind, SourceSpec, StreamSpec};
+use crate::counters::SourceCounters;
 use crate::frame::bwf1::DatagramDecoder;
-use crate::snapshot::{unix_now_ns, SourceShared};
 use crate::source::framed::{FrameSink, StreamFraming};
 use crate::source::SourceOutputs;
 
@@ -98,7 +99,7 @@ async fn read_stream<R: AsyncRead + Unpin>(
 pub async fn run(
     spec: SourceSpec,
     out: SourceOutputs,
-    state: Arc<SourceShared>,
+    state: Arc<SourceCounters>,
     stop: watch::Receiver<bool>,
 ) {
     let sink = FrameSink::new(out, state, spec.sample_rate_hz);

@@ -20,12 +20,13 @@ use std::time::Duration;
 use tokio::sync::watch;
 use tokio::time::{Instant, MissedTickBehavior};
 
+use crate::clock::unix_now_ns;
 use crate::counters::GapReason;
-use crate::snapshot::{unix_now_ns, SourceShared};
+use crate::counters::SourceCounters;
 use crate::source::{note_frame, SourceOutputs};
 
 /// Channels the scenario produces.
-pub const CHANNELS: usize = 4;
+pub const CHANNELS: usize = crate::config::SIM_CHANNELS;
 /// Index of the tachometer channel.
 pub const TACH_INDEX: usize = 3;
 /// Tach pulse height, volts.
@@ -198,7 +199,7 @@ pub async fn run(
     seed: u64,
     speed: f64,
     mut out: SourceOutputs,
-    state: Arc<SourceShared>,
+    state: Arc<SourceCounters>,
     mut shutdown: watch::Receiver<bool>,
 ) {
     let mut sim = PumpSim::new(fs, seed);

@@ -3,8 +3,10 @@
 //! `replay` (run the pipeline over a recorded stream as fast as the CPU
 //! allows).
 
+pub mod bench;
 pub mod record;
 pub mod replay;
+pub mod selftest;
 pub mod send;
 
 /// Where `send` delivers or `record` takes bytes from.

@@ -8,9 +8,10 @@ use std::path::Path;
 use std::sync::Arc;
 
 use crate::config::{Config, SourceKind, StreamSpec};
-use crate::dsp::worker::ChannelDsp;
+use crate::counters::SourceCounters;
+use crate::pipeline::state::{ChannelShared, MachineShared};
+use crate::pipeline::worker::ChannelDsp;
 use crate::ring::channel_ring;
-use crate::snapshot::{ChannelShared, MachineShared, SourceShared};
 use crate::source::framed::{FrameSink, StreamFraming};
 use crate::source::{ChannelInput, SourceOutputs};
 
@@ -71,7 +72,7 @@ pub fn replay(
     file: &Path,
     source: Option<&str>,
     out: &mut dyn Write,
-) -> Result<Arc<SourceShared>, ReplayError> {
+) -> Result<Arc<SourceCounters>, ReplayError> {
     let spec = match source {
         Some(name) => config
             .sources
@@ -114,7 +115,7 @@ pub fn replay(
     if dsps.is_empty() {
         return Err(ReplayError::NoChannels(spec.name.clone()));
     }
-    let state = Arc::new(SourceShared::new(&spec.name, spec.kind.as_str()));
+    let state = Arc::new(SourceCounters::new(&spec.name, spec.kind.as_str()));
     let mut sink = FrameSink::new(outputs, state.clone(), spec.sample_rate_hz);
     let mut framing = StreamFraming::new(&stream, spec.channels).map_err(ReplayError::Decoder)?;
     let read_err = |source| ReplayError::Read {

@@ -16,10 +16,10 @@ use tokio::io::AsyncWriteExt;
 use tokio::net::{TcpListener, TcpStream, UdpSocket};
 use tokio_serial::SerialPortBuilderExt;
 
+use crate::clock::unix_now_ns;
 use crate::config::SIM_SAMPLE_RATE_HZ;
 use crate::frame::bwf1::{encode_into, Header};
 use crate::frame::{SampleFormat, SampleSlice};
-use crate::snapshot::unix_now_ns;
 use crate::source::sim::{PumpSim, CHANNELS, SENSITIVITY_V_PER_G, TACH_INDEX, VOLTS_PER_COUNT};
 use crate::tools::Endpoint;
 

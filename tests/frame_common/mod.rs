@@ -7,7 +7,7 @@ use bandwatch::frame::{SampleFormat, SampleSlice, I24_MAX, I24_MIN};
 
 /// CRC-32/IEEE computed bit by bit from the algorithm's parameters
 /// (common practice), independent of crc32fast; shared with `selftest`.
-pub use bandwatch::selftest::crc32_bitwise;
+pub use bandwatch::tools::selftest::crc32_bitwise;
 
 /// Rewrites a frame's trailing CRC after its bytes were patched, so that a
 /// test reaches the header check it means to reach.

@@ -2,7 +2,7 @@
 //! with `#[path]` so that they are not a test crate of their own.
 //!
 //! The channel builder, the worker's stages, the fixed-seed generator and
-//! the tone live in `bandwatch::selftest`, which `bandwatch selftest` runs
+//! the tone live in `bandwatch::tools::selftest`, which `bandwatch selftest` runs
 //! on a user's machine; the tests use the same code, and this file adds
 //! what only tests need (a panicking `run`, the fixture decoder). Build a
 //! channel with `Chan { .. }.spec().expect(..)`: it goes through
@@ -11,15 +11,17 @@
 
 use bandwatch::config::ChannelSpec;
 #[allow(unused_imports)] // each test file uses a different part
-pub use bandwatch::selftest::{tone, BandSetup as Band, ChannelSetup as Chan, Run, SplitMix64, FS};
+pub use bandwatch::tools::selftest::{
+    tone, BandSetup as Band, ChannelSetup as Chan, Run, SplitMix64, FS,
+};
 
 /// Runs bandwatch's DSP stages over `x` as the worker does (see
-/// `bandwatch::selftest::run_stages`): one `SpectrumEngine::compute` per
+/// `bandwatch::tools::selftest::run_stages`): one `SpectrumEngine::compute` per
 /// block, `Averager` (linear, count blocks), then each `BandPlan` on the
 /// averaged spectrum. Uses exactly `spec.average_count` blocks starting at
 /// sample 0; panics if `x` is too short or the averager publishes nothing.
 pub fn run(spec: &ChannelSpec, x: &[f32]) -> Run {
-    let r = bandwatch::selftest::run_stages(spec, x).unwrap_or_else(|e| panic!("{e}"));
+    let r = bandwatch::tools::selftest::run_stages(spec, x).unwrap_or_else(|e| panic!("{e}"));
     assert_eq!(r.averages, spec.average_count, "blocks in the average");
     r
 }

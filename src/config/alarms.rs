@@ -26,15 +26,9 @@
 
 use std::path::PathBuf;
 
-use serde::Deserialize;
+use serde::{Deserialize, Serialize};
 
-use super::baseline::{Baseline, LimitRule};
-use super::capture::Retention;
-use super::health::{BiasSpec, ClippingSpec, FlatlineSpec, GapSpec, HealthSpec, StaleSpec};
-use super::journal::JournalLimits;
-use super::state::{Direction, LevelSpec, MachineSpec};
-use super::token::TokenSource;
-use super::zones::{MachineGroup, Support, ZonePreset};
+use crate::config::zones::{MachineGroup, Support, ZonePreset};
 use crate::units::{Quantity, Unit};
 
 /// A config problem: (field path, why).
@@ -325,30 +319,6 @@ pub struct AlarmSpec {
 }
 
 impl AlarmSpec {
-    /// The machine spec with limits resolved: fixed ones as given, zone ones
-    /// converted to the band's velocity unit (`unit_to_si`: its factor to
-    /// m/s), baseline ones from `baseline` (`None` while learning: that
-    /// level is off until the baseline exists).
-    pub fn machine_spec(&self, baseline: Option<&Baseline>, unit_to_si: f64) -> MachineSpec {
-        let zone = self.zone.map(|z| z.limits(unit_to_si));
-        let level = |l: &LevelConfig, is_danger: bool| LevelSpec {
-            limit: match l.source {
-                LimitSource::Fixed(v) => Some(v),
-                LimitSource::Baseline(rule) => baseline.map(|b| b.limit(rule, l.direction)),
-                LimitSource::Zone => zone.map(|z| if is_danger { z.danger } else { z.alert }),
-            },
-            direction: l.direction,
-            hysteresis: l.hysteresis,
-            on_delay_s: l.on_delay_s,
-            off_delay_s: l.off_delay_s,
-        };
-        MachineSpec {
-            alert: self.alert.as_ref().map(|l| level(l, false)),
-            danger: self.danger.as_ref().map(|l| level(l, true)),
-            latching: self.latching,
-        }
-    }
-
     /// Whether a level needs a learned baseline.
     pub fn uses_baseline(&self) -> bool {
         self.baseline_learn_s.is_some()
@@ -811,4 +781,144 @@ impl RawHealth {
             recover_s: self.recover_s,
         })
     }
+}
+
+// ---------------------------------------------------------------------------
+// Channel health checks (validated)
+// ---------------------------------------------------------------------------
+
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+pub struct FlatlineSpec {
+    /// Standard deviation (channel unit) under which a window is flat.
+    pub std_below: f64,
+    /// Seconds of flat windows before the channel is not OK.
+    pub for_s: f64,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+pub struct ClippingSpec {
+    /// Converter full scale in the channel's unit (the largest magnitude the
+    /// converter can report).
+    pub full_scale: f64,
+    /// Fraction of full scale at which a sample counts as clipped, (0, 1].
+    pub fraction: f64,
+    /// Clipped samples in one window that make it a fault, >= 1.
+    pub samples: usize,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+pub struct BiasSpec {
+    /// Lowest acceptable window mean, channel unit.
+    pub lo: f64,
+    /// Highest acceptable window mean, channel unit.
+    pub hi: f64,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+pub struct StaleSpec {
+    pub after_s: f64,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+pub struct GapSpec {
+    /// More than this many discontinuities within the window is a fault.
+    pub max: u32,
+    pub window_s: f64,
+}
+
+/// The validated health checks of one channel.
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+pub struct HealthSpec {
+    pub flatline: Option<FlatlineSpec>,
+    pub clipping: Option<ClippingSpec>,
+    pub bias: Option<BiasSpec>,
+    pub stale: Option<StaleSpec>,
+    pub gaps: Option<GapSpec>,
+    /// Seconds without any fault before the channel is OK again.
+    pub recover_s: f64,
+}
+
+impl Default for HealthSpec {
+    /// What a channel without a `health` table gets: stale after 5 s, more
+    /// than 10 gaps a minute, 5 s to recover. Flatline, clipping and bias
+    /// need the sensor's figures and are off unless configured.
+    fn default() -> HealthSpec {
+        HealthSpec {
+            flatline: None,
+            clipping: None,
+            bias: None,
+            stale: Some(StaleSpec { after_s: 5.0 }),
+            gaps: Some(GapSpec {
+                max: 10,
+                window_s: 60.0,
+            }),
+            recover_s: 5.0,
+        }
+    }
+}
+
+// ---------------------------------------------------------------------------
+// Vocabulary the alarm stage runs on
+// ---------------------------------------------------------------------------
+
+/// How a limit follows from a baseline.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum LimitRule {
+    /// `mean × factor`.
+    Factor(f64),
+    /// `mean + k·σ` for a high level, `mean − k·σ` for a low one.
+    Sigma(f64),
+}
+
+/// Which side of the limit is abnormal.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum Direction {
+    /// At or above the limit is abnormal (the usual case for vibration).
+    #[default]
+    High,
+    /// At or below the limit is abnormal (e.g. a lost signal, low pressure).
+    Low,
+}
+
+impl Direction {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Direction::High => "high",
+            Direction::Low => "low",
+        }
+    }
+}
+
+/// Retention bounds of the capture directory.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+pub struct Retention {
+    pub max_count: usize,
+    pub max_bytes: u64,
+}
+
+/// Journal bounds.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+pub struct JournalLimits {
+    /// Largest size of one file, bytes (a single larger event still goes in).
+    pub max_bytes: u64,
+    /// Files kept in all, the active one included, >= 2.
+    pub max_files: u32,
+}
+
+impl Default for JournalLimits {
+    fn default() -> JournalLimits {
+        JournalLimits {
+            max_bytes: 4 << 20,
+            max_files: 8,
+        }
+    }
+}
+
+/// Where the token comes from.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum TokenSource {
+    File(PathBuf),
+    Env(String),
 }

@@ -10,14 +10,19 @@ use std::path::{Path, PathBuf};
 
 use serde::Deserialize;
 
-use crate::alarm::config::{AlarmSpec, AlarmsSpec, RawAlarm, RawAlarms, RawHealth};
-use crate::alarm::health::HealthSpec;
-use crate::dsp::window::WindowKind;
 use crate::frame::SampleFormat;
 use crate::units::{convertible, Unit};
+use alarms::{AlarmSpec, AlarmsSpec, HealthSpec, RawAlarm, RawAlarms, RawHealth};
 
-/// Sample rate of the built-in pump scenario (DESIGN.md, demo scenario).
+pub mod alarms;
+pub mod bearing;
+pub mod zones;
+
+/// Sample rate of the built-in pump scenario (README, "The demo").
 pub const SIM_SAMPLE_RATE_HZ: f64 = 25_600.0;
+
+/// Channels of the built-in pump scenario (README, "The demo").
+pub const SIM_CHANNELS: usize = 4;
 
 // ---------------------------------------------------------------------------
 // The file as written
@@ -399,6 +404,40 @@ fn default_low_cut() -> f64 {
     2.0
 }
 
+/// Analysis window (formulas in `dsp::window`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum WindowKind {
+    Rectangular,
+    Hann,
+    /// Hamming with a0 = 0.54, a1 = 0.46.
+    Hamming,
+    /// 4-term Blackman-Harris, −92 dB sidelobes (Harris 1978).
+    BlackmanHarris,
+    /// 5-term flat top as in scipy.signal.windows.flattop (D'Antona & Ferrero 2006).
+    FlatTop,
+}
+
+impl WindowKind {
+    pub const ALL: [WindowKind; 5] = [
+        WindowKind::Rectangular,
+        WindowKind::Hann,
+        WindowKind::Hamming,
+        WindowKind::BlackmanHarris,
+        WindowKind::FlatTop,
+    ];
+
+    pub fn as_str(self) -> &'static str {
+        match self {
+            WindowKind::Rectangular => "rectangular",
+            WindowKind::Hann => "hann",
+            WindowKind::Hamming => "hamming",
+            WindowKind::BlackmanHarris => "blackman-harris",
+            WindowKind::FlatTop => "flat-top",
+        }
+    }
+}
+
 /// What is removed from each block before the window.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Default)]
 #[serde(rename_all = "kebab-case")]
@@ -473,7 +512,7 @@ pub struct RawBand {
     pub orders: Option<[f64; 2]>,
     /// A bearing of the channel's machine, with `defect`.
     pub bearing: Option<String>,
-    pub defect: Option<crate::dsp::orders::Defect>,
+    pub defect: Option<bearing::Defect>,
     /// Width of a bearing band in orders, centred on the defect frequency.
     pub width_orders: Option<f64>,
     /// Bearing bands: also the 2nd … k-th harmonic (energy summed).
@@ -537,7 +576,7 @@ pub struct Config {
 pub struct MachineSpec {
     pub name: String,
     pub speed: SpeedSource,
-    pub bearings: Vec<(String, crate::dsp::orders::BearingGeometry)>,
+    pub bearings: Vec<(String, bearing::BearingGeometry)>,
 }
 
 #[derive(Debug, Clone, PartialEq)]
@@ -725,7 +764,7 @@ pub struct BandSpec {
     pub unit: Unit,
     pub spectrum: SpectrumKind,
     /// For bearing bands: (bearing, defect), for the API.
-    pub bearing: Option<(String, crate::dsp::orders::Defect)>,
+    pub bearing: Option<(String, bearing::Defect)>,
 }
 
 // ---------------------------------------------------------------------------
@@ -880,7 +919,7 @@ pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
                 sources.push(SourceSpec {
                     name: name.clone(),
                     sample_rate_hz: SIM_SAMPLE_RATE_HZ,
-                    channels: crate::source::sim::CHANNELS,
+                    channels: SIM_CHANNELS,
                     kind: SourceKind::Sim {
                         seed: *seed,
                         speed: *speed,
@@ -1489,7 +1528,7 @@ pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
 }
 
 fn validate_machines(issues: &mut Issues, raw: &RawConfig) -> Vec<MachineSpec> {
-    use crate::dsp::orders::BearingGeometry;
+    use bearing::BearingGeometry;
     let mut out = Vec::new();
     let mut names = HashSet::new();
     let channel = |name: &str| raw.channels.iter().any(|c| c.name == name);
@@ -1741,7 +1780,7 @@ fn band_edges(
         );
         return None;
     }
-    let g = crate::dsp::orders::BearingGeometry {
+    let g = bearing::BearingGeometry {
         elements: bearing.elements,
         element_diameter: bearing.element_diameter_mm,
         pitch_diameter: bearing.pitch_diameter_mm,

@@ -36,11 +36,12 @@ use realfft::{FftNum, RealFftPlanner};
 use serde::Serialize;
 
 use crate::config::{parse_str, ChannelSpec, Config, StreamSpec};
-use crate::dsp::worker::ChannelDsp;
+use crate::counters::SourceCounters;
 use crate::frame::bwf1::{encode_into, Header, CRC_BYTES, DEFAULT_MAX_FRAME_BYTES};
 use crate::frame::{SampleFormat, SampleSlice};
+use crate::pipeline::state::{AppState, ChannelShared};
+use crate::pipeline::worker::ChannelDsp;
 use crate::ring::{channel_ring, RingWriter};
-use crate::snapshot::{AppState, ChannelShared, SourceShared};
 use crate::source::framed::{FrameSink, StreamFraming};
 use crate::source::{ChannelInput, SourceOutputs};
 
@@ -572,7 +573,7 @@ impl DspRig {
 /// DSP, one thread.
 struct PathRig {
     shared: Vec<Arc<ChannelShared>>,
-    source: Arc<SourceShared>,
+    source: Arc<SourceCounters>,
     dsps: Vec<ChannelDsp>,
     sink: FrameSink,
     framing: StreamFraming,
@@ -689,7 +690,7 @@ impl PathRig {
         let instants = spec.hop.div_ceil(FRAME_SAMPLES) * FRAME_SAMPLES;
         let (bytes, frame_bytes) =
             encode_frames(format, channels, instants, FRAME_SAMPLES, signal, FS);
-        let source = Arc::new(SourceShared::new("bench", "tcp-listen"));
+        let source = Arc::new(SourceCounters::new("bench", "tcp-listen"));
         let stream = StreamSpec {
             framing: crate::config::Framing::Bwf1,
             max_frame_bytes: DEFAULT_MAX_FRAME_BYTES,
@@ -734,8 +735,8 @@ impl PathRig {
         let r = side_by_side(fft, hop, min, || self.round());
         let dropped = lost(&self.shared);
         let rejected: u64 = self.source.rejected().iter().map(|(_, n)| n).sum();
-        let late = SourceShared::get(&self.source.frames_late);
-        let missing = SourceShared::get(&self.source.samples_missing);
+        let late = SourceCounters::get(&self.source.frames_late);
+        let missing = SourceCounters::get(&self.source.samples_missing);
         if dropped + rejected + late + missing > 0 {
             return Err(BenchError::Lost(format!(
                 "path rig lost data: dropped {dropped}, rejected {rejected}, late {late}, missing {missing}"
@@ -975,7 +976,7 @@ async fn ingest_step(
                 .iter()
                 .map(|c| c.counters.dropped_total())
                 .sum();
-            let missing = SourceShared::get(&state.sources[0].samples_missing);
+            let missing = SourceCounters::get(&state.sources[0].samples_missing);
             if processed + dropped + missing * channels as u64 >= want
                 || tokio::time::Instant::now() > deadline
             {
@@ -996,13 +997,13 @@ async fn ingest_step(
         .iter()
         .map(|c| c.counters.dropped_total())
         .sum();
-    let missing = SourceShared::get(&state.sources[0].samples_missing);
+    let missing = SourceCounters::get(&state.sources[0].samples_missing);
     let rejected: u64 = state.sources[0]
         .rejected()
         .iter()
         .map(|(_, n)| n)
         .sum::<u64>()
-        + SourceShared::get(&state.sources[0].frames_late);
+        + SourceCounters::get(&state.sources[0].frames_late);
     pipeline.stop().await;
     result?;
     let want = sent * channels as u64;

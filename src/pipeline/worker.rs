@@ -15,6 +15,7 @@ use std::thread::{self, JoinHandle, Thread};
 use std::time::{Duration, Instant};
 
 use crate::alarm::engine::ChannelAlarms;
+use crate::clock::unix_now_ns;
 use crate::config::{SpectrumKind, SpeedSource};
 use crate::counters::GapReason;
 use crate::dsp::average::Averager;
@@ -23,8 +24,8 @@ use crate::dsp::envelope::EnvelopeEngine;
 use crate::dsp::spectrum::SpectrumEngine;
 use crate::dsp::speed::{track_peak, TachDetector};
 use crate::dsp::stats;
+use crate::pipeline::state::{ChannelShared, ChannelSnapshot, MachineShared};
 use crate::ring::{Mark, ReadEvent, RingReader};
-use crate::snapshot::{unix_now_ns, ChannelShared, ChannelSnapshot, MachineShared};
 
 /// Envelope analysis state of a channel.
 struct EnvelopeState {

@@ -5,18 +5,18 @@
 //! replaces the snapshot with one atomic swap; readers take a cheap `load`
 //! and never block the worker. A snapshot is immutable once published.
 
-use std::collections::{BTreeMap, HashMap};
-use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
+use std::collections::HashMap;
+use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::mpsc::{Receiver, Sender};
 use std::sync::{Arc, Mutex, OnceLock};
 
 use crate::alarm::engine::{AlarmBoard, AlarmCommand};
-use std::time::{SystemTime, UNIX_EPOCH};
 
 use arc_swap::ArcSwapOption;
 
+use crate::clock::unix_now_ns;
 use crate::config::{ChannelSpec, Config, MachineSpec, SpeedSource};
-use crate::counters::ChannelCounters;
+use crate::counters::{ChannelCounters, SourceCounters};
 use crate::dsp::bands::BandValue;
 use crate::dsp::stats::Overall;
 use crate::dsp::window::Window;
@@ -108,77 +108,6 @@ impl ChannelShared {
     }
 }
 
-/// Live state of one source, written by its task; metrics and the API read it.
-pub struct SourceShared {
-    pub name: String,
-    pub kind: &'static str,
-    /// A peer is connected / the port is open / datagrams are arriving.
-    pub connected: AtomicBool,
-    /// Successful connects (TCP), accepted connections, opens (serial).
-    pub connections: AtomicU64,
-    /// Good frames (BWF1) or batches (lines, raw, sim).
-    pub frames: AtomicU64,
-    /// Bytes received.
-    pub bytes: AtomicU64,
-    /// Frames whose CRC did not match.
-    pub crc_errors: AtomicU64,
-    /// Times the stream decoder found the next magic after bad bytes.
-    pub resyncs: AtomicU64,
-    /// Bytes thrown away by the decoder (bad frames, junk, partial frames).
-    pub bytes_skipped: AtomicU64,
-    /// Instants lost in gaps of the sequence (first_sample jumps).
-    pub samples_missing: AtomicU64,
-    /// Frames dropped because they were duplicates or arrived late.
-    pub frames_late: AtomicU64,
-    /// Time of the last good frame, ns since the Unix epoch (0: never).
-    pub last_frame_unix_ns: AtomicU64,
-    /// Frames or connections rejected, by reason (a metric label). Written
-    /// only on the error path, so a mutex is fine here.
-    rejected: Mutex<BTreeMap<&'static str, u64>>,
-}
-
-impl SourceShared {
-    pub fn new(name: &str, kind: &'static str) -> SourceShared {
-        SourceShared {
-            name: name.to_string(),
-            kind,
-            connected: AtomicBool::new(false),
-            connections: AtomicU64::new(0),
-            frames: AtomicU64::new(0),
-            bytes: AtomicU64::new(0),
-            crc_errors: AtomicU64::new(0),
-            resyncs: AtomicU64::new(0),
-            bytes_skipped: AtomicU64::new(0),
-            samples_missing: AtomicU64::new(0),
-            frames_late: AtomicU64::new(0),
-            last_frame_unix_ns: AtomicU64::new(0),
-            rejected: Mutex::new(BTreeMap::new()),
-        }
-    }
-
-    pub fn is_connected(&self) -> bool {
-        self.connected.load(Ordering::Relaxed)
-    }
-
-    pub fn add_rejected(&self, reason: &'static str, n: u64) {
-        if let Ok(mut m) = self.rejected.lock() {
-            *m.entry(reason).or_insert(0) += n;
-        }
-    }
-
-    /// Rejections so far, by reason.
-    pub fn rejected(&self) -> Vec<(&'static str, u64)> {
-        self.rejected
-            .lock()
-            .map(|m| m.iter().map(|(k, v)| (*k, *v)).collect())
-            .unwrap_or_default()
-    }
-
-    pub fn get(counter: &AtomicU64) -> u64 {
-        counter.load(Ordering::Relaxed)
-    }
-}
-
 /// A machine's running speed, written by whichever worker measures it.
 pub struct MachineShared {
     pub spec: MachineSpec,
@@ -231,7 +160,7 @@ pub struct AppState {
     pub machines: Vec<Arc<MachineShared>>,
     pub channels: Vec<Arc<ChannelShared>>,
     pub by_name: HashMap<String, usize>,
-    pub sources: Vec<Arc<SourceShared>>,
+    pub sources: Vec<Arc<SourceCounters>>,
     pub started_unix_ns: u64,
 }
 
@@ -250,7 +179,7 @@ impl AppState {
         let sources = config
             .sources
             .iter()
-            .map(|s| Arc::new(SourceShared::new(&s.name, s.kind.as_str())))
+            .map(|s| Arc::new(SourceCounters::new(&s.name, s.kind.as_str())))
             .collect();
         AppState {
             alarm_io: None,
@@ -276,13 +205,7 @@ impl AppState {
         self.machines.iter().find(|m| m.spec.name == name)
     }
 
-    pub fn source(&self, name: &str) -> Option<&Arc<SourceShared>> {
+    pub fn source(&self, name: &str) -> Option<&Arc<SourceCounters>> {
         self.sources.iter().find(|s| s.name == name)
     }
-}
-
-pub fn unix_now_ns() -> u64 {
-    SystemTime::now()
-        .duration_since(UNIX_EPOCH)
-        .map_or(0, |d| d.as_nanos() as u64)
 }
