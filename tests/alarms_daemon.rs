@@ -8,7 +8,6 @@ use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 use bandwatch::alarm::capture;
-use bandwatch::alarm::engine::ChannelAlarms;
 use bandwatch::alarm::journal;
 use bandwatch::alarm::state::AlarmState;
 use bandwatch::config::{parse_str, Config, Detrend};
@@ -18,7 +17,7 @@ use bandwatch::dsp::speed::track_peak;
 use bandwatch::dsp::window::WindowKind;
 use bandwatch::pipeline::state::ChannelShared;
 use bandwatch::pipeline::worker::ChannelDsp;
-use bandwatch::ring::channel_ring;
+use bandwatch::pipeline::{AlarmMode, Builder, RingSize};
 
 fn temp_dir(name: &str) -> PathBuf {
     let d = std::env::temp_dir().join(format!("bandwatch-{name}-{}", std::process::id()));
@@ -316,26 +315,18 @@ health = {health}
 "#
     );
     let cfg = config(&text);
-    let spec = cfg.channels[0].clone();
-    let shared = Arc::new(ChannelShared::new(spec.clone()));
-    let (w, r) = channel_ring(1 << 20, 25_600.0, shared.counters.clone());
-    let mut dsp = ChannelDsp::new(shared.clone(), r);
-    let (_tx, rx) = std::sync::mpsc::channel();
-    let inbox = shared
-        .alarm_inbox
-        .lock()
-        .expect("inbox")
-        .take()
-        .unwrap_or(rx);
-    dsp.set_alarms(ChannelAlarms::new(
-        &spec,
-        &|_| None,
-        &|_| None,
-        None,
-        None,
-        inbox,
-    ));
-    (shared, w, dsp)
+    // As the daemon builds it, with alarms in memory (the storage_dir
+    // above is never opened).
+    let mut p = Builder::new(&cfg)
+        .ring(RingSize::Headroom(1 << 20))
+        .alarms(AlarmMode::InMemory)
+        .gather(false)
+        .assemble()
+        .expect("assemble")
+        .inline();
+    let w = p.take_inputs().pop().expect("one input").writer;
+    let dsp = p.channels.pop().expect("one channel");
+    (dsp.shared().clone(), w, dsp)
 }
 
 fn state_of(shared: &ChannelShared) -> (bool, AlarmState) {

@@ -138,10 +138,43 @@ fn ns(t_s: f64) -> u64 {
     (t_s * 1e9).max(0.0) as u64
 }
 
-/// Where captures come from and go.
+/// How much signal a capture keeps around its trip.
+#[derive(Debug, Clone, Copy, PartialEq)]
 pub struct CaptureSetup {
     pub pre_s: f64,
     pub post_s: f64,
+}
+
+/// What a channel's alarms start from and report to.
+pub struct AlarmContext<'a> {
+    /// Latches and acknowledgements the journal remembers, by alarm name.
+    pub memory: &'a dyn Fn(&str) -> Option<AlarmMemory>,
+    /// Stored baselines, by alarm name.
+    pub baseline: &'a dyn Fn(&str) -> Option<Baseline>,
+    /// Where events, captures and learned baselines go (None: nowhere).
+    pub outbox: Option<Outbox>,
+    /// Capture lengths (None: no captures).
+    pub captures: Option<CaptureSetup>,
+    /// Operator commands for this channel (acknowledge, re-learn).
+    pub commands: Receiver<AlarmCommand>,
+}
+
+impl AlarmContext<'static> {
+    /// Alarms that remember nothing and write nothing: health, limits and
+    /// the published board only.
+    pub fn in_memory(commands: Receiver<AlarmCommand>) -> AlarmContext<'static> {
+        AlarmContext {
+            memory: &nothing::<AlarmMemory>,
+            baseline: &nothing::<Baseline>,
+            outbox: None,
+            captures: None,
+            commands,
+        }
+    }
+}
+
+fn nothing<T>(_: &str) -> Option<T> {
+    None
 }
 
 pub struct ChannelAlarms {
@@ -167,14 +200,14 @@ pub struct ChannelAlarms {
 impl ChannelAlarms {
     /// Builds the alarms of `spec`, restoring latches from `memories` (by
     /// alarm name) and limits from the stored `baselines` (by alarm index).
-    pub fn new(
-        spec: &ChannelSpec,
-        memories: &dyn Fn(&str) -> Option<AlarmMemory>,
-        baselines: &dyn Fn(&str) -> Option<Baseline>,
-        outbox: Option<Outbox>,
-        captures: Option<CaptureSetup>,
-        commands: Receiver<AlarmCommand>,
-    ) -> ChannelAlarms {
+    pub fn new(spec: &ChannelSpec, ctx: AlarmContext<'_>) -> ChannelAlarms {
+        let AlarmContext {
+            memory: memories,
+            baseline: baselines,
+            outbox,
+            captures,
+            commands,
+        } = ctx;
         let mut clock = Clock::new();
         let now = clock.now();
         let fs = spec.sample_rate_hz;

@@ -1,21 +1,36 @@
 //! The pipeline: the one place that builds rings, DSP workers and alarm
-//! engines from a validated config, starts them, and stops them.
+//! engines from a validated config, starts them and stops them.
 //!
-//! Everything downstream of the sources is assembled here, so the daemon,
-//! `replay`, `selftest` and the bench rigs all run the same pipeline.
+//! Everything downstream of the sources is assembled by [`Builder`], so the
+//! daemon, `replay`, `selftest`, the bench rigs and the tests all run the
+//! same pipeline: same ring sizing, same alarm wiring, same speed sharing.
+//!
+//! ```text
+//! Builder::new(&config)            daemon defaults: rings of [dsp] ring_seconds,
+//!     .ring(..) .alarms(..)        alarms as configured, gathering on
+//!     .assemble()? ── Assembly ──┬─ .start()   worker threads + source tasks (the daemon)
+//!                                └─ .inline()  channels driven by the caller (replay, bench)
+//! ```
+//!
+//! - [`state`]: what the workers publish and HTTP reads (`AppState`).
+//! - [`worker`]: one channel's DSP (`ChannelDsp`) and the worker threads.
 
 pub mod state;
 pub mod worker;
 
+use std::collections::BTreeMap;
+use std::sync::mpsc::Receiver;
 use std::sync::Arc;
 
 use tokio::sync::watch;
 
-use crate::alarm;
-use crate::config::{self, Config};
-use crate::ring::channel_ring;
+use crate::alarm::engine::{AlarmCommand, AlarmContext, CaptureSetup, ChannelAlarms};
+use crate::alarm::{self, state::AlarmMemory};
+use crate::config::alarms::AlarmsSpec;
+use crate::config::{ChannelSpec, Config};
+use crate::ring::{channel_ring, RingWriter};
 use crate::source::{self, ChannelInput, SourceOutputs};
-use state::AppState;
+use state::{AppState, ChannelShared};
 use worker::{ChannelDsp, Workers};
 
 #[derive(Debug, thiserror::Error)]
@@ -26,6 +41,267 @@ pub enum RunError {
     Alarms(String),
     #[error("HTTP server failed: {0}")]
     Http(#[source] std::io::Error),
+    #[error("no source named {0:?} in the config")]
+    UnknownSource(String),
+}
+
+/// How many samples each channel's ring holds.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum RingSize {
+    /// `[dsp] ring_seconds` of the channel's samples, at least two blocks
+    /// (the daemon).
+    FromConfig,
+    /// Two blocks plus this many samples: for a caller that drains the
+    /// rings after every write of at most that many samples (replay, a
+    /// whole record written at once).
+    Headroom(usize),
+}
+
+impl RingSize {
+    /// The capacity of `spec`'s ring.
+    pub fn capacity(self, config: &Config, spec: &ChannelSpec) -> usize {
+        match self {
+            RingSize::FromConfig => {
+                let n = (config.ring_seconds * spec.sample_rate_hz).ceil() as usize;
+                n.max(2 * spec.block)
+            }
+            RingSize::Headroom(n) => 2 * spec.block + n,
+        }
+    }
+}
+
+/// Which alarms the channels run.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum AlarmMode {
+    /// As configured: with `[alarms]`, the journal (replayed for latches),
+    /// captures, stored baselines and the operator token; without it,
+    /// health and limits in memory (the daemon).
+    FromConfig,
+    /// Health checks and limits evaluated and published, nothing read or
+    /// written on disk (bench rigs, tests).
+    InMemory,
+    /// No alarm engine at all (replay: spectra and bands only).
+    Off,
+}
+
+/// Assembles a pipeline from a validated config. See the module docs.
+pub struct Builder<'a> {
+    config: &'a Config,
+    ring: RingSize,
+    alarms: AlarmMode,
+    gather: bool,
+    blocks_per_turn: Option<usize>,
+    only_source: Option<String>,
+}
+
+impl<'a> Builder<'a> {
+    /// The daemon's pipeline: rings of `[dsp] ring_seconds`, alarms as
+    /// configured, gathering on (`ChannelDsp::set_gather`).
+    pub fn new(config: &'a Config) -> Builder<'a> {
+        Builder {
+            config,
+            ring: RingSize::FromConfig,
+            alarms: AlarmMode::FromConfig,
+            gather: true,
+            blocks_per_turn: None,
+            only_source: None,
+        }
+    }
+
+    pub fn ring(mut self, ring: RingSize) -> Self {
+        self.ring = ring;
+        self
+    }
+
+    pub fn alarms(mut self, alarms: AlarmMode) -> Self {
+        self.alarms = alarms;
+        self
+    }
+
+    /// Whether channels wait for all of a result's samples before
+    /// computing it (see `ChannelDsp::set_gather`).
+    pub fn gather(mut self, gather: bool) -> Self {
+        self.gather = gather;
+        self
+    }
+
+    /// Blocks one channel computes per turn (`replay` takes 1, so that it
+    /// sees every published result).
+    pub fn blocks_per_turn(mut self, n: usize) -> Self {
+        self.blocks_per_turn = Some(n);
+        self
+    }
+
+    /// Builds only the channels of one source (`replay`).
+    pub fn only_source(mut self, name: &str) -> Self {
+        self.only_source = Some(name.to_string());
+        self
+    }
+
+    /// Builds the shared state, the rings, each channel's DSP and alarms,
+    /// and (with `AlarmMode::FromConfig` and `[alarms]`) opens the journal
+    /// and capture store and starts the alarm I/O thread. Nothing else
+    /// runs yet.
+    pub fn assemble(self) -> Result<Assembly, RunError> {
+        let config = self.config;
+        if let Some(name) = &self.only_source {
+            if !config.sources.iter().any(|s| &s.name == name) {
+                return Err(RunError::UnknownSource(name.clone()));
+            }
+        }
+        let store = match (self.alarms, &config.alarms) {
+            (AlarmMode::FromConfig, Some(a)) => Some(AlarmStore::open(a)?),
+            _ => None,
+        };
+        let mut shared = Vec::new();
+        let mut inboxes = Vec::new();
+        for spec in &config.channels {
+            if self.only_source.as_ref().is_some_and(|s| &spec.source != s) {
+                continue;
+            }
+            let (ch, inbox) = ChannelShared::with_alarm_commands(spec.clone());
+            shared.push(Arc::new(ch));
+            inboxes.push(inbox);
+        }
+        let mut app = AppState::with_channels(config, shared);
+        if self.alarms == AlarmMode::FromConfig {
+            app = app.with_token(load_token(config));
+        }
+        if let Some(s) = &store {
+            app = app.with_alarm_io(s.io.shared().clone());
+        }
+        let state = Arc::new(app);
+        let mut dsps = Vec::new();
+        let mut writers = Vec::new();
+        for (ch, inbox) in state.channels.iter().zip(inboxes) {
+            let spec = &ch.spec;
+            let capacity = self.ring.capacity(config, spec);
+            let (w, r) = channel_ring(capacity, spec.sample_rate_hz, ch.counters.clone());
+            let mut dsp = ChannelDsp::with_machines(ch.clone(), r, &state.machines);
+            dsp.set_gather(self.gather);
+            if let Some(n) = self.blocks_per_turn {
+                dsp.set_blocks_per_turn(n);
+            }
+            match (self.alarms, &store) {
+                (AlarmMode::Off, _) => {}
+                (AlarmMode::FromConfig, Some(store)) => {
+                    dsp.set_alarms(store.channel_alarms(spec, inbox));
+                }
+                (AlarmMode::FromConfig | AlarmMode::InMemory, _) => {
+                    dsp.set_alarms(ChannelAlarms::new(spec, AlarmContext::in_memory(inbox)));
+                }
+            }
+            dsps.push(dsp);
+            writers.push(w);
+        }
+        Ok(Assembly {
+            config: config.clone(),
+            state,
+            dsps,
+            writers,
+            alarm_io: store.map(|s| s.io),
+        })
+    }
+
+    /// `assemble`, then `Assembly::start`. Must be called inside a tokio
+    /// runtime.
+    pub fn start(self) -> Result<Pipeline, RunError> {
+        self.assemble()?.start()
+    }
+}
+
+/// The operator token of `[alarms]`, or None with a warning (acknowledge
+/// and re-learn are then refused).
+fn load_token(config: &Config) -> Option<alarm::token::Token> {
+    let a = config.alarms.as_ref()?;
+    let Some(src) = &a.token else {
+        tracing::warn!(
+            "no token_file or token_env in [alarms]: acknowledge and re-learn will be refused"
+        );
+        return None;
+    };
+    match alarm::token::Token::load(src) {
+        Ok(t) => Some(t),
+        Err(e) => {
+            tracing::warn!(error = %e, "no operator token: acknowledge and re-learn will be refused");
+            None
+        }
+    }
+}
+
+/// Everything built, nothing running: start it as the daemon does, or
+/// drive it by hand.
+pub struct Assembly {
+    config: Config,
+    /// The read side, as HTTP gets it.
+    pub state: Arc<AppState>,
+    dsps: Vec<ChannelDsp>,
+    writers: Vec<RingWriter>,
+    alarm_io: Option<alarm::io::AlarmIo>,
+}
+
+impl Assembly {
+    /// Starts the DSP worker threads (`[dsp] workers`) and one task per
+    /// source. Must be called inside a tokio runtime.
+    pub fn start(self) -> Result<Pipeline, RunError> {
+        let Assembly {
+            config,
+            state,
+            dsps,
+            writers,
+            alarm_io,
+        } = self;
+        let (workers, wakers) = match Workers::start(config.workers, dsps) {
+            Ok(w) => w,
+            Err(e) => {
+                if let Some(io) = alarm_io {
+                    io.stop();
+                }
+                return Err(RunError::Workers(e));
+            }
+        };
+        let mut inputs: Vec<Option<ChannelInput>> = state
+            .channels
+            .iter()
+            .zip(writers)
+            .zip(wakers)
+            .map(|((ch, writer), waker)| Some(input_of(&ch.spec, writer, waker)))
+            .collect();
+        let outputs = config
+            .sources
+            .iter()
+            .map(|s| outputs_of(&state, &mut inputs, &s.name, s.channels))
+            .collect();
+        let (stop_tx, stop_rx) = watch::channel(false);
+        let sources = source::spawn_all(&config, outputs, &state.sources, stop_rx);
+        Ok(Pipeline {
+            state,
+            workers: Some(workers),
+            alarm_io,
+            sources,
+            stop_tx,
+        })
+    }
+
+    /// No threads: the caller feeds the rings and polls the channels on
+    /// its own thread (replay, bench rigs, tests).
+    pub fn inline(self) -> Inline {
+        let me = std::thread::current();
+        let inputs = self
+            .state
+            .channels
+            .iter()
+            .zip(self.writers)
+            .map(|(ch, w)| Some(input_of(&ch.spec, w, me.clone())))
+            .collect();
+        Inline {
+            config: self.config,
+            state: self.state,
+            channels: self.dsps,
+            inputs,
+            alarm_io: self.alarm_io,
+        }
+    }
 }
 
 /// The running pipeline without its HTTP server: sources, rings, workers.
@@ -38,106 +314,14 @@ pub struct Pipeline {
 }
 
 impl Pipeline {
-    /// Builds rings for every channel, starts the DSP workers and the source
-    /// tasks. Must be called inside a tokio runtime.
+    /// The daemon's pipeline for `config`, started (`Builder::new(config).start()`).
+    /// Must be called inside a tokio runtime.
     pub fn start(config: &Config) -> Result<Pipeline, RunError> {
-        let mut app = AppState::new(config);
-        let alarms = match &config.alarms {
-            None => None,
-            Some(a) => Some(start_alarm_io(a)?),
-        };
-        if let Some(a) = &config.alarms {
-            if let Some(src) = &a.token {
-                match alarm::token::Token::load(src) {
-                    Ok(t) => app.token = Some(t),
-                    Err(e) => {
-                        tracing::warn!(error = %e, "no operator token: acknowledge and re-learn will be refused")
-                    }
-                }
-            } else {
-                tracing::warn!("no token_file or token_env in [alarms]: acknowledge and re-learn will be refused");
-            }
-        }
-        if let Some((io, ..)) = &alarms {
-            app.alarm_io = Some(io.shared().clone());
-        }
-        let state = Arc::new(app);
-        let mut outputs: Vec<SourceOutputs> = config
-            .sources
-            .iter()
-            .map(|s| SourceOutputs::new(s.channels))
-            .collect();
-        let mut dsps = Vec::new();
-        let mut writers = Vec::new();
-        for ch in &state.channels {
-            let spec = &ch.spec;
-            let capacity = (config.ring_seconds * spec.sample_rate_hz).ceil() as usize;
-            let capacity = capacity.max(2 * spec.block);
-            let (w, r) = channel_ring(capacity, spec.sample_rate_hz, ch.counters.clone());
-            let mut dsp = ChannelDsp::with_machines(ch.clone(), r, &state.machines);
-            dsp.set_gather(true);
-            let inbox = ch.alarm_inbox.lock().ok().and_then(|mut g| g.take());
-            if let Some(inbox) = inbox {
-                let name = spec.name.clone();
-                let (outbox, memories, captures, baselines_dir) = match (&alarms, &config.alarms) {
-                    (Some((_, outbox, memories)), Some(a)) => (
-                        Some(outbox.clone()),
-                        Some(memories),
-                        Some(alarm::engine::CaptureSetup {
-                            pre_s: a.capture_pre_s,
-                            post_s: a.capture_post_s,
-                        }),
-                        Some(a.baselines_dir()),
-                    ),
-                    _ => (None, None, None, None),
-                };
-                let memory = |band: &str| {
-                    memories.and_then(|m| m.get(&(name.clone(), band.to_string())).copied())
-                };
-                let baseline = |band: &str| {
-                    let dir = baselines_dir.as_ref()?;
-                    match alarm::baseline::load(dir, &name, band) {
-                        Ok(b) => b,
-                        Err(e) => {
-                            tracing::warn!(channel = %name, band, error = %e, "stored baseline unreadable; learning again");
-                            None
-                        }
-                    }
-                };
-                dsp.set_alarms(alarm::engine::ChannelAlarms::new(
-                    spec, &memory, &baseline, outbox, captures, inbox,
-                ));
-            }
-            dsps.push(dsp);
-            writers.push(w);
-        }
-        let (workers, wakers) = Workers::start(config.workers, dsps).map_err(RunError::Workers)?;
-        for ((ch, writer), waker) in state.channels.iter().zip(writers).zip(wakers) {
-            let spec = &ch.spec;
-            if let Some(i) = config.sources.iter().position(|s| s.name == spec.source) {
-                outputs[i].attach(
-                    spec.index,
-                    ChannelInput {
-                        writer,
-                        scale: spec.scale,
-                        offset: spec.offset,
-                        waker,
-                    },
-                );
-            }
-        }
-        let (stop_tx, stop_rx) = watch::channel(false);
-        let sources = source::spawn_all(config, outputs, &state.sources, stop_rx);
-        Ok(Pipeline {
-            state,
-            workers: Some(workers),
-            alarm_io: alarms.map(|(io, ..)| io),
-            sources,
-            stop_tx,
-        })
+        Builder::new(config).start()
     }
 
-    /// Stops the sources, then the workers.
+    /// Stops the sources, then the workers (which finish their alarms'
+    /// captures), then the alarm I/O thread.
     pub async fn stop(mut self) {
         let _ = self.stop_tx.send(true);
         for t in self.sources.drain(..) {
@@ -153,36 +337,169 @@ impl Pipeline {
     }
 }
 
-type AlarmMemories = std::collections::BTreeMap<(String, String), alarm::state::AlarmMemory>;
+/// A pipeline without threads, driven by its caller: write samples into
+/// the channels' inputs (or a source's outputs), then [`Inline::drain`].
+pub struct Inline {
+    config: Config,
+    pub state: Arc<AppState>,
+    /// Each built channel's DSP, in config order.
+    pub channels: Vec<ChannelDsp>,
+    inputs: Vec<Option<ChannelInput>>,
+    alarm_io: Option<alarm::io::AlarmIo>,
+}
 
-/// Opens the journal (replaying it), the capture store, and starts the
-/// alarm I/O thread.
-fn start_alarm_io(
-    a: &config::alarms::AlarmsSpec,
-) -> Result<(alarm::io::AlarmIo, alarm::io::Outbox, AlarmMemories), RunError> {
-    let (journal, replay) = alarm::journal::Journal::open(&a.journal_dir(), a.journal)
-        .map_err(|e| RunError::Alarms(e.to_string()))?;
-    if replay.bad_lines > 0 || replay.torn_tail || replay.unreadable_files > 0 {
-        tracing::warn!(
-            bad_lines = replay.bad_lines,
-            torn_tail = replay.torn_tail,
-            unreadable_files = replay.unreadable_files,
-            "journal had damaged lines (skipped)"
-        );
+impl Inline {
+    /// The inputs of source `name`'s channels, as its task would get them
+    /// (for a decoder fed by hand). Each input can be taken once.
+    pub fn source_outputs(&mut self, name: &str) -> Result<SourceOutputs, RunError> {
+        let source = self
+            .config
+            .sources
+            .iter()
+            .position(|s| s.name == name)
+            .ok_or_else(|| RunError::UnknownSource(name.to_string()))?;
+        let width = self.config.sources[source].channels;
+        Ok(outputs_of(&self.state, &mut self.inputs, name, width))
     }
-    tracing::info!(events = replay.events.len(), files = replay.files, dir = %a.journal_dir().display(), "journal replayed");
-    let (store, cleanup) = alarm::capture::CaptureStore::open(&a.captures_dir(), a.retention)
-        .map_err(|e| RunError::Alarms(e.to_string()))?;
-    if cleanup.temp_files > 0 || cleanup.orphans > 0 {
-        tracing::warn!(
-            temp_files = cleanup.temp_files,
-            orphans = cleanup.orphans,
-            "removed unfinished capture files left by a crash"
-        );
+
+    /// Every channel's input not yet taken, in config order (to write
+    /// channels directly, without a source's de-interleaving).
+    pub fn take_inputs(&mut self) -> Vec<ChannelInput> {
+        self.inputs.iter_mut().filter_map(Option::take).collect()
     }
-    let memories = alarm::journal::alarm_memories(&replay.events);
-    let (io, outbox) =
-        alarm::io::AlarmIo::start(journal, store, a.baselines_dir(), &replay.events, 4096)
+
+    /// Polls every channel until none has work left.
+    pub fn drain(&mut self) {
+        drain(&mut self.channels);
+    }
+
+    /// Finishes the channels' alarms and stops the alarm I/O thread.
+    pub fn finish(mut self) {
+        for ch in &mut self.channels {
+            ch.finish();
+        }
+        if let Some(io) = self.alarm_io.take() {
+            io.stop();
+        }
+    }
+}
+
+/// Polls `channels` until none has work left.
+pub fn drain(channels: &mut [ChannelDsp]) {
+    loop {
+        let mut worked = false;
+        for d in channels.iter_mut() {
+            worked |= d.poll();
+        }
+        if !worked {
+            return;
+        }
+    }
+}
+
+/// The journal, capture store and baselines of `[alarms]`, with the I/O
+/// thread that writes them.
+struct AlarmStore {
+    io: alarm::io::AlarmIo,
+    outbox: alarm::io::Outbox,
+    memories: BTreeMap<(String, String), AlarmMemory>,
+    captures: CaptureSetup,
+    baselines_dir: std::path::PathBuf,
+}
+
+impl AlarmStore {
+    /// Opens the journal (replaying it), the capture store, and starts the
+    /// alarm I/O thread.
+    fn open(a: &AlarmsSpec) -> Result<AlarmStore, RunError> {
+        let (journal, replay) = alarm::journal::Journal::open(&a.journal_dir(), a.journal)
             .map_err(|e| RunError::Alarms(e.to_string()))?;
-    Ok((io, outbox, memories))
+        if replay.bad_lines > 0 || replay.torn_tail || replay.unreadable_files > 0 {
+            tracing::warn!(
+                bad_lines = replay.bad_lines,
+                torn_tail = replay.torn_tail,
+                unreadable_files = replay.unreadable_files,
+                "journal had damaged lines (skipped)"
+            );
+        }
+        tracing::info!(events = replay.events.len(), files = replay.files, dir = %a.journal_dir().display(), "journal replayed");
+        let (store, cleanup) = alarm::capture::CaptureStore::open(&a.captures_dir(), a.retention)
+            .map_err(|e| RunError::Alarms(e.to_string()))?;
+        if cleanup.temp_files > 0 || cleanup.orphans > 0 {
+            tracing::warn!(
+                temp_files = cleanup.temp_files,
+                orphans = cleanup.orphans,
+                "removed unfinished capture files left by a crash"
+            );
+        }
+        let memories = alarm::journal::alarm_memories(&replay.events);
+        let (io, outbox) =
+            alarm::io::AlarmIo::start(journal, store, a.baselines_dir(), &replay.events, 4096)
+                .map_err(|e| RunError::Alarms(e.to_string()))?;
+        Ok(AlarmStore {
+            io,
+            outbox,
+            memories,
+            captures: CaptureSetup {
+                pre_s: a.capture_pre_s,
+                post_s: a.capture_post_s,
+            },
+            baselines_dir: a.baselines_dir(),
+        })
+    }
+
+    /// A channel's alarms with its remembered latches and stored baselines.
+    fn channel_alarms(&self, spec: &ChannelSpec, inbox: Receiver<AlarmCommand>) -> ChannelAlarms {
+        let name = &spec.name;
+        let memory = |band: &str| {
+            self.memories
+                .get(&(name.clone(), band.to_string()))
+                .copied()
+        };
+        let baseline = |band: &str| match alarm::baseline::load(&self.baselines_dir, name, band) {
+            Ok(b) => b,
+            Err(e) => {
+                tracing::warn!(channel = %name, band, error = %e, "stored baseline unreadable; learning again");
+                None
+            }
+        };
+        ChannelAlarms::new(
+            spec,
+            AlarmContext {
+                memory: &memory,
+                baseline: &baseline,
+                outbox: Some(self.outbox.clone()),
+                captures: Some(self.captures),
+                commands: inbox,
+            },
+        )
+    }
+}
+
+/// A channel's input as its source writes it: ring, scaling, waker.
+fn input_of(spec: &ChannelSpec, writer: RingWriter, waker: std::thread::Thread) -> ChannelInput {
+    ChannelInput {
+        writer,
+        scale: spec.scale,
+        offset: spec.offset,
+        waker,
+    }
+}
+
+/// The outputs of source `name` (`width` channels per instant): the inputs
+/// of its channels, taken out of `inputs` (one per built channel).
+fn outputs_of(
+    state: &AppState,
+    inputs: &mut [Option<ChannelInput>],
+    name: &str,
+    width: usize,
+) -> SourceOutputs {
+    let mut out = SourceOutputs::new(width);
+    for (ch, input) in state.channels.iter().zip(inputs.iter_mut()) {
+        if ch.spec.source == name {
+            if let Some(i) = input.take() {
+                out.attach(ch.spec.index, i);
+            }
+        }
+    }
+    out
 }

@@ -11,6 +11,8 @@ use std::sync::mpsc::{Receiver, Sender};
 use std::sync::{Arc, Mutex, OnceLock};
 
 use crate::alarm::engine::{AlarmBoard, AlarmCommand};
+use crate::alarm::io::IoShared;
+use crate::alarm::token::Token;
 
 use arc_swap::ArcSwapOption;
 
@@ -57,8 +59,6 @@ pub struct ChannelShared {
     pub alarm_board: ArcSwapOption<AlarmBoard>,
     /// Operator commands to the channel's worker (acknowledge, re-learn).
     pub alarm_commands: Mutex<Sender<AlarmCommand>>,
-    /// The receiving end, taken once by the worker.
-    pub alarm_inbox: Mutex<Option<Receiver<AlarmCommand>>>,
     /// The worker thread, to wake it for a command.
     pub worker: OnceLock<std::thread::Thread>,
     /// Window figures, for converting the power spectrum to other scalings.
@@ -69,20 +69,28 @@ pub struct ChannelShared {
 }
 
 impl ChannelShared {
+    /// A channel without alarms: a command to it is refused (`command`
+    /// returns false).
     pub fn new(spec: ChannelSpec) -> ChannelShared {
+        ChannelShared::with_alarm_commands(spec).0
+    }
+
+    /// A channel and the receiving end of its operator commands, for the
+    /// alarm engine the pipeline builds.
+    pub fn with_alarm_commands(spec: ChannelSpec) -> (ChannelShared, Receiver<AlarmCommand>) {
         let w = Window::new(spec.window, spec.block);
         let (tx, rx) = std::sync::mpsc::channel();
-        ChannelShared {
+        let ch = ChannelShared {
             alarm_board: ArcSwapOption::empty(),
             alarm_commands: Mutex::new(tx),
-            alarm_inbox: Mutex::new(Some(rx)),
             worker: OnceLock::new(),
             window_enbw_bins: w.enbw_bins(),
             window_coherent_gain: w.coherent_gain(),
             spec: Arc::new(spec),
             counters: Arc::new(ChannelCounters::default()),
             snapshot: ArcSwapOption::empty(),
-        }
+        };
+        (ch, rx)
     }
 
     /// Noise bandwidth in Hz: ENBW·fs/block. Density = power / this.
@@ -152,11 +160,11 @@ impl MachineShared {
 /// The read side of the whole pipeline, handed to HTTP.
 pub struct AppState {
     /// The alarm I/O thread's counters and recent events (None without `[alarms]`).
-    pub alarm_io: Option<Arc<crate::alarm::io::IoShared>>,
+    pub alarm_io: Option<Arc<IoShared>>,
     /// Where captures are stored (None without `[alarms]`).
     pub captures_dir: Option<std::path::PathBuf>,
     /// Bearer token for operator actions (None: such actions are refused).
-    pub token: Option<crate::alarm::token::Token>,
+    pub token: Option<Token>,
     pub machines: Vec<Arc<MachineShared>>,
     pub channels: Vec<Arc<ChannelShared>>,
     pub by_name: HashMap<String, usize>,
@@ -165,12 +173,20 @@ pub struct AppState {
 }
 
 impl AppState {
+    /// The read side of `config`, every channel without alarms (HTTP
+    /// tests); the pipeline builds it with [`AppState::with_channels`].
     pub fn new(config: &Config) -> AppState {
-        let channels: Vec<Arc<ChannelShared>> = config
+        let channels = config
             .channels
             .iter()
             .map(|c| Arc::new(ChannelShared::new(c.clone())))
             .collect();
+        AppState::with_channels(config, channels)
+    }
+
+    /// The read side of `config` over the given channels (all of them, or
+    /// one source's for `replay`).
+    pub fn with_channels(config: &Config, channels: Vec<Arc<ChannelShared>>) -> AppState {
         let by_name = channels
             .iter()
             .enumerate()
@@ -195,6 +211,18 @@ impl AppState {
             sources,
             started_unix_ns: unix_now_ns(),
         }
+    }
+
+    /// With the operator token (None: operator actions are refused).
+    pub fn with_token(mut self, token: Option<Token>) -> AppState {
+        self.token = token;
+        self
+    }
+
+    /// With the alarm I/O thread's counters and recent events.
+    pub fn with_alarm_io(mut self, io: Arc<IoShared>) -> AppState {
+        self.alarm_io = Some(io);
+        self
     }
 
     pub fn channel(&self, name: &str) -> Option<&Arc<ChannelShared>> {

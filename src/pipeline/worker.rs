@@ -480,7 +480,8 @@ impl ChannelDsp {
     }
 }
 
-/// Running worker threads.
+/// Running worker threads. Dropping them stops and joins them (as
+/// [`Workers::stop`] does), so no thread outlives its pipeline.
 pub struct Workers {
     stop: Arc<AtomicBool>,
     handles: Vec<JoinHandle<()>>,
@@ -490,18 +491,25 @@ impl Workers {
     /// Starts `n` workers and deals the channels out round-robin. Returns the
     /// workers and, per channel (in the given order), the thread to unpark
     /// when new samples arrive.
+    ///
+    /// # Errors
+    /// The OS refused a thread. The workers already started are stopped and
+    /// joined before the error is returned.
     pub fn start(n: usize, channels: Vec<ChannelDsp>) -> std::io::Result<(Workers, Vec<Thread>)> {
         let n = n.max(1).min(channels.len().max(1));
-        let stop = Arc::new(AtomicBool::new(false));
         let count = channels.len();
         let mut sets: Vec<Vec<(usize, ChannelDsp)>> = (0..n).map(|_| Vec::new()).collect();
         for (i, ch) in channels.into_iter().enumerate() {
             sets[i % n].push((i, ch));
         }
-        let mut handles = Vec::new();
+        // Built first, so that an early return drops (stops) what started.
+        let mut workers = Workers {
+            stop: Arc::new(AtomicBool::new(false)),
+            handles: Vec::new(),
+        };
         let mut wakers: Vec<Option<Thread>> = vec![None; count];
         for (w, set) in sets.into_iter().enumerate() {
-            let stop = stop.clone();
+            let stop = workers.stop.clone();
             let ids: Vec<usize> = set.iter().map(|(i, _)| *i).collect();
             let handle = thread::Builder::new()
                 .name(format!("bandwatch-dsp-{w}"))
@@ -512,24 +520,35 @@ impl Workers {
             for i in ids {
                 wakers[i] = Some(handle.thread().clone());
             }
-            handles.push(handle);
+            workers.handles.push(handle);
         }
         let wakers = wakers
             .into_iter()
             .map(|t| t.unwrap_or_else(thread::current))
             .collect();
-        Ok((Workers { stop, handles }, wakers))
+        Ok((workers, wakers))
     }
 
-    /// Asks every worker to stop and waits for them.
-    pub fn stop(self) {
+    /// Asks every worker to stop and waits for them (each finishes its
+    /// channels' alarms first).
+    pub fn stop(mut self) {
+        self.stop_and_join();
+    }
+
+    fn stop_and_join(&mut self) {
         self.stop.store(true, Ordering::Relaxed);
         for h in &self.handles {
             h.thread().unpark();
         }
-        for h in self.handles {
+        for h in self.handles.drain(..) {
             let _ = h.join();
         }
+    }
+}
+
+impl Drop for Workers {
+    fn drop(&mut self) {
+        self.stop_and_join();
     }
 }
 

@@ -328,17 +328,11 @@ fn dsp_with_alarms(ch: &Arc<ChannelShared>, reader: crate::ring::RingReader) -> 
 /// Gives a channel's DSP its alarms, once (the inbox can be taken once).
 fn attach_alarms(dsp: &mut ChannelDsp) {
     let shared = dsp.shared().clone();
-    let inbox = shared.alarm_inbox.lock().ok().and_then(|mut g| g.take());
-    if let Some(inbox) = inbox {
-        dsp.set_alarms(crate::alarm::engine::ChannelAlarms::new(
-            &shared.spec,
-            &|_| None,
-            &|_| None,
-            None,
-            None,
-            inbox,
-        ));
-    }
+    let (_commands, inbox) = std::sync::mpsc::channel();
+    dsp.set_alarms(crate::alarm::engine::ChannelAlarms::new(
+        &shared.spec,
+        crate::alarm::engine::AlarmContext::in_memory(inbox),
+    ));
 }
 
 /// Polls every channel until none has work left.
@@ -879,7 +873,8 @@ async fn ingest_step(
     let gathered_s = config.channels.first().map_or(0.0, |c| {
         (c.block + c.average_count.saturating_sub(1) as usize * c.hop) as f64 / fs
     });
-    let pipeline = crate::Pipeline::start(&config).map_err(|e| BenchError::Lost(e.to_string()))?;
+    let pipeline =
+        crate::pipeline::Pipeline::start(&config).map_err(|e| BenchError::Lost(e.to_string()))?;
     let state = pipeline.state.clone();
     let udp_target = match transport {
         Transport::Udp => Some(

@@ -9,11 +9,9 @@ use std::sync::Arc;
 
 use crate::config::{Config, SourceKind, StreamSpec};
 use crate::counters::SourceCounters;
-use crate::pipeline::state::{ChannelShared, MachineShared};
 use crate::pipeline::worker::ChannelDsp;
-use crate::ring::channel_ring;
+use crate::pipeline::{AlarmMode, Builder, RingSize};
 use crate::source::framed::{FrameSink, StreamFraming};
-use crate::source::{ChannelInput, SourceOutputs};
 
 #[derive(Debug, thiserror::Error)]
 pub enum ReplayError {
@@ -86,36 +84,25 @@ pub fn replay(
             .ok_or(ReplayError::NoSource)?,
     };
     let stream = stream_of(&spec.kind).ok_or(ReplayError::NoSource)?;
-    let mut outputs = SourceOutputs::new(spec.channels);
-    let machines: Vec<Arc<MachineShared>> = config
-        .machines
-        .iter()
-        .map(|m| Arc::new(MachineShared::new(m.clone())))
-        .collect();
-    let mut dsps = Vec::new();
-    for ch in config.channels.iter().filter(|c| c.source == spec.name) {
-        let shared = Arc::new(ChannelShared::new(ch.clone()));
-        // Replay drains the ring after every read, so it never overflows;
-        // size it for the largest read plus a block.
-        let cap = 2 * ch.block + (1 << 17);
-        let (w, r) = channel_ring(cap, ch.sample_rate_hz, shared.counters.clone());
-        let mut dsp = ChannelDsp::with_machines(shared, r, &machines);
-        dsp.set_blocks_per_turn(1);
-        dsps.push(dsp);
-        outputs.attach(
-            ch.index,
-            ChannelInput {
-                writer: w,
-                scale: ch.scale,
-                offset: ch.offset,
-                waker: std::thread::current(),
-            },
-        );
-    }
-    if dsps.is_empty() {
+    // Replay drains the rings after every read, so they never overflow:
+    // sized for the largest read plus two blocks.
+    let ring = RingSize::Headroom(1 << 17);
+    let mut pipeline = Builder::new(config)
+        .only_source(&spec.name)
+        .ring(ring)
+        .alarms(AlarmMode::Off)
+        .gather(false)
+        .blocks_per_turn(1)
+        .assemble()
+        .map_err(|e| ReplayError::Decoder(e.to_string()))?
+        .inline();
+    if pipeline.channels.is_empty() {
         return Err(ReplayError::NoChannels(spec.name.clone()));
     }
-    let state = Arc::new(SourceCounters::new(&spec.name, spec.kind.as_str()));
+    let outputs = pipeline
+        .source_outputs(&spec.name)
+        .map_err(|e| ReplayError::Decoder(e.to_string()))?;
+    let state = pipeline.state.sources[source_index(config, &spec.name)].clone();
     let mut sink = FrameSink::new(outputs, state.clone(), spec.sample_rate_hz);
     let mut framing = StreamFraming::new(&stream, spec.channels).map_err(ReplayError::Decoder)?;
     let read_err = |source| ReplayError::Read {
@@ -124,7 +111,7 @@ pub fn replay(
     };
     let mut f = std::fs::File::open(file).map_err(read_err)?;
     sink.restart();
-    let mut seqs = vec![0u64; dsps.len()];
+    let mut seqs = vec![0u64; pipeline.channels.len()];
     let mut buf = vec![0u8; 65_536];
     loop {
         let n = f.read(&mut buf).map_err(read_err)?;
@@ -136,7 +123,7 @@ pub fn replay(
             .bytes
             .fetch_add(n as u64, std::sync::atomic::Ordering::Relaxed);
         framing.feed(&buf[..n], &mut sink);
-        for (dsp, seq) in dsps.iter_mut().zip(seqs.iter_mut()) {
+        for (dsp, seq) in pipeline.channels.iter_mut().zip(seqs.iter_mut()) {
             while dsp.poll() {
                 emit(dsp, seq, out)?;
             }
@@ -144,6 +131,14 @@ pub fn replay(
     }
     out.flush().map_err(ReplayError::Write)?;
     Ok(state)
+}
+
+fn source_index(config: &Config, name: &str) -> usize {
+    config
+        .sources
+        .iter()
+        .position(|s| s.name == name)
+        .unwrap_or_default()
 }
 
 fn emit(dsp: &ChannelDsp, seq: &mut u64, out: &mut dyn Write) -> Result<(), ReplayError> {
