@@ -127,7 +127,12 @@ impl Pipeline {
             }
         }
         let (stop_tx, stop_rx) = watch::channel(false);
-        let sources = source::spawn_all(config, outputs, &state.sources, stop_rx);
+        let sources = source::spawn_all(
+            config,
+            outputs,
+            &state.sources,
+            crate::shutdown::Shutdown::new(stop_rx),
+        );
         Ok(Pipeline {
             state,
             workers: Some(workers),

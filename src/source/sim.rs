@@ -14,16 +14,14 @@
 
 use std::f64::consts::PI;
 use std::sync::atomic::Ordering;
-use std::sync::Arc;
 use std::time::Duration;
 
-use tokio::sync::watch;
 use tokio::time::{Instant, MissedTickBehavior};
 
 use crate::clock::unix_now_ns;
+use crate::config::SourceKind;
 use crate::counters::GapReason;
-use crate::counters::SourceCounters;
-use crate::source::{note_frame, SourceOutputs};
+use crate::source::{note_frame, SourceContext};
 
 /// Channels the scenario produces.
 pub const CHANNELS: usize = crate::config::SIM_CHANNELS;
@@ -194,14 +192,18 @@ impl PumpSim {
 const CHUNK: usize = 2048;
 
 /// Plays the scenario in (scaled) real time until shutdown.
-pub async fn run(
-    fs: f64,
-    seed: u64,
-    speed: f64,
-    mut out: SourceOutputs,
-    state: Arc<SourceCounters>,
-    mut shutdown: watch::Receiver<bool>,
-) {
+pub async fn run(ctx: SourceContext) {
+    let SourceContext {
+        spec,
+        outputs: mut out,
+        counters: state,
+        mut shutdown,
+    } = ctx;
+    let SourceKind::Sim { seed, speed } = spec.kind else {
+        tracing::error!(source = %spec.name, kind = spec.kind.as_str(), "not a sim source");
+        return;
+    };
+    let fs = spec.sample_rate_hz;
     let mut sim = PumpSim::new(fs, seed);
     let mut buf = vec![0i32; CHUNK * CHANNELS];
     let start = Instant::now();
@@ -215,9 +217,9 @@ pub async fn run(
     loop {
         tokio::select! {
             _ = tick.tick() => {}
-            _ = shutdown.changed() => break,
+            _ = shutdown.recv() => break,
         }
-        if *shutdown.borrow() {
+        if shutdown.is_shutdown() {
             break;
         }
         let due = (start.elapsed().as_secs_f64() * fs * speed) as u64;
