@@ -243,6 +243,42 @@ pub async fn run(ctx: SourceContext) {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::config::SourceSpec;
+    use crate::source::SourceOutputs;
+
+    /// The task reads everything from its context, reports itself
+    /// connected while it plays, and ends when the signal is triggered.
+    #[tokio::test]
+    async fn plays_until_shutdown_from_its_context() {
+        let spec = SourceSpec {
+            name: "p2".to_string(),
+            sample_rate_hz: 25_600.0,
+            channels: CHANNELS,
+            kind: SourceKind::Sim {
+                seed: 3,
+                speed: 1.0,
+            },
+        };
+        let (ctx, signal) = SourceContext::new_test(spec, SourceOutputs::new(CHANNELS));
+        let counters = ctx.counters.clone();
+        assert_eq!((counters.name.as_str(), counters.kind), ("p2", "sim"));
+        let task = tokio::spawn(run(ctx));
+        let deadline = std::time::Instant::now() + Duration::from_secs(10);
+        while counters.frames.load(Ordering::Relaxed) == 0 {
+            assert!(std::time::Instant::now() < deadline, "no frame in 10 s");
+            tokio::time::sleep(Duration::from_millis(10)).await;
+        }
+        assert!(counters.is_connected());
+        signal.trigger();
+        let ended = tokio::time::timeout(Duration::from_secs(10), task).await;
+        assert!(matches!(ended, Ok(Ok(()))), "{ended:?}");
+        assert!(!counters.is_connected());
+        // 3 bytes counted per 24-bit sample, whole instants only.
+        assert_eq!(
+            counters.bytes.load(Ordering::Relaxed) % (3 * CHANNELS as u64),
+            0
+        );
+    }
 
     #[test]
     fn same_seed_same_samples() {
