@@ -17,7 +17,7 @@
 //! | serving | [`http`]: router, JSON API, Prometheus exposition |
 //! | assembly | [`pipeline`]: the one builder of rings, workers and alarm engines; the published state |
 //! | stages | [`source`] (sockets, serial, the simulator), [`ring`], [`dsp`] (pure kernels), [`alarm`] |
-//! | foundation | [`config`], [`frame`], [`counters`], [`units`], [`clock`], [`noise`] |
+//! | foundation | [`config`], [`frame`], [`counters`], [`units`], [`clock`], [`noise`], [`shutdown`] |
 
 pub mod alarm;
 pub mod clock;
@@ -30,6 +30,7 @@ pub mod http;
 pub mod noise;
 pub mod pipeline;
 pub mod ring;
+pub mod shutdown;
 pub mod source;
 pub mod tools;
 pub mod units;

@@ -9,6 +9,8 @@
 //!   where one datagram is one frame.
 //! - [`lines`]: text, one instant per line.
 //! - [`raw`]: headerless interleaved samples of a configured format.
+//! - [`wire`]: readers of interleaved samples, typed or still in wire
+//!   bytes, one channel's stretch at a time, scaled to f32.
 //!
 //! Every decoder works as *check, then parse*: "not enough bytes yet" is
 //! `Ok(None)` (or an empty batch), never an error. Bad input is returned as
@@ -19,6 +21,7 @@
 pub mod bwf1;
 pub mod lines;
 pub mod raw;
+pub mod wire;
 
 /// How one sample is stored on the wire. Integer formats carry converter
 /// counts, float formats carry values (volts or units, as the config says).

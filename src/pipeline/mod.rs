@@ -22,13 +22,12 @@ use std::collections::BTreeMap;
 use std::sync::mpsc::Receiver;
 use std::sync::Arc;
 
-use tokio::sync::watch;
-
 use crate::alarm::engine::{AlarmCommand, AlarmContext, CaptureSetup, ChannelAlarms};
 use crate::alarm::{self, state::AlarmMemory};
 use crate::config::alarms::AlarmsSpec;
 use crate::config::{ChannelSpec, Config};
 use crate::ring::{channel_ring, RingWriter};
+use crate::shutdown::ShutdownSignal;
 use crate::source::{self, ChannelInput, SourceOutputs};
 use state::{AppState, ChannelShared};
 use worker::{ChannelDsp, Workers};
@@ -272,14 +271,14 @@ impl Assembly {
             .iter()
             .map(|s| outputs_of(&state, &mut inputs, &s.name, s.channels))
             .collect();
-        let (stop_tx, stop_rx) = watch::channel(false);
-        let sources = source::spawn_all(&config, outputs, &state.sources, stop_rx);
+        let shutdown = ShutdownSignal::new();
+        let sources = source::spawn_all(&config, outputs, &state.sources, shutdown.subscribe());
         Ok(Pipeline {
             state,
             workers: Some(workers),
             alarm_io,
             sources,
-            stop_tx,
+            shutdown,
         })
     }
 
@@ -310,7 +309,7 @@ pub struct Pipeline {
     workers: Option<Workers>,
     alarm_io: Option<alarm::io::AlarmIo>,
     sources: Vec<tokio::task::JoinHandle<()>>,
-    stop_tx: watch::Sender<bool>,
+    shutdown: ShutdownSignal,
 }
 
 impl Pipeline {
@@ -323,7 +322,7 @@ impl Pipeline {
     /// Stops the sources, then the workers (which finish their alarms'
     /// captures), then the alarm I/O thread.
     pub async fn stop(mut self) {
-        let _ = self.stop_tx.send(true);
+        self.shutdown.trigger();
         for t in self.sources.drain(..) {
             let _ = t.await;
         }

@@ -19,8 +19,9 @@ use crate::counters::SourceCounters;
 use crate::frame::bwf1::{FrameError, Header, StreamDecoder};
 use crate::frame::lines::{LineBatch, LineDecoder, LineEvent};
 use crate::frame::raw::RawDecoder;
+use crate::frame::wire::{WireF32, WireF64, WireI16, WireI24, WireI32};
 use crate::frame::{SampleFormat, Samples};
-use crate::source::{note_frame, SourceOutputs, WireF32, WireF64, WireI16, WireI24, WireI32};
+use crate::source::{note_frame, SourceOutputs};
 
 /// Error logs of one kind are written at most this often per source.
 const LOG_EVERY: Duration = Duration::from_secs(5);
@@ -82,6 +83,12 @@ impl FrameSink {
     pub fn restart(&mut self) {
         self.next_sample = None;
         self.out.mark_discontinuity(GapReason::Restart);
+    }
+
+    /// Shows the link as up (a peer connected, the port open, datagrams
+    /// arriving) or down.
+    pub fn set_connected(&self, up: bool) {
+        self.state.connected.store(up, Ordering::Relaxed);
     }
 
     /// Counts and logs a rejected frame or connection.

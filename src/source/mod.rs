@@ -1,143 +1,39 @@
 //! Sources: tokio tasks that produce samples and push them, scaled to
 //! engineering units, into the per-channel rings.
 //!
-//! Every source kind hands its decoded data to a [`SourceOutputs`], which
-//! de-interleaves a frame, applies each channel's `scale`/`offset` and
-//! writes the runs into the rings. So whatever the transport, the DSP sees
-//! the same samples.
+//! This module owns the start of every source ([`spawn`]: one arm per
+//! source kind, each handed one [`SourceContext`]) and the last step of
+//! every source: a [`SourceOutputs`] de-interleaves a frame, applies each
+//! channel's `scale`/`offset` and writes the runs into the rings. So
+//! whatever the transport, the DSP sees the same samples. Reading samples
+//! out of wire bytes is the frame layer's (`frame::wire`).
 //!
 //! - `sim`: the built-in P2 pump scenario, paced in real time
-//! - `net`: `tcp-connect`, `tcp-listen`, `udp` readers (BWF1, lines, raw)
+//! - `tcp`: `tcp-connect` and `tcp-listen` readers (BWF1, lines, raw)
+//! - `udp`: the `udp` reader (one BWF1 frame per datagram)
 //! - `serial`: serial lines via tokio-serial
-//! - `framed`: frame checks, sequence tracking and counting for all of them
+//! - `framed`: frame checks, sequence tracking and counting for all the
+//!   readers
 
 pub mod framed;
-pub mod net;
 pub mod serial;
 pub mod sim;
+pub mod tcp;
+pub mod udp;
 
 use std::sync::atomic::Ordering;
 use std::sync::Arc;
 use std::thread::Thread;
 
-use tokio::sync::watch;
 use tokio::task::JoinHandle;
 
 use crate::clock::unix_now_ns;
 use crate::config::{Config, SourceKind, SourceSpec};
 use crate::counters::GapReason;
 use crate::counters::SourceCounters;
+use crate::frame::wire::{Interleaved, RawSample};
 use crate::ring::RingWriter;
-
-/// A raw sample as it arrives: integer counts or floating-point values.
-pub trait RawSample: Copy {
-    /// The largest magnitude a value of this type can have, for integer
-    /// types (`None` for floats, which may be anything, NaN included).
-    const MAX_ABS: Option<f64>;
-    fn to_f64(self) -> f64;
-}
-
-impl RawSample for i16 {
-    const MAX_ABS: Option<f64> = Some(32768.0);
-    fn to_f64(self) -> f64 {
-        f64::from(self)
-    }
-}
-impl RawSample for i32 {
-    const MAX_ABS: Option<f64> = Some(2_147_483_648.0);
-    fn to_f64(self) -> f64 {
-        f64::from(self)
-    }
-}
-impl RawSample for f32 {
-    const MAX_ABS: Option<f64> = None;
-    fn to_f64(self) -> f64 {
-        f64::from(self)
-    }
-}
-impl RawSample for f64 {
-    const MAX_ABS: Option<f64> = None;
-    fn to_f64(self) -> f64 {
-        self
-    }
-}
-
-/// Samples interleaved by instant, read one channel's stretch at a time:
-/// a typed slice, or the sample section of a BWF1 frame still in wire
-/// bytes (so a frame is scaled straight from the bytes it arrived in).
-pub trait Interleaved {
-    /// See [`RawSample::MAX_ABS`].
-    const MAX_ABS: Option<f64>;
-    /// Number of samples (all channels).
-    fn count(&self) -> usize;
-    /// Fills `out[t]` with sample `start + t * stride`, read as f64 (exact
-    /// for every format), times `scale` plus `offset`, rounded to f32.
-    fn scale_strided(&self, start: usize, stride: usize, scale: f64, offset: f64, out: &mut [f32]);
-}
-
-impl<T: RawSample> Interleaved for [T] {
-    const MAX_ABS: Option<f64> = T::MAX_ABS;
-    fn count(&self) -> usize {
-        self.len()
-    }
-    fn scale_strided(&self, start: usize, stride: usize, scale: f64, offset: f64, out: &mut [f32]) {
-        let src = self[start..].iter().step_by(stride);
-        for (o, x) in out.iter_mut().zip(src) {
-            *o = (x.to_f64() * scale + offset) as f32;
-        }
-    }
-}
-
-/// Defines a view of little-endian wire bytes as samples of one format.
-macro_rules! wire_format {
-    ($(#[$doc:meta])* $name:ident, $width:literal, $max:expr, |$c:ident| $decode:expr) => {
-        $(#[$doc])*
-        #[derive(Debug, Clone, Copy)]
-        pub struct $name<'a>(pub &'a [u8]);
-
-        impl Interleaved for $name<'_> {
-            const MAX_ABS: Option<f64> = $max;
-            fn count(&self) -> usize {
-                self.0.len() / $width
-            }
-            fn scale_strided(
-                &self,
-                start: usize,
-                stride: usize,
-                scale: f64,
-                offset: f64,
-                out: &mut [f32],
-            ) {
-                let src = self.0[start * $width..].chunks_exact($width).step_by(stride);
-                for (o, $c) in out.iter_mut().zip(src) {
-                    *o = ($decode * scale + offset) as f32;
-                }
-            }
-        }
-    };
-}
-
-wire_format!(
-    /// i16 wire samples.
-    WireI16, 2, Some(32768.0), |c| f64::from(i16::from_le_bytes([c[0], c[1]]))
-);
-wire_format!(
-    /// i24 wire samples: the 3 bytes go to the top of an i32, and the
-    /// arithmetic shift right sign-extends bit 23.
-    WireI24, 3, Some(8_388_608.0), |c| f64::from(i32::from_le_bytes([0, c[0], c[1], c[2]]) >> 8)
-);
-wire_format!(
-    /// i32 wire samples.
-    WireI32, 4, Some(2_147_483_648.0), |c| f64::from(i32::from_le_bytes([c[0], c[1], c[2], c[3]]))
-);
-wire_format!(
-    /// f32 wire samples.
-    WireF32, 4, None, |c| f64::from(f32::from_le_bytes([c[0], c[1], c[2], c[3]]))
-);
-wire_format!(
-    /// f64 wire samples.
-    WireF64, 8, None, |c| f64::from_le_bytes([c[0], c[1], c[2], c[3], c[4], c[5], c[6], c[7]])
-);
+use crate::shutdown::{Shutdown, ShutdownSignal};
 
 /// Channels de-interleaved together: one tile reads `TILE_CHANNELS`
 /// neighbouring samples of each instant (a cache line or less of wire
@@ -269,25 +165,60 @@ impl SourceOutputs {
     }
 }
 
-/// Starts one task per source. Each runs until `shutdown` turns true.
+/// Everything one source task is given: its config, the rings it writes,
+/// its counters, and when to stop.
+pub struct SourceContext {
+    pub spec: SourceSpec,
+    pub outputs: SourceOutputs,
+    pub counters: Arc<SourceCounters>,
+    pub shutdown: Shutdown,
+}
+
+impl SourceContext {
+    /// A context for a test: counters of its own (named after the spec),
+    /// and the signal that stops the source.
+    pub fn new_test(spec: SourceSpec, outputs: SourceOutputs) -> (SourceContext, ShutdownSignal) {
+        let signal = ShutdownSignal::new();
+        let counters = Arc::new(SourceCounters::new(&spec.name, spec.kind.as_str()));
+        let ctx = SourceContext {
+            spec,
+            outputs,
+            counters,
+            shutdown: signal.subscribe(),
+        };
+        (ctx, signal)
+    }
+}
+
+/// Starts one source's task: the one place where a source kind picks its
+/// reader. It runs until `ctx.shutdown` says stop.
+pub fn spawn(ctx: SourceContext) -> JoinHandle<()> {
+    match ctx.spec.kind {
+        SourceKind::Sim { .. } => tokio::spawn(sim::run(ctx)),
+        SourceKind::TcpConnect { .. } => tokio::spawn(tcp::run_connect(ctx)),
+        SourceKind::TcpListen { .. } => tokio::spawn(tcp::run_listen(ctx)),
+        SourceKind::Udp { .. } => tokio::spawn(udp::run(ctx)),
+        SourceKind::Serial { .. } => tokio::spawn(serial::run(ctx)),
+    }
+}
+
+/// Starts one task per source of `config`, the `i`th writing `outputs[i]`
+/// and counting in `shared[i]`. Each runs until `shutdown` says stop.
 pub fn spawn_all(
     config: &Config,
     mut outputs: Vec<SourceOutputs>,
     shared: &[Arc<SourceCounters>],
-    shutdown: watch::Receiver<bool>,
+    shutdown: Shutdown,
 ) -> Vec<JoinHandle<()>> {
     let mut tasks = Vec::new();
     for (i, spec) in config.sources.iter().enumerate().rev() {
-        let out = outputs.pop().unwrap_or_else(|| SourceOutputs::new(0));
-        let state = shared[i].clone();
-        let stop = shutdown.clone();
-        let spec: SourceSpec = spec.clone();
-        tasks.push(match spec.kind {
-            SourceKind::Sim { seed, speed } => {
-                tokio::spawn(sim::run(spec.sample_rate_hz, seed, speed, out, state, stop))
-            }
-            _ => tokio::spawn(net::run(spec, out, state, stop)),
-        });
+        let outputs = outputs.pop().unwrap_or_else(|| SourceOutputs::new(0));
+        tasks.push(spawn(SourceContext {
+            spec: spec.clone(),
+            outputs,
+            counters: shared[i].clone(),
+            shutdown: shutdown.clone(),
+        }));
     }
     tasks
 }
@@ -306,6 +237,7 @@ pub(crate) fn note_frame(state: &SourceCounters) {
 mod tests {
     use super::*;
     use crate::counters::ChannelCounters;
+    use crate::frame::wire::WireI16;
     use crate::ring::{channel_ring, ReadEvent, RingReader};
 
     fn outputs(width: usize, attach: &[usize]) -> (SourceOutputs, Vec<(usize, RingReader)>) {

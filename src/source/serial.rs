@@ -7,14 +7,22 @@ use std::sync::atomic::Ordering;
 use std::time::Duration;
 
 use tokio::io::AsyncReadExt;
-use tokio::sync::watch;
+use tokio::time::sleep;
 use tokio_serial::SerialPortBuilderExt;
 
 use crate::config::{FlowControl, Parity, SourceKind};
 use crate::counters::GapReason;
 use crate::source::framed::{FrameSink, StreamFraming};
+use crate::source::SourceContext;
 
-pub async fn run(kind: &SourceKind, mut sink: FrameSink, mut stop: watch::Receiver<bool>) {
+/// Runs a `serial` source until shutdown.
+pub async fn run(ctx: SourceContext) {
+    let SourceContext {
+        spec,
+        outputs,
+        counters,
+        mut shutdown,
+    } = ctx;
     let SourceKind::Serial {
         device,
         baud,
@@ -24,10 +32,12 @@ pub async fn run(kind: &SourceKind, mut sink: FrameSink, mut stop: watch::Receiv
         flow_control,
         stream,
         reopen_ms,
-    } = kind
+    } = &spec.kind
     else {
+        tracing::error!(source = %spec.name, kind = spec.kind.as_str(), "not a serial source");
         return;
     };
+    let mut sink = FrameSink::new(outputs, counters, spec.sample_rate_hz);
     let mut framing = match StreamFraming::new(stream, sink.out.width()) {
         Ok(f) => f,
         Err(e) => {
@@ -66,11 +76,11 @@ pub async fn run(kind: &SourceKind, mut sink: FrameSink, mut stop: watch::Receiv
                 failing = false;
                 sink.state.connections.fetch_add(1, Ordering::Relaxed);
                 sink.restart();
-                sink.state.connected.store(true, Ordering::Relaxed);
+                sink.set_connected(true);
                 let ended = loop {
                     let r = tokio::select! {
                         r = port.read(&mut buf) => r,
-                        _ = stop.changed() => break None,
+                        _ = shutdown.recv() => break None,
                     };
                     match r {
                         Ok(0) => break Some("port closed".to_string()),
@@ -82,7 +92,7 @@ pub async fn run(kind: &SourceKind, mut sink: FrameSink, mut stop: watch::Receiv
                         Err(e) => break Some(e.to_string()),
                     }
                 };
-                sink.state.connected.store(false, Ordering::Relaxed);
+                sink.set_connected(false);
                 framing.reset(&mut sink);
                 sink.out.mark_discontinuity(GapReason::Restart);
                 match ended {
@@ -100,11 +110,9 @@ pub async fn run(kind: &SourceKind, mut sink: FrameSink, mut stop: watch::Receiv
             }
         }
         tokio::select! {
-            _ = tokio::time::sleep(Duration::from_millis(*reopen_ms)) => {}
-            _ = stop.changed() => return,
-        }
-        if *stop.borrow() {
-            return;
+            biased;
+            _ = shutdown.recv() => return,
+            _ = sleep(Duration::from_millis(*reopen_ms)) => {}
         }
     }
 }

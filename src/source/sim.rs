@@ -14,16 +14,14 @@
 
 use std::f64::consts::PI;
 use std::sync::atomic::Ordering;
-use std::sync::Arc;
 use std::time::Duration;
 
-use tokio::sync::watch;
 use tokio::time::{Instant, MissedTickBehavior};
 
 use crate::clock::unix_now_ns;
+use crate::config::SourceKind;
 use crate::counters::GapReason;
-use crate::counters::SourceCounters;
-use crate::source::{note_frame, SourceOutputs};
+use crate::source::{note_frame, SourceContext};
 
 /// Channels the scenario produces.
 pub const CHANNELS: usize = crate::config::SIM_CHANNELS;
@@ -194,14 +192,18 @@ impl PumpSim {
 const CHUNK: usize = 2048;
 
 /// Plays the scenario in (scaled) real time until shutdown.
-pub async fn run(
-    fs: f64,
-    seed: u64,
-    speed: f64,
-    mut out: SourceOutputs,
-    state: Arc<SourceCounters>,
-    mut shutdown: watch::Receiver<bool>,
-) {
+pub async fn run(ctx: SourceContext) {
+    let SourceContext {
+        spec,
+        outputs: mut out,
+        counters: state,
+        mut shutdown,
+    } = ctx;
+    let SourceKind::Sim { seed, speed } = spec.kind else {
+        tracing::error!(source = %spec.name, kind = spec.kind.as_str(), "not a sim source");
+        return;
+    };
+    let fs = spec.sample_rate_hz;
     let mut sim = PumpSim::new(fs, seed);
     let mut buf = vec![0i32; CHUNK * CHANNELS];
     let start = Instant::now();
@@ -215,9 +217,9 @@ pub async fn run(
     loop {
         tokio::select! {
             _ = tick.tick() => {}
-            _ = shutdown.changed() => break,
+            _ = shutdown.recv() => break,
         }
-        if *shutdown.borrow() {
+        if shutdown.is_shutdown() {
             break;
         }
         let due = (start.elapsed().as_secs_f64() * fs * speed) as u64;
@@ -241,6 +243,42 @@ pub async fn run(
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::config::SourceSpec;
+    use crate::source::SourceOutputs;
+
+    /// The task reads everything from its context, reports itself
+    /// connected while it plays, and ends when the signal is triggered.
+    #[tokio::test]
+    async fn plays_until_shutdown_from_its_context() {
+        let spec = SourceSpec {
+            name: "p2".to_string(),
+            sample_rate_hz: 25_600.0,
+            channels: CHANNELS,
+            kind: SourceKind::Sim {
+                seed: 3,
+                speed: 1.0,
+            },
+        };
+        let (ctx, signal) = SourceContext::new_test(spec, SourceOutputs::new(CHANNELS));
+        let counters = ctx.counters.clone();
+        assert_eq!((counters.name.as_str(), counters.kind), ("p2", "sim"));
+        let task = tokio::spawn(run(ctx));
+        let deadline = std::time::Instant::now() + Duration::from_secs(10);
+        while counters.frames.load(Ordering::Relaxed) == 0 {
+            assert!(std::time::Instant::now() < deadline, "no frame in 10 s");
+            tokio::time::sleep(Duration::from_millis(10)).await;
+        }
+        assert!(counters.is_connected());
+        signal.trigger();
+        let ended = tokio::time::timeout(Duration::from_secs(10), task).await;
+        assert!(matches!(ended, Ok(Ok(()))), "{ended:?}");
+        assert!(!counters.is_connected());
+        // 3 bytes counted per 24-bit sample, whole instants only.
+        assert_eq!(
+            counters.bytes.load(Ordering::Relaxed) % (3 * CHANNELS as u64),
+            0
+        );
+    }
 
     #[test]
     fn same_seed_same_samples() {

@@ -1,22 +1,22 @@
-//! Network and serial readers: `tcp-connect`, `tcp-listen`, `udp`,
-//! `serial`. Each is one tokio task that owns its [`FrameSink`]; it logs
-//! every change of link state once, and counts what it rejects.
+//! The TCP sources: `tcp-connect` (dial the DAQ, reconnect with backoff)
+//! and `tcp-listen` (accept the DAQ's connection, one at a time, the second
+//! one refused or replacing the first as configured). Each is one tokio
+//! task that owns its [`FrameSink`]; it logs every change of link state
+//! once, and counts what it rejects.
 
 use std::net::SocketAddr;
 use std::sync::atomic::Ordering;
-use std::sync::Arc;
 use std::time::Duration;
 
 use tokio::io::{AsyncRead, AsyncReadExt};
-use tokio::net::{TcpListener, TcpStream, UdpSocket};
-use tokio::sync::watch;
+use tokio::net::{TcpListener, TcpStream};
+use tokio::time::sleep;
 
 use crate::clock::unix_now_ns;
-use crate::config::{Backoff, SecondConnection, SourceKind, SourceSpec, StreamSpec};
-use crate::counters::SourceCounters;
-use crate::frame::bwf1::DatagramDecoder;
+use crate::config::{Backoff, SecondConnection, SourceKind, StreamSpec};
+use crate::shutdown::Shutdown;
 use crate::source::framed::{FrameSink, StreamFraming};
-use crate::source::SourceOutputs;
+use crate::source::SourceContext;
 
 const READ_BUF: usize = 64 * 1024;
 
@@ -51,18 +51,6 @@ impl Retry {
     }
 }
 
-/// Waits for `d` or shutdown; true if shutdown came first.
-async fn sleep_or_stop(d: Duration, stop: &mut watch::Receiver<bool>) -> bool {
-    tokio::select! {
-        _ = tokio::time::sleep(d) => *stop.borrow(),
-        _ = stop.changed() => true,
-    }
-}
-
-fn set_connected(sink: &FrameSink, up: bool) {
-    sink.state.connected.store(up, Ordering::Relaxed);
-}
-
 /// Why a read loop ended.
 enum Ended {
     Shutdown,
@@ -76,12 +64,12 @@ async fn read_stream<R: AsyncRead + Unpin>(
     framing: &mut StreamFraming,
     sink: &mut FrameSink,
     buf: &mut [u8],
-    stop: &mut watch::Receiver<bool>,
+    shutdown: &mut Shutdown,
 ) -> Ended {
     loop {
         let n = tokio::select! {
             r = io.read(buf) => r,
-            _ = stop.changed() => return Ended::Shutdown,
+            _ = shutdown.recv() => return Ended::Shutdown,
         };
         match n {
             Ok(0) => return Ended::Closed,
@@ -95,40 +83,33 @@ async fn read_stream<R: AsyncRead + Unpin>(
     }
 }
 
-/// Runs one network or serial source until shutdown.
-pub async fn run(
-    spec: SourceSpec,
-    out: SourceOutputs,
-    state: Arc<SourceCounters>,
-    stop: watch::Receiver<bool>,
-) {
-    let sink = FrameSink::new(out, state, spec.sample_rate_hz);
-    match spec.kind {
-        SourceKind::TcpConnect {
-            address,
-            stream,
-            backoff,
-        } => tcp_connect(&address, &stream, backoff, sink, stop).await,
-        SourceKind::TcpListen {
-            listen,
-            stream,
-            on_second_connection,
-        } => tcp_listen(listen, &stream, on_second_connection, sink, stop).await,
-        SourceKind::Udp {
-            listen,
-            max_datagram_bytes,
-        } => udp(listen, max_datagram_bytes, sink, stop).await,
-        SourceKind::Serial { .. } => super::serial::run(&spec.kind, sink, stop).await,
-        SourceKind::Sim { .. } => {}
-    }
+/// Runs a `tcp-connect` source until shutdown.
+pub async fn run_connect(ctx: SourceContext) {
+    let SourceContext {
+        spec,
+        outputs,
+        counters,
+        shutdown,
+    } = ctx;
+    let SourceKind::TcpConnect {
+        address,
+        stream,
+        backoff,
+    } = spec.kind
+    else {
+        tracing::error!(source = %spec.name, kind = spec.kind.as_str(), "not a tcp-connect source");
+        return;
+    };
+    let sink = FrameSink::new(outputs, counters, spec.sample_rate_hz);
+    connect(&address, &stream, backoff, sink, shutdown).await;
 }
 
-async fn tcp_connect(
+async fn connect(
     address: &str,
     stream: &StreamSpec,
     backoff: Backoff,
     mut sink: FrameSink,
-    mut stop: watch::Receiver<bool>,
+    mut shutdown: Shutdown,
 ) {
     let mut framing = match StreamFraming::new(stream, sink.out.width()) {
         Ok(f) => f,
@@ -143,7 +124,7 @@ async fn tcp_connect(
     loop {
         let attempt = tokio::select! {
             r = TcpStream::connect(address) => r,
-            _ = stop.changed() => return,
+            _ = shutdown.recv() => return,
         };
         match attempt {
             Ok(mut s) => {
@@ -156,9 +137,10 @@ async fn tcp_connect(
                 retry.reset();
                 sink.state.connections.fetch_add(1, Ordering::Relaxed);
                 sink.restart();
-                set_connected(&sink, true);
-                let ended = read_stream(&mut s, &mut framing, &mut sink, &mut buf, &mut stop).await;
-                set_connected(&sink, false);
+                sink.set_connected(true);
+                let ended =
+                    read_stream(&mut s, &mut framing, &mut sink, &mut buf, &mut shutdown).await;
+                sink.set_connected(false);
                 framing.reset(&mut sink);
                 sink.out
                     .mark_discontinuity(crate::counters::GapReason::Restart);
@@ -179,26 +161,51 @@ async fn tcp_connect(
                 }
             }
         }
-        if sleep_or_stop(retry.next_delay(), &mut stop).await {
-            return;
+        tokio::select! {
+            biased;
+            _ = shutdown.recv() => return,
+            _ = sleep(retry.next_delay()) => {}
         }
     }
 }
 
-async fn tcp_listen(
+/// Runs a `tcp-listen` source until shutdown.
+pub async fn run_listen(ctx: SourceContext) {
+    let SourceContext {
+        spec,
+        outputs,
+        counters,
+        shutdown,
+    } = ctx;
+    let SourceKind::TcpListen {
+        listen,
+        stream,
+        on_second_connection,
+    } = spec.kind
+    else {
+        tracing::error!(source = %spec.name, kind = spec.kind.as_str(), "not a tcp-listen source");
+        return;
+    };
+    let sink = FrameSink::new(outputs, counters, spec.sample_rate_hz);
+    accept(listen, &stream, on_second_connection, sink, shutdown).await;
+}
+
+async fn accept(
     listen: SocketAddr,
     stream: &StreamSpec,
     policy: SecondConnection,
     mut sink: FrameSink,
-    mut stop: watch::Receiver<bool>,
+    mut shutdown: Shutdown,
 ) {
     let listener = loop {
         match TcpListener::bind(listen).await {
             Ok(l) => break l,
             Err(e) => {
                 tracing::error!(source = %sink.state.name, %listen, error = %e, "cannot listen; retrying in 5 s");
-                if sleep_or_stop(Duration::from_secs(5), &mut stop).await {
-                    return;
+                tokio::select! {
+                    biased;
+                    _ = shutdown.recv() => return,
+                    _ = sleep(Duration::from_secs(5)) => {}
                 }
             }
         }
@@ -221,12 +228,12 @@ async fn tcp_listen(
         let event = match active.as_mut() {
             None => tokio::select! {
                 a = listener.accept() => Event::Accepted(a),
-                _ = stop.changed() => return,
+                _ = shutdown.recv() => return,
             },
             Some((s, _)) => tokio::select! {
                 a = listener.accept() => Event::Accepted(a),
                 r = s.read(&mut buf) => Event::Read(r),
-                _ = stop.changed() => return,
+                _ = shutdown.recv() => return,
             },
         };
         let accepted = match event {
@@ -246,7 +253,7 @@ async fn tcp_listen(
                         tracing::warn!(source = %sink.state.name, ?peer, "connection closed by the peer")
                     }
                 }
-                set_connected(&sink, false);
+                sink.set_connected(false);
                 framing.reset(&mut sink);
                 sink.out
                     .mark_discontinuity(crate::counters::GapReason::Restart);
@@ -257,8 +264,10 @@ async fn tcp_listen(
         match accepted {
             Err(e) => {
                 tracing::warn!(source = %sink.state.name, error = %e, "accept failed");
-                if sleep_or_stop(Duration::from_millis(100), &mut stop).await {
-                    return;
+                tokio::select! {
+                    biased;
+                    _ = shutdown.recv() => return,
+                    _ = sleep(Duration::from_millis(100)) => {}
                 }
             }
             Ok((s, peer)) => {
@@ -283,88 +292,9 @@ async fn tcp_listen(
                 let _ = s.set_nodelay(true);
                 sink.state.connections.fetch_add(1, Ordering::Relaxed);
                 sink.restart();
-                set_connected(&sink, true);
+                sink.set_connected(true);
                 active = Some((s, peer));
             }
-        }
-    }
-}
-
-/// Receive buffer asked of the kernel for a UDP source (it may grant less,
-/// capped by net.core.rmem_max).
-const UDP_RECV_BUFFER: usize = 8 << 20;
-
-/// A UDP source counts as connected while datagrams arrive at least this often.
-const UDP_STALE: Duration = Duration::from_secs(5);
-
-async fn udp(
-    listen: SocketAddr,
-    max_datagram: usize,
-    mut sink: FrameSink,
-    mut stop: watch::Receiver<bool>,
-) {
-    let socket = loop {
-        match UdpSocket::bind(listen).await {
-            Ok(s) => break s,
-            Err(e) => {
-                tracing::error!(source = %sink.state.name, %listen, error = %e, "cannot bind UDP; retrying in 5 s");
-                if sleep_or_stop(Duration::from_secs(5), &mut stop).await {
-                    return;
-                }
-            }
-        }
-    };
-    // A larger kernel buffer rides out bursts while the runtime is busy
-    // (the default ~200 KiB holds only a few large datagrams); what the
-    // kernel still drops shows as gaps in the sequence.
-    let sock = socket2::SockRef::from(&socket);
-    if let Err(e) = sock.set_recv_buffer_size(UDP_RECV_BUFFER) {
-        tracing::warn!(source = %sink.state.name, error = %e, "cannot enlarge the UDP receive buffer");
-    }
-    let got = sock.recv_buffer_size().unwrap_or(0);
-    tracing::info!(source = %sink.state.name, addr = %socket.local_addr().map_or(listen, |a| a), recv_buffer_bytes = got, "receiving BWF1 datagrams");
-    // One byte more than the largest datagram accepted: a datagram that
-    // fills it was longer than allowed, and the kernel truncated it.
-    let mut buf = vec![0u8; max_datagram + 1];
-    let mut decoder = DatagramDecoder::new();
-    let mut tick = tokio::time::interval(Duration::from_secs(1));
-    let mut last = tokio::time::Instant::now();
-    sink.restart();
-    loop {
-        tokio::select! {
-            r = socket.recv_from(&mut buf) => match r {
-                Ok((n, peer)) => {
-                    sink.state.bytes.fetch_add(n as u64, Ordering::Relaxed);
-                    last = tokio::time::Instant::now();
-                    if !sink.state.is_connected() {
-                        tracing::info!(source = %sink.state.name, %peer, "datagrams arriving");
-                        set_connected(&sink, true);
-                    }
-                    if n > max_datagram {
-                        let msg = format!("datagram from {peer} longer than max_datagram_bytes {max_datagram}");
-                        sink.reject("oversize_datagram", &msg);
-                        continue;
-                    }
-                    match decoder.decode_body(&buf[..n]) {
-                        Ok((h, body)) => sink.bwf1(&h, body),
-                        Err(e) => sink.frame_error(&e),
-                    }
-                    sink.out.wake();
-                }
-                Err(e) => {
-                    // e.g. ICMP port unreachable reported on Linux: not fatal.
-                    if sink.logs.allow("udp_recv").is_some() {
-                        tracing::warn!(source = %sink.state.name, error = %e, "UDP receive error");
-                    }
-                }
-            },
-            _ = tick.tick() => {
-                if sink.state.is_connected() && last.elapsed() > UDP_STALE {
-                    tracing::warn!(source = %sink.state.name, "no datagram for {} s", UDP_STALE.as_secs());
-                    set_connected(&sink, false);
-                }
-            }
-            _ = stop.changed() => return,
         }
     }
 }
