@@ -228,7 +228,7 @@ fn check_blocks(issues: &mut Issues, path: &str, c: &RawChannel) -> (usize, usiz
             format!("{nfft} is larger than {}", 4 * MAX_BLOCK),
         );
     }
-    if nfft % 2 != 0 {
+    if !nfft.is_multiple_of(2) {
         issues.add(format!("{path}.nfft"), format!("{nfft} must be even"));
     }
     if !(c.overlap.is_finite() && (0.0..=0.95).contains(&c.overlap)) {
