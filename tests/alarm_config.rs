@@ -6,13 +6,14 @@
 use bandwatch::alarm::state::Direction;
 use bandwatch::alarm::token::TokenSource;
 use bandwatch::config::alarms::{LimitSource, RawAlarm, RawAlarms, RawHealth};
+use bandwatch::config::ConfigIssue;
 
 fn alarm(text: &str) -> RawAlarm {
     toml::from_str(text).unwrap_or_else(|e| panic!("{text}: {e}"))
 }
 
-fn paths(issues: &[(String, String)]) -> Vec<&str> {
-    issues.iter().map(|(p, _)| p.as_str()).collect()
+fn paths(issues: &[ConfigIssue]) -> Vec<&str> {
+    issues.iter().map(|i| i.path.as_str()).collect()
 }
 
 #[test]
@@ -80,7 +81,7 @@ fn every_problem_with_its_path() {
         assert!(p.contains(&want), "{want} not in {p:?}");
     }
     assert!(
-        issues.iter().any(|(_, m)| m.contains("need a baseline")),
+        issues.iter().any(|i| i.message.contains("need a baseline")),
         "{issues:?}"
     );
     assert_eq!(paths(&alarm("latching = true\n").validate("a")), vec!["a"]);

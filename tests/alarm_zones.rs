@@ -72,7 +72,7 @@ fn zone_config_resolves_and_refuses_non_velocity_bands() {
         .is_empty());
     let issues = spec.check_band("x", Unit::parse("g").unwrap(), true);
     assert_eq!(issues.len(), 1);
-    assert_eq!(issues[0].0, "x.zone");
+    assert_eq!(issues[0].path, "x.zone");
     assert_eq!(
         spec.check_band("x", Unit::parse("in/s").unwrap(), false)
             .len(),
@@ -82,11 +82,11 @@ fn zone_config_resolves_and_refuses_non_velocity_bands() {
     let bad: RawAlarm = toml::from_str("zone = { group = 3, support = \"rigid\" }\n").unwrap();
     let issues = bad.validate("a");
     assert!(
-        issues.iter().any(|(p, _)| p == "a.zone.group"),
+        issues.iter().any(|i| i.path == "a.zone.group"),
         "{issues:?}"
     );
     let bad: RawAlarm =
         toml::from_str("zone = { group = 1, support = \"rigid\" }\nalert = { limit = 3 }\n")
             .unwrap();
-    assert!(bad.validate("a").iter().any(|(p, _)| p == "a.alert.limit"));
+    assert!(bad.validate("a").iter().any(|i| i.path == "a.alert.limit"));
 }

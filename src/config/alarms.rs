@@ -1,9 +1,14 @@
-//! The alarm tables of the config file, as serde reads them (unknown keys
-//! rejected), and their validation into typed specs. Every problem is a
-//! `(field path, message)` pair; `path` is the prefix the caller passes
-//! (e.g. `channel "pump-de" band "bpfo".alarm`).
+//! The alarm tables of the config file: serde's `RawAlarms` (`[alarms]`:
+//! storage, token, bounds) and `RawAlarm` (a band's or overall measure's
+//! `alarm`), unknown keys rejected; their checks into `AlarmsSpec` and
+//! `AlarmSpec`; and the alarm vocabulary the alarm stage runs on (limit
+//! rule, direction, retention, journal limits, token source). Each problem
+//! is a `ConfigIssue` under the path the caller passes (e.g.
+//! `channel "pump-de" band "bpfo".alarm`). A channel's `health` table is in
+//! `config::health`, re-exported here so `config::alarms::RawHealth` and the
+//! health specs keep their paths.
 //!
-//! Three tables, embedded by `crate::config`:
+//! The tables, embedded by `crate::config`:
 //!
 //! ```toml
 //! [alarms]                       # top level: storage, token, bounds
@@ -28,23 +33,17 @@ use std::path::PathBuf;
 
 use serde::{Deserialize, Serialize};
 
-use crate::config::zones::{MachineGroup, Support, ZonePreset};
+use super::issue::{ConfigIssue, Issues};
+use super::zones::{MachineGroup, Support, ZonePreset};
 use crate::units::{Quantity, Unit};
 
-/// A config problem: (field path, why).
-pub type Issue = (String, String);
+pub use super::health::{
+    BiasSpec, ClippingSpec, FlatlineSpec, GapSpec, HealthSpec, RawBias, RawClipping, RawFlatline,
+    RawGaps, RawHealth, RawStale, StaleSpec,
+};
 
-const MAX_DELAY_S: f64 = 3600.0;
-
-fn issue(out: &mut Vec<Issue>, path: impl Into<String>, msg: impl Into<String>) {
-    out.push((path.into(), msg.into()));
-}
-
-fn check_range(out: &mut Vec<Issue>, path: String, v: f64, lo: f64, hi: f64) {
-    if !(v.is_finite() && v >= lo && v <= hi) {
-        issue(out, path, format!("{v} is out of range {lo} to {hi}"));
-    }
-}
+/// Longest on/off delay and recovery time, seconds.
+pub(crate) const MAX_DELAY_S: f64 = 3600.0;
 
 // ---------------------------------------------------------------------------
 // [alarms]
@@ -123,7 +122,7 @@ impl AlarmsSpec {
 
 impl RawAlarms {
     /// Every problem of the table; `path` is e.g. `"alarms"`.
-    pub fn validate(&self, path: &str) -> Vec<Issue> {
+    pub fn validate(&self, path: &str) -> Vec<ConfigIssue> {
         self.build(path).err().unwrap_or_default()
     }
 
@@ -131,15 +130,14 @@ impl RawAlarms {
     ///
     /// # Errors
     /// Every problem found, each with its field path.
-    pub fn build(&self, path: &str) -> Result<AlarmsSpec, Vec<Issue>> {
-        let mut out = Vec::new();
+    pub fn build(&self, path: &str) -> Result<AlarmsSpec, Vec<ConfigIssue>> {
+        let mut out = Issues::default();
         if self.storage_dir.as_os_str().is_empty() {
-            issue(&mut out, format!("{path}.storage_dir"), "must not be empty");
+            out.add(format!("{path}.storage_dir"), "must not be empty");
         }
         let token = match (&self.token_file, &self.token_env) {
             (Some(_), Some(_)) => {
-                issue(
-                    &mut out,
+                out.add(
                     format!("{path}.token_file"),
                     "give token_file or token_env, not both",
                 );
@@ -148,8 +146,7 @@ impl RawAlarms {
             (Some(f), None) => Some(TokenSource::File(f.clone())),
             (None, Some(v)) => {
                 if v.is_empty() || v.contains('=') || v.contains('\0') {
-                    issue(
-                        &mut out,
+                    out.add(
                         format!("{path}.token_env"),
                         format!("{v:?} is not a valid environment variable name"),
                     );
@@ -159,8 +156,7 @@ impl RawAlarms {
             (None, None) => None,
         };
         if !(4096..=1 << 30).contains(&self.journal_max_bytes) {
-            issue(
-                &mut out,
+            out.add(
                 format!("{path}.journal_max_bytes"),
                 format!(
                     "{} is out of range 4096 to 1073741824",
@@ -169,42 +165,37 @@ impl RawAlarms {
             );
         }
         if !(2..=100).contains(&self.journal_max_files) {
-            issue(
-                &mut out,
+            out.add(
                 format!("{path}.journal_max_files"),
                 format!("{} is out of range 2 to 100", self.journal_max_files),
             );
         }
-        check_range(
-            &mut out,
+        out.check_range(
             format!("{path}.capture_pre_s"),
             self.capture_pre_s,
             0.0,
             60.0,
         );
-        check_range(
-            &mut out,
+        out.check_range(
             format!("{path}.capture_post_s"),
             self.capture_post_s,
             0.0,
             60.0,
         );
         if !(1..=100_000).contains(&self.capture_max_count) {
-            issue(
-                &mut out,
+            out.add(
                 format!("{path}.capture_max_count"),
                 format!("{} is out of range 1 to 100000", self.capture_max_count),
             );
         }
         if self.capture_max_bytes < 1 << 20 {
-            issue(
-                &mut out,
+            out.add(
                 format!("{path}.capture_max_bytes"),
                 format!("{} is below 1048576 (1 MiB)", self.capture_max_bytes),
             );
         }
         if !out.is_empty() {
-            return Err(out);
+            return Err(out.into_vec());
         }
         Ok(AlarmsSpec {
             storage_dir: self.storage_dir.clone(),
@@ -326,12 +317,11 @@ impl AlarmSpec {
 
     /// Checks that a zone preset sits on a band it fits: a velocity unit and
     /// the RMS measure (the zones are for broadband velocity RMS).
-    pub fn check_band(&self, path: &str, unit: Unit, measure_is_rms: bool) -> Vec<Issue> {
-        let mut out = Vec::new();
+    pub fn check_band(&self, path: &str, unit: Unit, measure_is_rms: bool) -> Vec<ConfigIssue> {
+        let mut out = Issues::default();
         if self.zone.is_some() {
             if unit.quantity != Quantity::Velocity {
-                issue(
-                    &mut out,
+                out.add(
                     format!("{path}.zone"),
                     format!(
                         "zone presets are for velocity bands; this band is in {} ({})",
@@ -341,20 +331,19 @@ impl AlarmSpec {
                 );
             }
             if !measure_is_rms {
-                issue(
-                    &mut out,
+                out.add(
                     format!("{path}.zone"),
                     "zone presets are for the rms measure",
                 );
             }
         }
-        out
+        out.into_vec()
     }
 }
 
 impl RawAlarm {
     /// Every problem of the table.
-    pub fn validate(&self, path: &str) -> Vec<Issue> {
+    pub fn validate(&self, path: &str) -> Vec<ConfigIssue> {
         self.build(path).err().unwrap_or_default()
     }
 
@@ -362,24 +351,16 @@ impl RawAlarm {
     ///
     /// # Errors
     /// Every problem found, each with its field path.
-    pub fn build(&self, path: &str) -> Result<AlarmSpec, Vec<Issue>> {
-        let mut out = Vec::new();
-        check_range(
-            &mut out,
-            format!("{path}.hysteresis"),
-            self.hysteresis,
-            0.0,
-            f64::MAX,
-        );
-        check_range(
-            &mut out,
+    pub fn build(&self, path: &str) -> Result<AlarmSpec, Vec<ConfigIssue>> {
+        let mut out = Issues::default();
+        out.check_range(format!("{path}.hysteresis"), self.hysteresis, 0.0, f64::MAX);
+        out.check_range(
             format!("{path}.on_delay_s"),
             self.on_delay_s,
             0.0,
             MAX_DELAY_S,
         );
-        check_range(
-            &mut out,
+        out.check_range(
             format!("{path}.off_delay_s"),
             self.off_delay_s,
             0.0,
@@ -395,8 +376,7 @@ impl RawAlarm {
                     support: z.support,
                 }),
                 None => {
-                    issue(
-                        &mut out,
+                    out.add(
                         format!("{path}.zone.group"),
                         format!("{} is not a machine group (1 or 2)", z.group),
                     );
@@ -404,8 +384,7 @@ impl RawAlarm {
                 }
             });
         let baseline_learn_s = self.baseline.as_ref().map(|b| {
-            check_range(
-                &mut out,
+            out.check_range(
                 format!("{path}.baseline.learn_s"),
                 b.learn_s,
                 1.0,
@@ -414,11 +393,7 @@ impl RawAlarm {
             b.learn_s
         });
         if self.zone.is_some() && self.baseline.is_some() {
-            issue(
-                &mut out,
-                format!("{path}.zone"),
-                "give zone or baseline, not both",
-            );
+            out.add(format!("{path}.zone"), "give zone or baseline, not both");
         }
 
         let zone_on = self.zone.is_some();
@@ -435,19 +410,13 @@ impl RawAlarm {
             let on = raw.on_delay_s.unwrap_or(self.on_delay_s);
             let off = raw.off_delay_s.unwrap_or(self.off_delay_s);
             if raw.hysteresis.is_some() {
-                check_range(
-                    &mut out,
-                    format!("{p}.hysteresis"),
-                    hysteresis,
-                    0.0,
-                    f64::MAX,
-                );
+                out.check_range(format!("{p}.hysteresis"), hysteresis, 0.0, f64::MAX);
             }
             if raw.on_delay_s.is_some() {
-                check_range(&mut out, format!("{p}.on_delay_s"), on, 0.0, MAX_DELAY_S);
+                out.check_range(format!("{p}.on_delay_s"), on, 0.0, MAX_DELAY_S);
             }
             if raw.off_delay_s.is_some() {
-                check_range(&mut out, format!("{p}.off_delay_s"), off, 0.0, MAX_DELAY_S);
+                out.check_range(format!("{p}.off_delay_s"), off, 0.0, MAX_DELAY_S);
             }
             let given = [
                 raw.limit.is_some(),
@@ -459,53 +428,39 @@ impl RawAlarm {
             .count();
             let source = if zone_on {
                 if given > 0 {
-                    issue(
-                        &mut out,
-                        format!("{p}.limit"),
+                    out.add(format!("{p}.limit"),
                         "with zone the limits come from the preset: leave out limit, factor and sigma",
                     );
                 }
                 if direction != Direction::High {
-                    issue(
-                        &mut out,
-                        format!("{p}.direction"),
-                        "zone limits are high limits",
-                    );
+                    out.add(format!("{p}.direction"), "zone limits are high limits");
                 }
                 LimitSource::Zone
             } else if given != 1 {
-                issue(
-                    &mut out,
-                    p.clone(),
+                out.add(p.clone(),
                     "give exactly one of limit, factor (× baseline mean) or sigma (baseline mean ± k·σ)",
                 );
                 LimitSource::Fixed(0.0)
             } else if let Some(l) = raw.limit {
                 if !l.is_finite() {
-                    issue(
-                        &mut out,
-                        format!("{p}.limit"),
-                        format!("{l} is not a finite number"),
-                    );
+                    out.add(format!("{p}.limit"), format!("{l} is not a finite number"));
                 }
                 LimitSource::Fixed(l)
             } else {
                 if self.baseline.is_none() {
-                    issue(
-                        &mut out,
-                        p.clone(),
+                    out.add(p.clone(),
                         "factor and sigma need a baseline table (e.g. baseline = { learn_s = 3600 })",
                     );
                 }
                 if let Some(f) = raw.factor {
                     if !(f.is_finite() && f > 0.0) {
-                        issue(&mut out, format!("{p}.factor"), format!("{f} must be > 0"));
+                        out.add(format!("{p}.factor"), format!("{f} must be > 0"));
                     }
                     LimitSource::Baseline(LimitRule::Factor(f))
                 } else {
                     let k = raw.sigma.unwrap_or(0.0);
                     if !(k.is_finite() && k > 0.0) {
-                        issue(&mut out, format!("{p}.sigma"), format!("{k} must be > 0"));
+                        out.add(format!("{p}.sigma"), format!("{k} must be > 0"));
                     }
                     LimitSource::Baseline(LimitRule::Sigma(k))
                 }
@@ -522,8 +477,7 @@ impl RawAlarm {
         let danger = level("danger", self.danger.as_ref());
 
         if alert.is_none() && danger.is_none() {
-            issue(
-                &mut out,
+            out.add(
                 path.to_string(),
                 "an alarm needs an alert or a danger level (or a zone preset)",
             );
@@ -544,8 +498,7 @@ impl RawAlarm {
                 _ => None,
             };
             if let Some((true, x, y)) = wrong {
-                issue(
-                    &mut out,
+                out.add(
                     format!("{path}.danger"),
                     format!(
                         "danger ({y}) must be beyond alert ({x}) for {} limits",
@@ -555,7 +508,7 @@ impl RawAlarm {
             }
         }
         if !out.is_empty() {
-            return Err(out);
+            return Err(out.into_vec());
         }
         Ok(AlarmSpec {
             latching: self.latching,
@@ -568,292 +521,6 @@ impl RawAlarm {
             },
             zone,
         })
-    }
-}
-
-// ---------------------------------------------------------------------------
-// a channel's `health`
-// ---------------------------------------------------------------------------
-
-/// A channel's `health` table. Stale and gap checks are on by default
-/// (5 s; more than 10 gaps in 60 s); the others need the sensor's figures.
-#[derive(Debug, Clone, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct RawHealth {
-    /// Seconds without any fault before the channel is OK again. Must be at
-    /// least `flatline.for_s`, so that a sensor dead at start-up is found
-    /// before its alarms are enabled.
-    #[serde(default = "default_recover_s")]
-    pub recover_s: f64,
-    pub flatline: Option<RawFlatline>,
-    pub clipping: Option<RawClipping>,
-    pub bias: Option<RawBias>,
-    pub stale: Option<RawStale>,
-    pub gaps: Option<RawGaps>,
-}
-
-fn default_recover_s() -> f64 {
-    5.0
-}
-
-#[derive(Debug, Clone, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct RawFlatline {
-    /// Standard deviation (channel unit) below which the signal is flat;
-    /// about one converter step is common practice.
-    pub std_below: f64,
-    #[serde(default = "default_flat_for_s")]
-    pub for_s: f64,
-}
-
-fn default_flat_for_s() -> f64 {
-    1.0
-}
-
-#[derive(Debug, Clone, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct RawClipping {
-    /// Converter full scale in the channel's unit.
-    pub full_scale: f64,
-    #[serde(default = "default_clip_fraction")]
-    pub fraction: f64,
-    /// Clipped samples within 0.1 s that make a fault.
-    #[serde(default = "default_clip_samples")]
-    pub samples: usize,
-}
-
-fn default_clip_fraction() -> f64 {
-    0.99
-}
-fn default_clip_samples() -> usize {
-    3
-}
-
-#[derive(Debug, Clone, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct RawBias {
-    /// Lowest acceptable mean, channel unit.
-    pub lo: f64,
-    /// Highest acceptable mean, channel unit.
-    pub hi: f64,
-}
-
-#[derive(Debug, Clone, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct RawStale {
-    pub after_s: f64,
-}
-
-#[derive(Debug, Clone, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct RawGaps {
-    pub max: u32,
-    pub window_s: f64,
-}
-
-impl RawHealth {
-    /// Every problem of the table.
-    pub fn validate(&self, path: &str) -> Vec<Issue> {
-        self.build(path).err().unwrap_or_default()
-    }
-
-    /// The validated spec.
-    ///
-    /// # Errors
-    /// Every problem found, each with its field path.
-    pub fn build(&self, path: &str) -> Result<HealthSpec, Vec<Issue>> {
-        let mut out = Vec::new();
-        let d = HealthSpec::default();
-        check_range(
-            &mut out,
-            format!("{path}.recover_s"),
-            self.recover_s,
-            0.0,
-            MAX_DELAY_S,
-        );
-        let flatline = self.flatline.as_ref().map(|f| {
-            if !(f.std_below.is_finite() && f.std_below > 0.0) {
-                issue(
-                    &mut out,
-                    format!("{path}.flatline.std_below"),
-                    format!("{} must be > 0", f.std_below),
-                );
-            }
-            check_range(&mut out, format!("{path}.flatline.for_s"), f.for_s, 0.1, MAX_DELAY_S);
-            if f.for_s.is_finite() && self.recover_s < f.for_s {
-                issue(
-                    &mut out,
-                    format!("{path}.recover_s"),
-                    format!(
-                        "{} is below flatline.for_s {}: a sensor dead at start-up would be trusted before it can be found flat",
-                        self.recover_s, f.for_s
-                    ),
-                );
-            }
-            FlatlineSpec {
-                std_below: f.std_below,
-                for_s: f.for_s,
-            }
-        });
-        let clipping = self.clipping.as_ref().map(|c| {
-            if !(c.full_scale.is_finite() && c.full_scale > 0.0) {
-                issue(
-                    &mut out,
-                    format!("{path}.clipping.full_scale"),
-                    format!("{} must be > 0", c.full_scale),
-                );
-            }
-            if !(c.fraction.is_finite() && c.fraction > 0.0 && c.fraction <= 1.0) {
-                issue(
-                    &mut out,
-                    format!("{path}.clipping.fraction"),
-                    format!("{} is out of range (0, 1]", c.fraction),
-                );
-            }
-            if !(1..=1_000_000).contains(&c.samples) {
-                issue(
-                    &mut out,
-                    format!("{path}.clipping.samples"),
-                    format!("{} is out of range 1 to 1000000", c.samples),
-                );
-            }
-            ClippingSpec {
-                full_scale: c.full_scale,
-                fraction: c.fraction,
-                samples: c.samples,
-            }
-        });
-        let bias = self.bias.as_ref().map(|b| {
-            if !(b.lo.is_finite() && b.hi.is_finite() && b.lo < b.hi) {
-                issue(
-                    &mut out,
-                    format!("{path}.bias"),
-                    format!("lo {} must be below hi {} (both finite)", b.lo, b.hi),
-                );
-            }
-            BiasSpec { lo: b.lo, hi: b.hi }
-        });
-        let stale = match &self.stale {
-            Some(s) => {
-                check_range(
-                    &mut out,
-                    format!("{path}.stale.after_s"),
-                    s.after_s,
-                    0.1,
-                    MAX_DELAY_S,
-                );
-                Some(StaleSpec { after_s: s.after_s })
-            }
-            None => d.stale,
-        };
-        let gaps = match &self.gaps {
-            Some(g) => {
-                if g.max > 10_000 {
-                    issue(
-                        &mut out,
-                        format!("{path}.gaps.max"),
-                        format!("{} is out of range 0 to 10000", g.max),
-                    );
-                }
-                check_range(
-                    &mut out,
-                    format!("{path}.gaps.window_s"),
-                    g.window_s,
-                    0.1,
-                    86400.0,
-                );
-                Some(GapSpec {
-                    max: g.max,
-                    window_s: g.window_s,
-                })
-            }
-            None => d.gaps,
-        };
-        if !out.is_empty() {
-            return Err(out);
-        }
-        Ok(HealthSpec {
-            flatline,
-            clipping,
-            bias,
-            stale,
-            gaps,
-            recover_s: self.recover_s,
-        })
-    }
-}
-
-// ---------------------------------------------------------------------------
-// Channel health checks (validated)
-// ---------------------------------------------------------------------------
-
-#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
-pub struct FlatlineSpec {
-    /// Standard deviation (channel unit) under which a window is flat.
-    pub std_below: f64,
-    /// Seconds of flat windows before the channel is not OK.
-    pub for_s: f64,
-}
-
-#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
-pub struct ClippingSpec {
-    /// Converter full scale in the channel's unit (the largest magnitude the
-    /// converter can report).
-    pub full_scale: f64,
-    /// Fraction of full scale at which a sample counts as clipped, (0, 1].
-    pub fraction: f64,
-    /// Clipped samples in one window that make it a fault, >= 1.
-    pub samples: usize,
-}
-
-#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
-pub struct BiasSpec {
-    /// Lowest acceptable window mean, channel unit.
-    pub lo: f64,
-    /// Highest acceptable window mean, channel unit.
-    pub hi: f64,
-}
-
-#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
-pub struct StaleSpec {
-    pub after_s: f64,
-}
-
-#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
-pub struct GapSpec {
-    /// More than this many discontinuities within the window is a fault.
-    pub max: u32,
-    pub window_s: f64,
-}
-
-/// The validated health checks of one channel.
-#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
-pub struct HealthSpec {
-    pub flatline: Option<FlatlineSpec>,
-    pub clipping: Option<ClippingSpec>,
-    pub bias: Option<BiasSpec>,
-    pub stale: Option<StaleSpec>,
-    pub gaps: Option<GapSpec>,
-    /// Seconds without any fault before the channel is OK again.
-    pub recover_s: f64,
-}
-
-impl Default for HealthSpec {
-    /// What a channel without a `health` table gets: stale after 5 s, more
-    /// than 10 gaps a minute, 5 s to recover. Flatline, clipping and bias
-    /// need the sensor's figures and are off unless configured.
-    fn default() -> HealthSpec {
-        HealthSpec {
-            flatline: None,
-            clipping: None,
-            bias: None,
-            stale: Some(StaleSpec { after_s: 5.0 }),
-            gaps: Some(GapSpec {
-                max: 10,
-                window_s: 60.0,
-            }),
-            recover_s: 5.0,
-        }
     }
 }
 

@@ -1,0 +1,176 @@
+//! Validation: `validate` turns a `RawConfig` into the typed `Config`. It
+//! runs one small check per table, in file order — `[server]`, `[dsp]`,
+//! `[[source]]`, `[[channel]]` (with its bands, health and alarms),
+//! `[[machine]]`, `[alarms]` — and every check adds to the same `Issues`
+//! list, so one run reports every problem. A check returns early only where
+//! a later check of the same table needs an earlier result. The config is
+//! accepted only when the list stays empty.
+//!
+//! This file holds `validate` and the checks of the small top-level tables;
+//! the larger tables have a file each.
+
+mod bands;
+mod channel_alarms;
+mod channels;
+mod machines;
+mod sources;
+
+use std::net::SocketAddr;
+
+use crate::config::alarms::{AlarmsSpec, RawAlarms};
+use crate::config::issue::{ConfigIssue, Issues};
+use crate::config::raw::{RawConfig, RawDsp, RawServer};
+use crate::config::spec::{ChannelSpec, Config};
+
+/// Checks every rule and returns the typed config, or every problem found.
+pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
+    let mut issues = Issues::default();
+    let listen = check_server(&mut issues, &raw.server);
+    let workers = check_dsp(&mut issues, &raw.dsp);
+    let sources = sources::check_sources(&mut issues, &raw.sources);
+    let channels = channels::check_channels(&mut issues, raw, &sources);
+    let machines = machines::check_machines(&mut issues, &raw.machines, &raw.channels);
+    let alarms = check_alarms_table(&mut issues, raw.alarms.as_ref(), &channels);
+
+    match (issues.is_empty(), listen) {
+        (true, Some(listen)) => Ok(Config {
+            alarms,
+            listen,
+            workers,
+            ring_seconds: raw.dsp.ring_seconds,
+            sources,
+            machines,
+            channels,
+        }),
+        _ => Err(issues.into_vec()),
+    }
+}
+
+/// `[server]`: the HTTP listen address.
+fn check_server(issues: &mut Issues, raw: &RawServer) -> Option<SocketAddr> {
+    match raw.listen.parse::<SocketAddr>() {
+        Ok(a) => Some(a),
+        Err(_) => {
+            issues.add(
+                "server.listen",
+                format!(
+                    "{:?} is not an IP address with a port (e.g. \"127.0.0.1:9750\")",
+                    raw.listen
+                ),
+            );
+            None
+        }
+    }
+}
+
+/// `[dsp]`: worker count (default: the CPU cores) and ring length.
+fn check_dsp(issues: &mut Issues, raw: &RawDsp) -> usize {
+    let workers = match raw.workers {
+        None => std::thread::available_parallelism().map_or(1, |n| n.get()),
+        Some(n) if (1..=256).contains(&n) => n,
+        Some(n) => {
+            issues.add("dsp.workers", format!("{n} is out of range 1 to 256"));
+            1
+        }
+    };
+    if !(raw.ring_seconds.is_finite() && (0.05..=600.0).contains(&raw.ring_seconds)) {
+        issues.add(
+            "dsp.ring_seconds",
+            format!("{} is out of range 0.05 to 600", raw.ring_seconds),
+        );
+    }
+    workers
+}
+
+/// `[alarms]`: required as soon as any channel has an alarm.
+fn check_alarms_table(
+    issues: &mut Issues,
+    raw: Option<&RawAlarms>,
+    channels: &[ChannelSpec],
+) -> Option<AlarmsSpec> {
+    match raw {
+        None => {
+            if channels.iter().any(|c| !c.alarms.is_empty()) {
+                issues.add(
+                    "alarms",
+                    "alarms are configured but [alarms] (storage_dir for the journal and captures) is missing",
+                );
+            }
+            None
+        }
+        Some(a) => match a.build("alarms") {
+            Ok(a) => Some(a),
+            Err(v) => {
+                issues.extend(v);
+                None
+            }
+        },
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn table<T: serde::de::DeserializeOwned>(text: &str) -> T {
+        toml::from_str(text).unwrap_or_else(|e| panic!("{text}: {e}"))
+    }
+
+    #[test]
+    fn server_listen_must_be_an_address_with_a_port() {
+        let mut issues = Issues::default();
+        let bad: RawServer = table("listen = \"localhost\"");
+        assert_eq!(check_server(&mut issues, &bad), None);
+        assert_eq!(
+            issues.pairs(),
+            vec![(
+                "server.listen",
+                "\"localhost\" is not an IP address with a port (e.g. \"127.0.0.1:9750\")"
+            )]
+        );
+
+        let mut issues = Issues::default();
+        let good: RawServer = table("listen = \"127.0.0.1:9750\"");
+        assert_eq!(
+            check_server(&mut issues, &good),
+            Some(SocketAddr::from(([127, 0, 0, 1], 9750)))
+        );
+        assert!(issues.is_empty(), "{issues:?}");
+    }
+
+    #[test]
+    fn dsp_ranges() {
+        let mut issues = Issues::default();
+        let bad: RawDsp = table("workers = 0\nring_seconds = 0.01");
+        check_dsp(&mut issues, &bad);
+        assert_eq!(
+            issues.pairs(),
+            vec![
+                ("dsp.workers", "0 is out of range 1 to 256"),
+                ("dsp.ring_seconds", "0.01 is out of range 0.05 to 600"),
+            ]
+        );
+
+        let mut issues = Issues::default();
+        let good: RawDsp = table("workers = 3\nring_seconds = 2.0");
+        assert_eq!(check_dsp(&mut issues, &good), 3);
+        assert!(issues.is_empty(), "{issues:?}");
+    }
+
+    #[test]
+    fn alarms_table_is_checked_under_its_own_path() {
+        let mut issues = Issues::default();
+        let bad: RawAlarms = table("storage_dir = \"/x\"\njournal_max_files = 1");
+        assert_eq!(check_alarms_table(&mut issues, Some(&bad), &[]), None);
+        assert_eq!(
+            issues.pairs(),
+            vec![("alarms.journal_max_files", "1 is out of range 2 to 100")]
+        );
+
+        let mut issues = Issues::default();
+        let good: RawAlarms = table("storage_dir = \"/x\"");
+        assert!(check_alarms_table(&mut issues, Some(&good), &[]).is_some());
+        assert!(check_alarms_table(&mut issues, None, &[]).is_none());
+        assert!(issues.is_empty(), "{issues:?}");
+    }
+}
