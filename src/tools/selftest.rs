@@ -27,6 +27,7 @@ use crate::dsp::stats;
 use crate::dsp::window::{Window, WindowKind};
 use crate::frame::bwf1::{self, Header, RejectReason};
 use crate::frame::{SampleFormat, SampleSlice};
+use crate::pipeline::{AlarmMode, Builder, RingSize};
 use crate::units::{self, Unit};
 
 /// The version that ran the checks, printed with the table.
@@ -268,6 +269,37 @@ impl ChannelSetup<'_> {
             });
         }
         Ok(spec)
+    }
+}
+
+impl ChannelSetup<'_> {
+    /// Runs `x` (channel units, from stream index 0) through the daemon's
+    /// own pipeline (`pipeline::Builder`: ring, worker DSP with its fused
+    /// FFT and averaging, band plans; no alarms) on this thread, and
+    /// returns each band's value from the last published result.
+    ///
+    /// # Errors
+    /// The config is refused, or nothing was published.
+    pub fn run_pipeline(&self, x: &[f32]) -> Result<Vec<f64>, SetupError> {
+        let config = config::parse_str(&self.config_text())
+            .map_err(|e| SetupError::Config(format!("{e:?}")))?;
+        let mut p = Builder::new(&config)
+            .ring(RingSize::Headroom(x.len()))
+            .alarms(AlarmMode::Off)
+            .assemble()
+            .map_err(|e| SetupError::Config(e.to_string()))?
+            .inline();
+        for mut input in p.take_inputs() {
+            input.writer.write(0, 1, x);
+        }
+        p.drain();
+        let ch = p
+            .state
+            .channels
+            .first()
+            .ok_or_else(|| SetupError::Config("no channel".into()))?;
+        let snap = ch.latest().ok_or(SetupError::NotReady(self.averages))?;
+        Ok(snap.bands.iter().map(|b| b.value).collect())
     }
 }
 
@@ -613,12 +645,13 @@ fn tone_on_line_check(kind: WindowKind) -> Check {
         averages: 1,
         bands: vec![band("pk", "peak"), band("rms", "rms")],
     };
+    // Through the daemon's pipeline, not the stages one by one.
     let result = setup
         .spec()
-        .and_then(|spec| run_stages(&spec, &tone(2048, FS, 120.0 * spec.df_hz(), a, 1.1)));
+        .and_then(|spec| setup.run_pipeline(&tone(2048, FS, 120.0 * spec.df_hz(), a, 1.1)));
     match result {
-        Ok(r) => {
-            let (pk, rms) = (r.bands[0], r.bands[1]);
+        Ok(bands) => {
+            let (pk, rms) = (bands[0], bands[1]);
             Check {
                 name,
                 source: "common practice",
