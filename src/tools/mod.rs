@@ -1,7 +1,10 @@
-//! Commands beside the daemon: `send` (a stand-in DAQ box playing the demo
-//! over BWF1 or lines), `record` (store a raw stream as received) and
-//! `replay` (run the pipeline over a recorded stream as fast as the CPU
-//! allows).
+//! Commands beside the daemon (the top layer; see DEVELOPERS.md, Layers):
+//! `send` (a stand-in DAQ box playing the demo over BWF1 or lines), `record`
+//! (store a raw stream as received), `replay` (run the pipeline over a
+//! recorded stream as fast as the CPU allows), `selftest` (published check
+//! values measured through the real code paths) and `bench` (side-by-side
+//! stage throughput, memory and latency). `replay`, `selftest` and `bench`
+//! build their pipelines with `pipeline::Builder`, as the daemon does.
 
 pub mod bench;
 pub mod record;
