@@ -131,7 +131,7 @@ async fn demo_scenario_shows_its_lines() {
     }
     let motor = state.channel("motor-de").expect("motor-de");
     let pump = state.channel("pump-de").expect("pump-de");
-    // DESIGN.md scenario: 1x = 24.75 Hz, vane pass = 173.25 Hz; lines are
+    // README "What the demo shows": 1x = 24.75 Hz, vane pass = 173.25 Hz; lines are
     // 3.125 Hz apart, so "within one line".
     let df = motor.spec.df_hz();
     assert!(

@@ -549,6 +549,82 @@ async fn waveform_json_and_csv() {
     assert_json_error(&r, StatusCode::BAD_REQUEST, "unknown query parameter");
 }
 
+/// A snapshot of channel `a` whose block is 256 samples of a 100 Hz tone
+/// (amplitude 1) plus a 3 kHz tone (amplitude 0.5): both on exact lines
+/// (df = 100 Hz).
+fn two_tone_snapshot() -> ChannelSnapshot {
+    let dt = 1.0 / 25_600.0;
+    let waveform = (0..256)
+        .map(|i| {
+            let t = f64::from(i) * dt;
+            ((std::f64::consts::TAU * 100.0 * t).sin()
+                + 0.5 * (std::f64::consts::TAU * 3000.0 * t).sin()) as f32
+        })
+        .collect();
+    ChannelSnapshot {
+        waveform,
+        ..snapshot(unix_now_ns())
+    }
+}
+
+#[tokio::test]
+async fn waveform_band_runs_off_the_runtime_with_the_same_result() {
+    let st = state();
+    let snap = two_tone_snapshot();
+    let block = snap.waveform.clone();
+    publish(&st, 0, snap);
+    let v = get(&st, "/api/v1/channels/a/waveform?band=v").await.json();
+    assert_eq!(v["band"], "v");
+    assert_eq!(v["pass_hz"], serde_json::json!([[50.0, 150.0]]));
+    let got: Vec<f32> = v["values"]
+        .as_array()
+        .expect("values")
+        .iter()
+        .map(|x| f(x) as f32)
+        .collect();
+    // Identical to the filter called directly, as the handler did on the
+    // async runtime before.
+    assert_eq!(
+        got,
+        crate::dsp::filter::band_pass_ranges(&block, 25_600.0, &[(50.0, 150.0)])
+    );
+    // And right: an ideal band-pass of tones on exact lines keeps the
+    // 100 Hz tone alone (DFT orthogonality of whole-period tones; from
+    // memory, any DSP text).
+    for (i, y) in got.iter().enumerate() {
+        let want = (std::f64::consts::TAU * 100.0 * i as f64 / 25_600.0).sin();
+        assert!(
+            close(f64::from(*y), want, 1e-5),
+            "sample {i}: {y} vs {want}"
+        );
+    }
+}
+
+#[tokio::test]
+async fn waveform_dsp_at_its_bound_answers_503_after_the_wait() {
+    let st = state();
+    publish(&st, 0, two_tone_snapshot());
+    let gate = Arc::new(gate::DspGate::new(1, std::time::Duration::from_millis(50)));
+    let app = router_with(HttpState {
+        app: st.clone(),
+        metrics: Arc::new(metrics::Metrics::new(st.clone())),
+        dsp: gate.clone(),
+    });
+    let held = gate.hold_all();
+    let r = call(app.clone(), "GET", "/api/v1/channels/a/waveform?band=v").await;
+    assert_json_error(
+        &r,
+        StatusCode::SERVICE_UNAVAILABLE,
+        "busy: 1 request-time DSP",
+    );
+    // The plain block needs no DSP and is served while the gate is full.
+    let r = call(app.clone(), "GET", "/api/v1/channels/a/waveform").await;
+    assert_eq!(r.status, StatusCode::OK, "{}", r.body);
+    drop(held);
+    let r = call(app, "GET", "/api/v1/channels/a/waveform?band=v").await;
+    assert_eq!(r.status, StatusCode::OK, "{}", r.body);
+}
+
 // ---------------------------------------------------------------------------
 // Metrics
 // ---------------------------------------------------------------------------
@@ -1163,6 +1239,7 @@ fn the_handler_serves_the_cache() {
     let app = router_with(HttpState {
         app: st.clone(),
         metrics: m,
+        dsp: Arc::new(gate::DspGate::per_core()),
     });
     let a = rt.block_on(call(app.clone(), "GET", "/metrics"));
     st.channels[0].counters.spectra.store(3, Ordering::Relaxed);
