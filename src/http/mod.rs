@@ -126,6 +126,4 @@ async fn metrics_handler(State(st): State<HttpState>) -> Response {
 }
 
 #[cfg(test)]
-mod metrics_proto;
-#[cfg(test)]
 mod tests;

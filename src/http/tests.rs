@@ -1054,7 +1054,7 @@ fn direct_encoder_matches_the_prometheus_crate() {
     let ours = metrics::Metrics::with_clock(app.clone(), golden_clock)
         .render_fresh()
         .expect("render");
-    let theirs = metrics_proto::render(app, golden_clock);
+    let theirs = metrics::proto::render(app, golden_clock);
     assert_eq!(
         String::from_utf8(ours).expect("utf-8"),
         String::from_utf8(theirs).expect("utf-8")
@@ -1068,7 +1068,7 @@ fn direct_encoder_matches_the_prometheus_crate() {
         .render_fresh()
         .expect("render");
     let ours = String::from_utf8(ours).expect("utf-8");
-    let theirs = String::from_utf8(metrics_proto::render(app, golden_clock)).expect("utf-8");
+    let theirs = String::from_utf8(metrics::proto::render(app, golden_clock)).expect("utf-8");
     let inf = r#"bandwatch_channel_crest_factor{channel="B-upper"} "#;
     assert!(ours.contains(&format!("{inf}+Inf\n")), "{ours}");
     assert!(theirs.contains(&format!("{inf}inf\n")), "{theirs}");
