@@ -16,6 +16,7 @@ use alarms::{AlarmSpec, AlarmsSpec, HealthSpec, RawAlarm, RawAlarms, RawHealth};
 
 pub mod alarms;
 pub mod bearing;
+pub mod fixture;
 pub mod zones;
 
 /// Sample rate of the built-in pump scenario (README, "The demo").
