@@ -19,6 +19,7 @@ use tower::ServiceExt;
 
 use super::*;
 use crate::clock::unix_now_ns;
+use crate::config::fixture::{quoted, Channel, Fixture, Source};
 use crate::config::parse_str;
 use crate::counters::GapReason;
 use crate::dsp::bands::BandValue;
@@ -28,46 +29,23 @@ use crate::pipeline::state::ChannelSnapshot;
 /// fs = 25 600 Hz (the sim's rate), block = nfft = 256: lines every
 /// 100 Hz, 129 lines, Nyquist 12 800 Hz. Hann: ENBW 1.5 lines (Harris 1978,
 /// Table 1), so the noise bandwidth is 150 Hz.
-const CONFIG: &str = r#"
-[server]
-listen = "127.0.0.1:0"
-
-[[source]]
-name = "sim"
-kind = "sim"
-
-[[channel]]
-name = "a"
-source = "sim"
-index = 0
-unit = "g"
-scale = 1.0
-block = 256
-window = "hann"
-overlap = 0.5
-averaging = { mode = "linear", count = 4 }
-integration_low_cut_hz = 5.0
-
-  [[channel.band]]
-  name = "v"
-  lo_hz = 50
-  hi_hz = 150
-  unit = "mm/s"
-
-  [[channel.band]]
-  name = "pk"
-  lo_hz = 250
-  hi_hz = 350
-  measure = "peak"
-
-[[channel]]
-name = "b"
-source = "sim"
-index = 1
-unit = "g"
-scale = 1.0
-block = 256
-"#;
+fn config() -> String {
+    Fixture::new()
+        .source(Source::new("sim", "sim"))
+        .channel(
+            Channel::new("a", "sim", 0)
+                .set("scale", "1.0")
+                .block(256)
+                .window("hann")
+                .overlap(0.5)
+                .set("averaging", r#"{ mode = "linear", count = 4 }"#)
+                .set("integration_low_cut_hz", "5.0")
+                .band_with("v", 50.0, 150.0, &[("unit", quoted("mm/s"))])
+                .band_with("pk", 250.0, 350.0, &[("measure", quoted("peak"))]),
+        )
+        .channel(Channel::new("b", "sim", 1).set("scale", "1.0").block(256))
+        .toml()
+}
 
 const DF: f64 = 100.0;
 const BINS: usize = 129;
@@ -76,7 +54,7 @@ const BINS: usize = 129;
 const TS_NS: u64 = 1_700_000_000_123_456_789;
 
 fn state() -> Arc<AppState> {
-    let cfg = parse_str(CONFIG).expect("test config is valid");
+    let cfg = parse_str(&config()).expect("test config is valid");
     Arc::new(AppState::new(&cfg))
 }
 
@@ -215,7 +193,7 @@ fn golden_clock() -> u64 {
 /// `BANDWATCH_BLESS=1` to rewrite the file after a deliberate change.
 /// The fixed state behind `tests/golden/metrics.prom`.
 fn golden_state() -> Arc<AppState> {
-    let cfg = parse_str(CONFIG).expect("valid");
+    let cfg = parse_str(&config()).expect("valid");
     let mut app = AppState::new(&cfg);
     app.started_unix_ns = TS_NS - 3_600_000_000_000;
     let app = Arc::new(app);
