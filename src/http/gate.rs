@@ -80,7 +80,6 @@ impl DspGate {
     /// Takes every permit (tests: a gate at its bound).
     #[cfg(test)]
     pub(crate) fn hold_all(&self) -> tokio::sync::OwnedSemaphorePermit {
-        #[allow(clippy::expect_used)]
         self.permits
             .clone()
             .try_acquire_many_owned(u32::try_from(self.size).expect("permits fit u32"))
