@@ -4,7 +4,6 @@
 //! built, then joins the families in name order with the static ones the
 //! prometheus crate encoded.
 
-use std::borrow::Cow;
 use std::fmt::Write as _;
 use std::sync::{Arc, Mutex};
 
@@ -308,10 +307,11 @@ impl PipelineCollector {
         out
     }
 
-    /// The escaped label set of a sample; owned only for a source's
-    /// rejection reasons, which are not known in advance.
-    fn labels<'a>(&'a self, l: Labels<'_>) -> Cow<'a, str> {
-        Cow::Borrowed(match l {
+    /// The escaped label set of a sample, escaped in advance; `None` for
+    /// a source's rejection reasons, which are not known in advance.
+    #[inline]
+    fn labels(&self, l: Labels<'_>) -> Option<&str> {
+        Some(match l {
             Labels::None => "",
             Labels::Channel(i) => &self.channels[i].ch,
             Labels::Reason(i, k) => &self.channels[i].reasons[k],
@@ -323,16 +323,22 @@ impl PipelineCollector {
             Labels::SourceKind(k) => &self.sources[k].1,
             Labels::Machine(k) => &self.machines[k],
             Labels::Kind(k) => &self.kinds[k],
-            Labels::Rejected(k, reason) => {
-                return Cow::Owned(label_set(&[
-                    ("source", &self.app.sources[k].name),
-                    ("reason", reason),
-                ]))
-            }
+            Labels::Rejected(..) => return None,
         })
     }
 
+    /// The label set of a rejection reason, escaped now.
+    fn rejected(&self, l: Labels<'_>) -> String {
+        match l {
+            Labels::Rejected(k, reason) => {
+                label_set(&[("source", &self.app.sources[k].name), ("reason", reason)])
+            }
+            _ => String::new(),
+        }
+    }
+
     /// Index into `heads` and `bufs`.
+    #[inline]
     fn slot(f: Fam) -> usize {
         match f {
             Fam::Fixed(f) => f as usize,
@@ -348,23 +354,23 @@ struct TextSink<'a> {
 }
 
 impl Sink for TextSink<'_> {
+    #[inline]
     fn gauge(&mut self, fam: Fam, labels: Labels<'_>, v: f64) {
         let i = PipelineCollector::slot(fam);
-        put_f(
-            &mut self.bufs[i],
-            &self.c.heads[i].name,
-            &self.c.labels(labels),
-            v,
-        );
+        let name = &self.c.heads[i].name;
+        match self.c.labels(labels) {
+            Some(l) => put_f(&mut self.bufs[i], name, l, v),
+            None => put_f(&mut self.bufs[i], name, &self.c.rejected(labels), v),
+        }
     }
 
+    #[inline]
     fn counter(&mut self, fam: Fam, labels: Labels<'_>, v: u64) {
         let i = PipelineCollector::slot(fam);
-        put_u(
-            &mut self.bufs[i],
-            &self.c.heads[i].name,
-            &self.c.labels(labels),
-            v,
-        );
+        let name = &self.c.heads[i].name;
+        match self.c.labels(labels) {
+            Some(l) => put_u(&mut self.bufs[i], name, l, v),
+            None => put_u(&mut self.bufs[i], name, &self.c.rejected(labels), v),
+        }
     }
 }
