@@ -2,7 +2,9 @@
 //! no spectrum comes from a block that spans the gap. The tone's phase jumps
 //! at the gap, so a stitched block would smear it across the spectrum.
 
-use bandwatch::config::parse_str;
+mod common;
+
+use bandwatch::config::fixture::{quoted, Channel, Fixture, Source};
 use bandwatch::frame::bwf1::{encode_into, Header};
 use bandwatch::frame::{SampleFormat, SampleSlice};
 use bandwatch::tools::replay::{replay, ReplayLine};
@@ -11,37 +13,23 @@ const FS: f64 = 25_600.0;
 const S: usize = 256;
 
 fn config() -> bandwatch::config::Config {
-    let text = r#"
-[server]
-listen = "127.0.0.1:0"
-[[source]]
-name = "daq"
-kind = "tcp-listen"
-listen = "127.0.0.1:0"
-channels = 1
-sample_rate_hz = 25600
-[[channel]]
-name = "c"
-source = "daq"
-index = 0
-unit = "g"
-block = 1024
-overlap = 0.0
-window = "hann"
-averaging = { mode = "none" }
-  [[channel.band]]
-  name = "tone"
-  lo_hz = 50
-  hi_hz = 150
-  [[channel.band]]
-  name = "far"
-  lo_hz = 2000
-  hi_hz = 5000
-"#;
-    match parse_str(text) {
-        Ok(c) => c,
-        Err(e) => panic!("{e:?}"),
-    }
+    common::config(
+        &Fixture::new()
+            .source(
+                Source::new("daq", "tcp-listen")
+                    .set("listen", quoted("127.0.0.1:0"))
+                    .stream(1, 25_600),
+            )
+            .channel(
+                Channel::new("c", "daq", 0)
+                    .block(1024)
+                    .overlap(0.0)
+                    .window("hann")
+                    .no_averaging()
+                    .band("tone", 50.0, 150.0)
+                    .band("far", 2000.0, 5000.0),
+            ),
+    )
 }
 
 /// 21 frames of a 100 Hz tone (line 4 of 1024 at 25.6 kHz). Frame 10 is

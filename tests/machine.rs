@@ -90,7 +90,8 @@ fn demo_bearing_band_sits_on_bpfo_and_its_harmonics() {
         .iter()
         .find(|b| b.name == "bpfo")
         .expect("bpfo band");
-    // DESIGN.md: BPFO 3.6×; width 0.4 orders; harmonics 1..3.
+    // BPFO 3.6× (README "What the demo shows"); width 0.4 orders, harmonics
+    // 1..3 (config/demo.toml, band `bpfo` of `pump-de`).
     match &bpfo.edges {
         BandEdges::Orders { windows } => {
             let want = [(3.4, 3.8), (7.0, 7.4), (10.6, 11.0)];

@@ -4,6 +4,9 @@
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
+mod common;
+
+use bandwatch::config::fixture::{quoted, Channel, Fixture, Source};
 use bandwatch::config::parse_str;
 use bandwatch::counters::GapReason;
 use bandwatch::pipeline::state::ChannelShared;
@@ -11,29 +14,17 @@ use bandwatch::pipeline::worker::ChannelDsp;
 use bandwatch::ring::channel_ring;
 
 fn one_channel(block: usize, overlap: f64) -> bandwatch::config::ChannelSpec {
-    let text = format!(
-        r#"
-[server]
-listen = "127.0.0.1:0"
-[[source]]
-name = "s"
-kind = "sim"
-[[channel]]
-name = "c"
-source = "s"
-index = 0
-unit = "g"
-block = {block}
-overlap = {overlap}
-window = "hann"
-detrend = "none"
-averaging = {{ mode = "none" }}
-"#
+    let c = common::config(
+        &Fixture::new().source(Source::new("s", "sim")).channel(
+            Channel::new("c", "s", 0)
+                .block(block)
+                .overlap(overlap)
+                .window("hann")
+                .set("detrend", quoted("none"))
+                .no_averaging(),
+        ),
     );
-    match parse_str(&text) {
-        Ok(c) => c.channels[0].clone(),
-        Err(e) => panic!("{e:?}"),
-    }
+    c.channels[0].clone()
 }
 
 fn tone(first: u64, n: usize, fs: f64, f: f64, phase: f64) -> Vec<f32> {
@@ -131,7 +122,7 @@ async fn demo_scenario_shows_its_lines() {
     }
     let motor = state.channel("motor-de").expect("motor-de");
     let pump = state.channel("pump-de").expect("pump-de");
-    // DESIGN.md scenario: 1x = 24.75 Hz, vane pass = 173.25 Hz; lines are
+    // README "What the demo shows": 1x = 24.75 Hz, vane pass = 173.25 Hz; lines are
     // 3.125 Hz apart, so "within one line".
     let df = motor.spec.df_hz();
     assert!(

@@ -4,7 +4,9 @@
 use std::sync::atomic::Ordering;
 use std::time::{Duration, Instant};
 
-use bandwatch::config::parse_str;
+mod common;
+
+use bandwatch::config::fixture::{quoted, Channel, Fixture, Source};
 use bandwatch::frame::SampleFormat;
 use bandwatch::tools::send::{FrameMaker, WireFormat};
 use bandwatch::Pipeline;
@@ -12,37 +14,24 @@ use tokio::io::AsyncWriteExt;
 use tokio_serial::SerialPort;
 
 fn config(device: &str, framing: &str) -> bandwatch::config::Config {
-    let text = format!(
-        r#"
-[server]
-listen = "127.0.0.1:0"
-[[source]]
-name = "daq"
-kind = "serial"
-device = "{device}"
-baud = 115200
-framing = "{framing}"
-channels = 4
-sample_rate_hz = 25600
-reopen_ms = 50
-[[channel]]
-name = "motor-de"
-source = "daq"
-index = 0
-unit = "g"
-block = 8192
-overlap = 0.5
-averaging = {{ mode = "none" }}
-  [[channel.band]]
-  name = "1x"
-  lo_hz = 21
-  hi_hz = 28.5
-"#
-    );
-    match parse_str(&text) {
-        Ok(c) => c,
-        Err(e) => panic!("{e:?}"),
-    }
+    common::config(
+        &Fixture::new()
+            .source(
+                Source::new("daq", "serial")
+                    .set("device", quoted(device))
+                    .set("baud", "115200")
+                    .set("framing", quoted(framing))
+                    .stream(4, 25_600)
+                    .set("reopen_ms", "50"),
+            )
+            .channel(
+                Channel::new("motor-de", "daq", 0)
+                    .block(8192)
+                    .overlap(0.5)
+                    .no_averaging()
+                    .band("1x", 21.0, 28.5),
+            ),
+    )
 }
 
 async fn wait_for(what: &str, secs: u64, mut ok: impl FnMut() -> bool) {

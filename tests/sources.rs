@@ -5,7 +5,9 @@ use std::sync::atomic::Ordering;
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
-use bandwatch::config::parse_str;
+mod common;
+
+use bandwatch::config::fixture::{Channel, Fixture};
 use bandwatch::counters::SourceCounters;
 use bandwatch::frame::bwf1::{encode, Header};
 use bandwatch::frame::{SampleFormat, SampleSlice};
@@ -28,35 +30,19 @@ fn free_tcp_port() -> u16 {
 
 /// The P2 channels on one network source, samples in g (f32 BWF1).
 fn config_with(source: &str) -> bandwatch::config::Config {
-    let text = format!(
-        r#"
-[server]
-listen = "127.0.0.1:0"
-[dsp]
-workers = 1
-{source}
-[[channel]]
-name = "motor-de"
-source = "daq"
-index = 0
-unit = "g"
-block = 4096
-overlap = 0.5
-averaging = {{ mode = "none" }}
-[[channel]]
-name = "pump-de"
-source = "daq"
-index = 1
-unit = "g"
-block = 4096
-overlap = 0.5
-averaging = {{ mode = "none" }}
-"#
-    );
-    match parse_str(&text) {
-        Ok(c) => c,
-        Err(e) => panic!("{e:?}"),
-    }
+    let p2 = |name: &str, index: usize| {
+        Channel::new(name, "daq", index)
+            .block(4096)
+            .overlap(0.5)
+            .no_averaging()
+    };
+    common::config(
+        &Fixture::new()
+            .raw("[dsp]\nworkers = 1")
+            .raw(source)
+            .channel(p2("motor-de", 0))
+            .channel(p2("pump-de", 1)),
+    )
 }
 
 fn udp_source(port: u16) -> String {

@@ -17,7 +17,7 @@
 //! ## Files
 //!
 //! In `<storage_dir>/captures/`, per capture id:
-//! - `<id>.bwf1`: the waveform as BWF1 frames (see DESIGN's wire format):
+//! - `<id>.bwf1`: the waveform as BWF1 frames (README, "Wire format BWF1"):
 //!   one channel, f32 samples in the channel's unit, at most
 //!   [`FRAME_SAMPLES`] per frame; `first_sample` is the stream index of
 //!   each frame's first sample and `timestamp_ns` its time, so the frames

@@ -86,7 +86,7 @@ mod tests {
 
     #[test]
     fn demo_geometry() {
-        // DESIGN.md demo bearing: 9 elements, d = 8 mm, D = 40 mm, 0°:
+        // README "What the demo shows": 9 elements, d = 8 mm, D = 40 mm, 0°:
         // r = 0.2, FTF 0.4, BPFO 3.6, BPFI 5.4, BSF 2.4 (orders).
         let g = BearingGeometry {
             elements: 9,

@@ -14,6 +14,7 @@
 //! | `health` | a channel's `health` table and its specs |
 //! | `bearing` | bearing geometry and defect orders |
 //! | `zones` | ISO 20816-3 zone presets (guidance) |
+//! | `fixture` | config text for tests and tools, built in code |
 //!
 //! The config layer sits at the bottom: it imports only `crate::units`,
 //! `crate::frame` and its own modules.
@@ -23,6 +24,7 @@ use std::path::{Path, PathBuf};
 pub mod alarms;
 pub mod bearing;
 mod check;
+pub mod fixture;
 pub mod health;
 mod issue;
 mod kinds;

@@ -16,10 +16,10 @@ use super::kinds::{
     WindowKind,
 };
 
-/// Sample rate of the built-in pump scenario (README, "The demo").
+/// Sample rate of the built-in pump scenario (README, "What the demo shows").
 pub const SIM_SAMPLE_RATE_HZ: f64 = 25_600.0;
 
-/// Channels of the built-in pump scenario (README, "The demo").
+/// Channels of the built-in pump scenario (README, "What the demo shows").
 pub const SIM_CHANNELS: usize = 4;
 
 #[derive(Debug, Clone)]

@@ -682,50 +682,51 @@ pub async fn waveform(
     let snap = latest_of(ch)?;
     let spec = &ch.spec;
     let fs = spec.sample_rate_hz;
-    let env_signal = |block: &[f32]| -> Result<Vec<f32>, ApiError> {
-        let Some((lo, hi)) = spec.envelope else {
+    // What to compute, every check made before any work starts.
+    let mut pass: Option<Vec<(f64, f64)>> = None;
+    let mut use_envelope = envelope;
+    if let Some(band) = params.get("band") {
+        let Some(b) = spec.bands.iter().find(|b| b.name == band) else {
+            return Err(ApiError::BadQuery(format!(
+                "channel {:?} has no band {band:?}",
+                spec.name
+            )));
+        };
+        let ranges: Vec<(f64, f64)> = match &b.edges {
+            BandEdges::Hz { lo, hi } => vec![(*lo, *hi)],
+            BandEdges::Orders { windows } => match snap.speed_hz {
+                Some(s) => windows.iter().map(|w| (w.0 * s, w.1 * s)).collect(),
+                None => {
+                    return Err(ApiError::NotReady(format!(
+                        "band {band:?} follows running speed, which is unknown now"
+                    )))
+                }
+            },
+        };
+        use_envelope |= b.spectrum == crate::config::SpectrumKind::Envelope;
+        pass = Some(ranges);
+    }
+    let envelope_band = if use_envelope {
+        let Some(lohi) = spec.envelope else {
             return Err(ApiError::BadQuery(format!(
                 "channel {:?} has no envelope analysis configured",
                 spec.name
             )));
         };
-        let mut e = crate::dsp::envelope::EnvelopeEngine::new(block.len(), fs, lo, hi);
-        let mut out = vec![0.0; block.len()];
-        e.envelope(block, &mut out);
-        Ok(out)
+        Some(lohi)
+    } else {
+        None
     };
-    let mut pass: Option<Vec<(f64, f64)>> = None;
-    let values: std::borrow::Cow<[f32]> = match params.get("band") {
-        None if envelope => env_signal(&snap.waveform)?.into(),
-        None => std::borrow::Cow::Borrowed(&snap.waveform[..]),
-        Some(band) => {
-            let Some(i) = spec.bands.iter().position(|b| b.name == band) else {
-                return Err(ApiError::BadQuery(format!(
-                    "channel {:?} has no band {band:?}",
-                    spec.name
-                )));
-            };
-            let b = &spec.bands[i];
-            let ranges: Vec<(f64, f64)> = match &b.edges {
-                BandEdges::Hz { lo, hi } => vec![(*lo, *hi)],
-                BandEdges::Orders { windows } => match snap.speed_hz {
-                    Some(s) => windows.iter().map(|w| (w.0 * s, w.1 * s)).collect(),
-                    None => {
-                        return Err(ApiError::NotReady(format!(
-                            "band {band:?} follows running speed, which is unknown now"
-                        )))
-                    }
-                },
-            };
-            let source = if envelope || b.spectrum == crate::config::SpectrumKind::Envelope {
-                env_signal(&snap.waveform)?
-            } else {
-                snap.waveform.clone()
-            };
-            let out = crate::dsp::filter::band_pass_ranges(&source, fs, &ranges);
-            pass = Some(ranges);
-            out.into()
-        }
+    // The FFT work (envelope, band-pass) runs on a blocking thread, within
+    // the gate's bound; the plain block is served as it is.
+    let values: std::borrow::Cow<[f32]> = if envelope_band.is_none() && pass.is_none() {
+        std::borrow::Cow::Borrowed(&snap.waveform[..])
+    } else {
+        let (snap, ranges) = (snap.clone(), pass.clone());
+        st.dsp
+            .run(move || waveform_dsp(&snap.waveform, fs, envelope_band, ranges.as_deref()))
+            .await?
+            .into()
     };
     if csv {
         let mut out = String::with_capacity(24 * values.len() + 16);
@@ -753,6 +754,29 @@ pub async fn waveform(
         values: &values,
     })
     .into_response())
+}
+
+/// The envelope of `block` (band `envelope` in Hz) if asked for, then the
+/// band-pass to `ranges` if given.
+fn waveform_dsp(
+    block: &[f32],
+    fs: f64,
+    envelope: Option<(f64, f64)>,
+    ranges: Option<&[(f64, f64)]>,
+) -> Vec<f32> {
+    let source: std::borrow::Cow<[f32]> = match envelope {
+        Some((lo, hi)) => {
+            let mut e = crate::dsp::envelope::EnvelopeEngine::new(block.len(), fs, lo, hi);
+            let mut out = vec![0.0; block.len()];
+            e.envelope(block, &mut out);
+            out.into()
+        }
+        None => block.into(),
+    };
+    match ranges {
+        Some(r) => crate::dsp::filter::band_pass_ranges(&source, fs, r),
+        None => source.into_owned(),
+    }
 }
 
 /// Fallback for unknown paths: JSON 404 like every other error.

@@ -45,6 +45,10 @@ pub enum ApiError {
     /// A route exists but not for this method.
     #[error("method not allowed")]
     MethodNotAllowed,
+    /// Every permit of request-time DSP stayed taken for the whole wait
+    /// (the bound is the number of computations that may run at once).
+    #[error("busy: {0} request-time DSP computation(s) already running; retry shortly")]
+    Busy(usize),
     /// Something on our side failed; the detail is logged, not sent.
     #[error("internal error")]
     Internal,
@@ -60,9 +64,10 @@ impl ApiError {
             ApiError::Unauthorized => StatusCode::UNAUTHORIZED,
             ApiError::Conflict(_) => StatusCode::CONFLICT,
             ApiError::BadQuery(_) => StatusCode::BAD_REQUEST,
-            ApiError::NoSnapshot(_) | ApiError::Waiting(_) | ApiError::NotReady(_) => {
-                StatusCode::SERVICE_UNAVAILABLE
-            }
+            ApiError::NoSnapshot(_)
+            | ApiError::Waiting(_)
+            | ApiError::NotReady(_)
+            | ApiError::Busy(_) => StatusCode::SERVICE_UNAVAILABLE,
             ApiError::MethodNotAllowed => StatusCode::METHOD_NOT_ALLOWED,
             ApiError::Internal => StatusCode::INTERNAL_SERVER_ERROR,
         }

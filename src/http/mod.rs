@@ -6,10 +6,12 @@
 //! - `scaling`: pure spectrum conversions (scaling, unit, frequency crop)
 //! - `metrics`: the Prometheus registry and the scrape-time collector
 //! - `error`: `ApiError`, the JSON error every failure is answered with
+//! - `gate`: the bound on request-time DSP (blocking threads, N at once)
 
 pub mod alarms;
 pub mod api;
 pub mod error;
+pub mod gate;
 pub mod metrics;
 pub mod scaling;
 
@@ -23,6 +25,7 @@ use axum::routing::{get, post};
 use axum::Router;
 
 pub use crate::http::error::ApiError;
+use crate::http::gate::DspGate;
 use crate::http::metrics::Metrics;
 use crate::pipeline::state::AppState;
 
@@ -30,11 +33,13 @@ use crate::pipeline::state::AppState;
 /// `path` label of `bandwatch_http_requests_total` bounded).
 const UNMATCHED: &str = "unmatched";
 
-/// What every handler gets: the pipeline's read side and the registry.
+/// What every handler gets: the pipeline's read side, the registry and
+/// the bound on request-time DSP.
 #[derive(Clone)]
 pub struct HttpState {
     pub app: Arc<AppState>,
     pub metrics: Arc<Metrics>,
+    pub dsp: Arc<DspGate>,
 }
 
 /// Builds the router; kept apart from `serve` so tests can call it with
@@ -44,6 +49,7 @@ pub fn router(state: Arc<AppState>) -> Router {
     router_with(HttpState {
         app: state,
         metrics,
+        dsp: Arc::new(DspGate::per_core()),
     })
 }
 
@@ -119,7 +125,5 @@ async fn metrics_handler(State(st): State<HttpState>) -> Response {
     }
 }
 
-#[cfg(test)]
-mod metrics_proto;
 #[cfg(test)]
 mod tests;

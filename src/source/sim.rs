@@ -292,7 +292,7 @@ mod tests {
 
     #[test]
     fn scenario_frequencies() {
-        // DESIGN.md: 1485 rpm -> 24.75 Hz, 7 vanes -> 173.25 Hz, BPFO 89.1 Hz.
+        // README "What the demo shows": 1485 rpm -> 24.75 Hz, 7 vanes -> 173.25 Hz, BPFO 89.1 Hz.
         assert!((SHAFT_HZ - 24.75).abs() < 1e-12);
         assert!((VANES * SHAFT_HZ - 173.25).abs() < 1e-9);
         assert!((BPFO_ORDERS * SHAFT_HZ - 89.1).abs() < 1e-9);

@@ -45,7 +45,7 @@ use crate::ring::{channel_ring, RingWriter};
 use crate::source::framed::{FrameSink, StreamFraming};
 use crate::source::{ChannelInput, SourceOutputs};
 
-/// Sample rate of every bench channel (the demo's, DESIGN.md).
+/// Sample rate of every bench channel (the demo's; README "What the demo shows").
 const FS: f64 = 25_600.0;
 /// Overlap of every bench channel (the demo's).
 const OVERLAP: f64 = 0.75;

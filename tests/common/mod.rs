@@ -1,5 +1,6 @@
 //! Shared helpers for integration tests: a tiny HTTP/1.1 GET client over a
-//! real TCP socket on loopback (no HTTP client crate), bounded in time.
+//! real TCP socket on loopback (no HTTP client crate), bounded in time, and
+//! [`config`] for configs written with `bandwatch::config::fixture`.
 
 #![allow(dead_code)]
 
@@ -8,6 +9,16 @@ use std::time::Duration;
 
 use tokio::io::{AsyncReadExt, AsyncWriteExt};
 use tokio::net::TcpStream;
+
+/// The config a fixture writes; panics (test failure) with the text if it
+/// does not parse.
+pub fn config(f: &bandwatch::config::fixture::Fixture) -> bandwatch::config::Config {
+    let text = f.toml();
+    match bandwatch::config::parse_str(&text) {
+        Ok(c) => c,
+        Err(e) => panic!("{e:?}\n{text}"),
+    }
+}
 
 /// Longest a single request may take, connect to last byte.
 pub const REQUEST_TIMEOUT: Duration = Duration::from_secs(10);

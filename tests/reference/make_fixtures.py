@@ -43,7 +43,7 @@ import scipy
 import scipy.signal
 
 SEED = 20_260_611
-FS = 25_600.0  # the sample rate of bandwatch's built-in source (DESIGN.md)
+FS = 25_600.0  # the sample rate of bandwatch's built-in source (README, demo)
 LOW_CUT_HZ = 2.0  # bandwatch's default integration low cut-off
 STANDARD_GRAVITY = 9.80665  # m/s^2, exact (CGPM 1901)
 DIGITS = 10

@@ -439,7 +439,7 @@ fn crc_checks() -> Vec<Check> {
 /// value), the decoder accepts it, and one flipped sample bit is refused.
 fn bwf1_crc_check() -> Check {
     let name = "BWF1 encoder trailer = CRC-32/IEEE; bit flip refused".to_string();
-    let source = "DESIGN.md wire format; CRC catalogue";
+    let source = "README wire format BWF1; CRC catalogue";
     let samples: Vec<f32> = (0..16).map(|i| i as f32 * 0.25 - 1.0).collect();
     let header = Header::new(SampleFormat::F32, 2, 8, 1000, 0, FS);
     let frame = match bwf1::encode(&header, SampleSlice::F32(&samples)) {

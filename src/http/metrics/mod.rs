@@ -1,0 +1,230 @@
+//! `/metrics`: Prometheus text exposition.
+//!
+//! Two kinds of series:
+//!
+//! - static ones the process updates itself (`bandwatch_build_info`,
+//!   `bandwatch_start_time_seconds`, `bandwatch_http_requests_total`), kept
+//!   in a prometheus crate `Registry` and encoded by its `TextEncoder`;
+//! - everything derived from channels and sources, written by
+//!   [`PipelineCollector`] at scrape time from the latest snapshots and
+//!   counters, straight into text. One scrape reads each snapshot once
+//!   (never half old, half new), and a channel that is gone leaves no stale
+//!   series.
+//!
+//! The direct encoder writes what `Registry::gather` + `TextEncoder` would
+//! (families sorted by name, series by label values, values as Rust
+//! prints an `f64`), without building a `prometheus::proto` object per
+//! series: label sets are escaped once when the collector is built (names
+//! are fixed by the config), the text goes into per-family buffers reused
+//! from scrape to scrape, and integral values skip float formatting. The
+//! one difference: non-finite values are written `+Inf`, `-Inf`, `NaN` as
+//! the text format specifies (the crate wrote Rust's `inf`).
+//!
+//! A rendered body is shared by the scrapes that arrive within
+//! [`RENDER_MAX_AGE`] of the start of its render; never longer.
+//!
+//! Files: `families` (the fixed families and the naming of the
+//! config-dependent ones), `walk` (the one walk of the state, feeding any
+//! encoder), `text` (the direct encoder), `proto` (tests: the reference
+//! encoder on the prometheus crate).
+//!
+//! Names follow the Prometheus naming guide: `bandwatch_` prefix, SI base
+//! units in the name (values are converted with `Unit::to_si`), `_total` on
+//! counters, help strings as sentences, bounded labels (channel, band,
+//! source, kind, reason, path, status).
+
+mod families;
+#[cfg(test)]
+pub(crate) mod proto;
+mod text;
+mod walk;
+
+use std::sync::{Arc, Mutex, MutexGuard};
+use std::time::{Duration, Instant};
+
+use axum::body::Bytes;
+use axum::http::StatusCode;
+use prometheus::{Encoder, Gauge, IntCounterVec, IntGaugeVec, Opts, Registry, TextEncoder};
+
+#[cfg(test)]
+pub(crate) use families::fixed_order;
+pub use text::{push_escaped, push_value, PipelineCollector};
+
+use crate::clock::unix_now_ns;
+use crate::pipeline::state::AppState;
+
+/// Content type of the text exposition format.
+pub const CONTENT_TYPE: &str = prometheus::TEXT_FORMAT;
+
+/// Longest time a rendered `/metrics` body is served again: scrapes within
+/// this time of the start of a render share its body. Snapshots change
+/// only when a channel publishes (every hop × averages / fs, 0.32 s at the
+/// demo's settings), so a scrape sees values at most this much older than
+/// an uncached render would show.
+pub const RENDER_MAX_AGE: Duration = Duration::from_millis(200);
+
+/// Monotonic time for the render cache (tests step it by hand).
+pub type MonoClock = Arc<dyn Fn() -> Duration + Send + Sync>;
+
+fn process_mono() -> Duration {
+    static BASE: std::sync::OnceLock<Instant> = std::sync::OnceLock::new();
+    BASE.get_or_init(Instant::now).elapsed()
+}
+
+/// The last rendered body and when its render started.
+struct Cached {
+    at: Duration,
+    body: Bytes,
+}
+
+/// The registry behind `/metrics`, the static series the HTTP layer
+/// updates, and the render cache.
+pub struct Metrics {
+    registry: Registry,
+    /// `None` only if the prometheus crate refused its constant options.
+    http_requests: Option<IntCounterVec>,
+    collector: PipelineCollector,
+    max_age: Duration,
+    mono: MonoClock,
+    cache: Mutex<Option<Cached>>,
+    /// Held while rendering, so that concurrent scrapes wait for one
+    /// render instead of each doing their own.
+    rendering: Mutex<()>,
+}
+
+fn lock<T>(m: &Mutex<T>) -> MutexGuard<'_, T> {
+    m.lock().unwrap_or_else(std::sync::PoisonError::into_inner)
+}
+
+impl Metrics {
+    /// Builds the registry for `app`. Registration can only fail on a
+    /// programming error (two families of one name); that is logged and
+    /// the remaining metrics are still served.
+    pub fn new(app: Arc<AppState>) -> Metrics {
+        Metrics::with_clock(app, unix_now_ns)
+    }
+
+    /// As [`Metrics::new`], with the wall clock used for ages replaced
+    /// (tests pin it to get a reproducible exposition).
+    pub fn with_clock(app: Arc<AppState>, clock: fn() -> u64) -> Metrics {
+        Metrics::with_cache(app, clock, RENDER_MAX_AGE, Arc::new(process_mono))
+    }
+
+    /// As [`Metrics::with_clock`], with the cache's max-age and monotonic
+    /// clock given (tests step the clock; `Duration::ZERO` disables the
+    /// cache).
+    pub fn with_cache(
+        app: Arc<AppState>,
+        clock: fn() -> u64,
+        max_age: Duration,
+        mono: MonoClock,
+    ) -> Metrics {
+        let registry = Registry::new();
+        let http_requests = IntCounterVec::new(
+            Opts::new(
+                "bandwatch_http_requests_total",
+                "HTTP requests answered, by route template and status code.",
+            ),
+            &["path", "status"],
+        );
+        let build_info = IntGaugeVec::new(
+            Opts::new(
+                "bandwatch_build_info",
+                "Always 1; the labels name the running bandwatch build.",
+            ),
+            &["version"],
+        );
+        let start_time = Gauge::new(
+            "bandwatch_start_time_seconds",
+            "Time the process started, in seconds since the Unix epoch.",
+        );
+        let http_requests = match http_requests {
+            Ok(c) => {
+                register(&registry, Box::new(c.clone()));
+                Some(c)
+            }
+            Err(e) => {
+                tracing::error!(error = %e, "cannot create the HTTP request counter");
+                None
+            }
+        };
+        if let Ok(g) = build_info {
+            g.with_label_values(&[env!("CARGO_PKG_VERSION")]).set(1);
+            register(&registry, Box::new(g));
+        }
+        if let Ok(g) = start_time {
+            g.set(app.started_unix_ns as f64 * 1e-9);
+            register(&registry, Box::new(g));
+        }
+        Metrics {
+            registry,
+            http_requests,
+            collector: PipelineCollector::new(app, clock),
+            max_age,
+            mono,
+            cache: Mutex::new(None),
+            rendering: Mutex::new(()),
+        }
+    }
+
+    /// Counts one answered request under its route template.
+    pub fn observe_request(&self, path: &str, status: StatusCode) {
+        if let Some(c) = &self.http_requests {
+            c.with_label_values(&[path, status.as_str()]).inc();
+        }
+    }
+
+    /// The body cached less than the max-age ago, if any.
+    pub fn cached(&self) -> Option<Bytes> {
+        let now = (self.mono)();
+        let c = lock(&self.cache);
+        c.as_ref()
+            .filter(|c| now.saturating_sub(c.at) < self.max_age)
+            .map(|c| c.body.clone())
+    }
+
+    /// The text exposition: the cached body if it is younger than the
+    /// max-age, else a new render (one at a time: a scrape that arrives
+    /// during a render waits for it and shares its body).
+    ///
+    /// # Errors
+    /// If the encoder rejects a static family (a programming error).
+    pub fn render(&self) -> Result<Bytes, prometheus::Error> {
+        if let Some(b) = self.cached() {
+            return Ok(b);
+        }
+        let _one = lock(&self.rendering);
+        if let Some(b) = self.cached() {
+            return Ok(b);
+        }
+        let at = (self.mono)();
+        let body = Bytes::from(self.render_fresh()?);
+        if !self.max_age.is_zero() {
+            *lock(&self.cache) = Some(Cached {
+                at,
+                body: body.clone(),
+            });
+        }
+        Ok(body)
+    }
+
+    /// Renders the exposition now, bypassing the cache.
+    ///
+    /// # Errors
+    /// If the encoder rejects a static family (a programming error).
+    pub fn render_fresh(&self) -> Result<Vec<u8>, prometheus::Error> {
+        let mut statics = Vec::new();
+        for f in self.registry.gather() {
+            let mut text = Vec::new();
+            TextEncoder::new().encode(std::slice::from_ref(&f), &mut text)?;
+            statics.push((f.name().to_string(), text));
+        }
+        Ok(self.collector.encode(&statics))
+    }
+}
+
+fn register(registry: &Registry, c: Box<dyn prometheus::core::Collector>) {
+    if let Err(e) = registry.register(c) {
+        tracing::error!(error = %e, "cannot register a metrics collector");
+    }
+}
