@@ -145,3 +145,41 @@ async fn demo_scenario_shows_its_lines() {
     assert_eq!(motor.counters.dropped_total(), 0);
     pipeline.stop().await;
 }
+
+#[test]
+fn dropped_workers_stop_and_release_their_channels() {
+    // Workers own their channels' DSP on their threads; dropping the
+    // workers (as a pipeline that fails to start, or is dropped, does) must
+    // stop and join those threads, which drops each channel's DSP and so
+    // its reference to the channel's shared state.
+    let config = common::config(
+        &Fixture::new()
+            .source(Source::new("s", "sim"))
+            .channel(Channel::new("a", "s", 0).block(1024))
+            .channel(Channel::new("b", "s", 1).block(1024))
+            .channel(Channel::new("c", "s", 2).block(1024)),
+    );
+    let mut p = bandwatch::pipeline::Builder::new(&config)
+        .alarms(bandwatch::pipeline::AlarmMode::InMemory)
+        .assemble()
+        .expect("assemble")
+        .inline();
+    let shared: Vec<Arc<ChannelShared>> = p.state.channels.clone();
+    let dsps: Vec<ChannelDsp> = p.channels.drain(..).collect();
+    // Held by: the state, our copy, and each channel's DSP.
+    assert!(shared.iter().all(|s| Arc::strong_count(s) == 3));
+    let (workers, wakers) =
+        bandwatch::pipeline::worker::Workers::start(2, dsps).expect("start workers");
+    assert_eq!(wakers.len(), 3);
+    drop(workers);
+    // Control: the count falls only because the threads ended and dropped
+    // their DSPs (join is part of drop, so this is not a race).
+    for s in &shared {
+        assert_eq!(
+            Arc::strong_count(s),
+            2,
+            "channel {} still held",
+            s.spec.name
+        );
+    }
+}
