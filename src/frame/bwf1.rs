@@ -894,13 +894,29 @@ mod tests {
         // sample format.
         let cases: [(SampleFormat, SampleSlice<'_>); 4] = [
             (SampleFormat::I16, SampleSlice::I16(&[-3, 7, 1000, -1000])),
-            (SampleFormat::I24, SampleSlice::I32(&[-8_388_608, 5, 8_388_607, 0])),
-            (SampleFormat::F32, SampleSlice::F32(&[0.5, -1.25, 3.0, 1e-3])),
-            (SampleFormat::F64, SampleSlice::F64(&[0.5, -1.25, 3.0, 1e-3])),
+            (
+                SampleFormat::I24,
+                SampleSlice::I32(&[-8_388_608, 5, 8_388_607, 0]),
+            ),
+            (
+                SampleFormat::F32,
+                SampleSlice::F32(&[0.5, -1.25, 3.0, 1e-3]),
+            ),
+            (
+                SampleFormat::F64,
+                SampleSlice::F64(&[0.5, -1.25, 3.0, 1e-3]),
+            ),
         ];
         for (format, samples) in cases {
             let old = Header::new(format, 2, 2, 0, 0, 25_600.0);
-            let new = Header::new(format, 2, 2, 123_456_789, 1_700_000_000_000_000_000, 51_200.0);
+            let new = Header::new(
+                format,
+                2,
+                2,
+                123_456_789,
+                1_700_000_000_000_000_000,
+                51_200.0,
+            );
             let mut frame = Vec::new();
             encode_into(&old, samples, &mut frame).unwrap();
             let mut want = Vec::new();
