@@ -144,7 +144,11 @@ fn imports() -> BTreeMap<(String, String), Vec<String>> {
                 .find(|(item, _)| *item == to)
                 .map_or(to.clone(), |(_, owner)| owner.to_string());
             if to != from {
-                let name = f.strip_prefix(&src).expect("under src").display().to_string();
+                let name = f
+                    .strip_prefix(&src)
+                    .expect("under src")
+                    .display()
+                    .to_string();
                 edges.entry((from.clone(), to)).or_default().push(name);
             }
         }
@@ -162,11 +166,15 @@ fn every_import_points_down_a_layer() {
     let mut wrong = Vec::new();
     for ((from, to), files) in &edges {
         let Some((rf, lf)) = rank(from) else {
-            wrong.push(format!("module `{from}` has no layer in tests/layers.rs ({files:?})"));
+            wrong.push(format!(
+                "module `{from}` has no layer in tests/layers.rs ({files:?})"
+            ));
             continue;
         };
         let Some((rt, lt)) = rank(to) else {
-            wrong.push(format!("`{from}` imports `{to}`, which has no layer ({files:?})"));
+            wrong.push(format!(
+                "`{from}` imports `{to}`, which has no layer ({files:?})"
+            ));
             continue;
         };
         if rt >= rf {
@@ -210,7 +218,11 @@ fn only_the_pipeline_assembles() {
     ];
     let mut wrong = Vec::new();
     for f in files {
-        let rel = f.strip_prefix(&src).expect("under src").display().to_string();
+        let rel = f
+            .strip_prefix(&src)
+            .expect("under src")
+            .display()
+            .to_string();
         if rel.starts_with("pipeline/") {
             continue;
         }
