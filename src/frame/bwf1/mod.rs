@@ -52,6 +52,8 @@ const OFF_VERSION: u64 = 4;
 const OFF_FORMAT: u64 = 5;
 const OFF_CHANNELS: u64 = 6;
 const OFF_SAMPLES: u64 = 8;
+const OFF_FIRST_SAMPLE: u64 = 12;
+const OFF_TIMESTAMP: u64 = 20;
 const OFF_RATE: u64 = 28;
 
 /// A frame's header fields, as on the wire.
@@ -414,6 +416,56 @@ pub fn encode_into(
     Ok(())
 }
 
+/// Rewrites the stream position, timestamp and sample rate of the encoded
+/// frame `frame` in place and recomputes its CRC: the frame [`encode_into`]
+/// writes for the same header and samples. The samples are kept as they
+/// are; the old CRC is not checked. Returns the new header.
+///
+/// # Errors
+/// The frame's header as [`Header::parse`] finds it;
+/// [`FrameError::Truncated`] or [`FrameError::TrailingBytes`] when `frame`
+/// is not exactly the frame its header announces;
+/// [`FrameError::BadSampleRate`] for a rate that is not finite and > 0.
+/// On error `frame` is left as it was.
+pub fn restamp(
+    frame: &mut [u8],
+    first_sample: u64,
+    timestamp_ns: u64,
+    sample_rate_hz: f64,
+) -> Result<Header, FrameError> {
+    let mut header = Header::parse(frame, 0)?;
+    let len = header.frame_bytes();
+    let given = frame.len() as u64;
+    if given < len {
+        return Err(FrameError::Truncated {
+            offset: given,
+            needed: len,
+            available: given,
+        });
+    }
+    if given > len {
+        return Err(FrameError::TrailingBytes {
+            offset: len,
+            extra: given - len,
+        });
+    }
+    header.first_sample = first_sample;
+    header.timestamp_ns = timestamp_ns;
+    header.sample_rate_hz = sample_rate_hz;
+    header.validate(0)?;
+    let put = |frame: &mut [u8], at: u64, bytes: [u8; 8]| {
+        let at = at as usize;
+        frame[at..at + 8].copy_from_slice(&bytes);
+    };
+    put(frame, OFF_FIRST_SAMPLE, first_sample.to_le_bytes());
+    put(frame, OFF_TIMESTAMP, timestamp_ns.to_le_bytes());
+    put(frame, OFF_RATE, sample_rate_hz.to_le_bytes());
+    let end = frame.len() - CRC_BYTES;
+    let crc = crc32fast::hash(&frame[..end]);
+    frame[end..].copy_from_slice(&crc.to_le_bytes());
+    Ok(header)
+}
+
 /// One frame as a new vector. See [`encode_into`].
 ///
 /// # Errors
@@ -578,6 +630,83 @@ mod tests {
         assert_eq!(&f[28..36], &1.0f64.to_le_bytes());
         assert_eq!(&f[36..40], &[0xFF, 0xFF, 2, 0]);
         assert_eq!(&f[40..44], &crc32fast::hash(&f[..40]).to_le_bytes());
+    }
+
+    #[test]
+    fn restamp_gives_the_frame_encode_writes() {
+        // Restamping must give, byte for byte, the frame encode_into writes
+        // for the new header and the same samples (CRC included), in every
+        // sample format.
+        let cases: [(SampleFormat, SampleSlice<'_>); 4] = [
+            (SampleFormat::I16, SampleSlice::I16(&[-3, 7, 1000, -1000])),
+            (
+                SampleFormat::I24,
+                SampleSlice::I32(&[-8_388_608, 5, 8_388_607, 0]),
+            ),
+            (
+                SampleFormat::F32,
+                SampleSlice::F32(&[0.5, -1.25, 3.0, 1e-3]),
+            ),
+            (
+                SampleFormat::F64,
+                SampleSlice::F64(&[0.5, -1.25, 3.0, 1e-3]),
+            ),
+        ];
+        for (format, samples) in cases {
+            let old = Header::new(format, 2, 2, 0, 0, 25_600.0);
+            let new = Header::new(
+                format,
+                2,
+                2,
+                123_456_789,
+                1_700_000_000_000_000_000,
+                51_200.0,
+            );
+            let mut frame = Vec::new();
+            encode_into(&old, samples, &mut frame).unwrap();
+            let mut want = Vec::new();
+            encode_into(&new, samples, &mut want).unwrap();
+            let h = restamp(&mut frame, 123_456_789, 1_700_000_000_000_000_000, 51_200.0).unwrap();
+            assert_eq!(h, new, "{format:?}");
+            assert_eq!(frame, want, "{format:?}");
+            assert_eq!(decode_datagram(&frame).unwrap().header, new);
+        }
+    }
+
+    #[test]
+    fn restamp_refuses_a_frame_of_the_wrong_length_or_a_bad_rate() {
+        let h = Header::new(SampleFormat::I16, 1, 2, 0, 0, 25_600.0);
+        let good = encode(&h, SampleSlice::I16(&[1, 2])).unwrap();
+        let mut short = good[..good.len() - 1].to_vec();
+        assert_eq!(
+            restamp(&mut short, 5, 0, 25_600.0),
+            Err(FrameError::Truncated {
+                offset: 43,
+                needed: 44,
+                available: 43
+            })
+        );
+        assert_eq!(short, good[..good.len() - 1]);
+        let mut long = good.clone();
+        long.push(0);
+        assert_eq!(
+            restamp(&mut long, 5, 0, 25_600.0),
+            Err(FrameError::TrailingBytes {
+                offset: 44,
+                extra: 1
+            })
+        );
+        let mut frame = good.clone();
+        assert_eq!(
+            restamp(&mut frame, 5, 0, f64::NAN).map_err(|e| e.reason()),
+            Err(RejectReason::BadSampleRate)
+        );
+        assert_eq!(frame, good, "left as it was");
+        let mut junk = vec![0u8; 44];
+        assert_eq!(
+            restamp(&mut junk, 5, 0, 25_600.0),
+            Err(FrameError::BadMagic { offset: 0 })
+        );
     }
 
     #[test]

@@ -1,0 +1,380 @@
+//! `bandwatch bench`: measures, in one run and side by side, what each stage
+//! of the pipeline costs, so that the ratios between them mean something on
+//! a noisy shared machine.
+//!
+//! Phases (`--only` picks some):
+//! - `fft`: raw realfft throughput for the configured N, f32 and f64: the
+//!   limit. Its "input samples/s" is FFTs/s × hop, the input rate that the
+//!   FFTs alone could keep up with at the configured 75 % overlap.
+//! - `dsp`: the DSP stage alone (ring → `ChannelDsp`: window, FFT, power,
+//!   averaging, bands, snapshot publish) over 1, 64, 1024 … channels.
+//! - `path`: the whole path from BWF1 frames in memory: decode (i16, i24,
+//!   f32), scale, ring, DSP, bands, publish.
+//! - `memory`: resident bytes per channel and the total for the largest
+//!   channel count, measured in a child process so that nothing else this
+//!   process allocated is counted.
+//! - `ingest`: BWF1 over real loopback TCP and UDP into the running
+//!   pipeline: the highest aggregate sample rate held with zero drops.
+//! - `http`: `/metrics` render time and body size, and `/metrics` and
+//!   spectrum latency at fixed request rates while the DSP runs flat out,
+//!   paced to real time, or not at all, and what that load costs the DSP.
+//! - `welch`: not a phase of the default run; the mode
+//!   `bench/compare_scipy.py` drives (`--signal FILE`).
+//!
+//! Every compute phase runs on one thread, so its rates are per core. The
+//! phases of one repeat run one after another, and ratios are taken within
+//! a repeat, then summarised (median, min–max) over the repeats.
+//!
+//! Every rig is assembled by `pipeline::Builder`, as the daemon's pipeline
+//! is, and driven by hand on one thread. One file per phase:
+//! [`fft`] (and the side-by-side timing), [`dsp`], [`path`], [`memory`],
+//! [`ingest`], [`http`], [`welch`]; [`input`] holds the config text and
+//! test signal they share.
+
+mod dsp;
+mod fft;
+mod http;
+mod ingest;
+mod input;
+mod memory;
+mod path;
+mod welch;
+
+use std::io::Write as _;
+use std::path::PathBuf;
+use std::sync::Arc;
+
+use serde::Serialize;
+
+use input::{bench_config, test_signal, UNUSED_SOURCE};
+
+/// Sample rate of every bench channel (the demo's, README).
+const FS: f64 = 25_600.0;
+/// Overlap of every bench channel (the demo's).
+const OVERLAP: f64 = 0.75;
+/// Converter step in g per count: ±5 V over 24 bits, 100 mV/g (the demo's).
+const G_PER_COUNT: f64 = 5.0 / 8_388_608.0 / 0.1;
+
+#[derive(Debug, Clone, clap::Args)]
+pub struct BenchArgs {
+    /// Block and FFT length N.
+    #[arg(long, default_value_t = 8192)]
+    pub n: usize,
+    /// Channel counts of the dsp and path phases; the largest is also the
+    /// memory phase's total.
+    #[arg(long, value_delimiter = ',', default_value = "1,64,1024")]
+    pub channels: Vec<usize>,
+    /// Repeats of every measurement (ingest: at most 3).
+    #[arg(long, default_value_t = 5)]
+    pub repeats: usize,
+    /// Seconds of each ingest step and of each http measurement.
+    #[arg(long, default_value_t = 2.0)]
+    pub seconds: f64,
+    /// Seconds of timed work per compute measurement (fft, dsp, path).
+    #[arg(long, default_value_t = 0.5)]
+    pub work_seconds: f64,
+    /// Phases to run, comma separated: fft, dsp, path, memory, ingest, http
+    /// (default: all), or welch (with --signal).
+    #[arg(long, value_delimiter = ',')]
+    pub only: Vec<String>,
+    /// Also write the results as JSON here.
+    #[arg(long)]
+    pub json: Option<PathBuf>,
+    /// welch: raw little-endian f32 samples, channel after channel.
+    #[arg(long)]
+    pub signal: Option<PathBuf>,
+    /// welch: channels in --signal.
+    #[arg(long, default_value_t = 1)]
+    pub signal_channels: usize,
+    /// http: channel counts (each also gets the render and body-size rows).
+    #[arg(long, value_delimiter = ',', default_value = "64")]
+    pub http_channels: Vec<usize>,
+    /// http: DSP load during the requests, `flat` (flat out), `paced`
+    /// (real time: 25.6 kHz per channel) and/or `idle` (no DSP work).
+    #[arg(long, value_delimiter = ',', default_value = "flat,paced")]
+    pub http_load: Vec<String>,
+    /// http: request rates, requests/s (alternating /metrics and spectrum).
+    #[arg(long, value_delimiter = ',', default_value = "200")]
+    pub http_rates: Vec<f64>,
+    /// Internal: measure memory for this many channels and print one JSON line.
+    #[arg(long, hide = true)]
+    pub memory_child: Option<usize>,
+}
+
+#[derive(Debug, thiserror::Error)]
+pub enum BenchError {
+    #[error("bad option: {0}")]
+    Usage(String),
+    #[error("{what}: {source}")]
+    Io {
+        what: String,
+        #[source]
+        source: std::io::Error,
+    },
+    #[error("bench config does not validate: {0}")]
+    Config(String),
+    #[error("{0}")]
+    Lost(String),
+}
+
+pub(crate) fn io_err(what: impl Into<String>) -> impl FnOnce(std::io::Error) -> BenchError {
+    let what = what.into();
+    move |source| BenchError::Io { what, source }
+}
+
+/// Median, min and max of a set of measurements.
+#[derive(Debug, Clone, Serialize)]
+pub(crate) struct Summary {
+    pub(crate) median: f64,
+    pub(crate) min: f64,
+    pub(crate) max: f64,
+    pub(crate) values: Vec<f64>,
+}
+
+impl Summary {
+    pub(crate) fn of(values: &[f64]) -> Summary {
+        let mut v: Vec<f64> = values.iter().copied().filter(|x| x.is_finite()).collect();
+        v.sort_by(f64::total_cmp);
+        if v.is_empty() {
+            return Summary {
+                median: f64::NAN,
+                min: f64::NAN,
+                max: f64::NAN,
+                values: values.to_vec(),
+            };
+        }
+        let m = v.len() / 2;
+        let median = if v.len() % 2 == 1 {
+            v[m]
+        } else {
+            0.5 * (v[m - 1] + v[m])
+        };
+        Summary {
+            median,
+            min: v[0],
+            max: v[v.len() - 1],
+            values: values.to_vec(),
+        }
+    }
+}
+
+/// One line of the table.
+#[derive(Debug, Clone, Serialize)]
+pub(crate) struct Row {
+    pub(crate) phase: String,
+    pub(crate) case: String,
+    pub(crate) unit: String,
+    pub(crate) value: Summary,
+    /// Ratio to the f32 FFT limit measured beside it (alternating slices)
+    /// within each repeat.
+    pub(crate) ratio: Option<Summary>,
+    pub(crate) target: Option<String>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub(crate) struct Machine {
+    pub(crate) nproc: usize,
+    pub(crate) cpu: String,
+    pub(crate) os: String,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub(crate) struct Report {
+    pub(crate) machine: Machine,
+    pub(crate) n: usize,
+    pub(crate) hop: usize,
+    pub(crate) sample_rate_hz: f64,
+    pub(crate) repeats: usize,
+    pub(crate) rows: Vec<Row>,
+    pub(crate) notes: Vec<String>,
+}
+
+fn machine() -> Machine {
+    let cpu = std::fs::read_to_string("/proc/cpuinfo")
+        .ok()
+        .and_then(|t| {
+            t.lines()
+                .find(|l| l.starts_with("model name"))
+                .and_then(|l| l.split(':').nth(1))
+                .map(|s| s.trim().to_string())
+        })
+        .unwrap_or_else(|| "unknown".into());
+    Machine {
+        nproc: std::thread::available_parallelism().map_or(1, |n| n.get()),
+        cpu,
+        os: std::env::consts::OS.into(),
+    }
+}
+
+pub(crate) fn fmt_rate(x: f64) -> String {
+    if !x.is_finite() {
+        "-".into()
+    } else if x.abs() >= 1e9 {
+        format!("{:.2} G", x / 1e9)
+    } else if x.abs() >= 1e6 {
+        format!("{:.2} M", x / 1e6)
+    } else if x.abs() >= 1e3 {
+        format!("{:.1} k", x / 1e3)
+    } else {
+        format!("{x:.3}")
+    }
+}
+
+/// The table as printed.
+pub(crate) fn table(report: &Report) -> String {
+    let mut s = format!(
+        "bandwatch bench: N = {}, hop = {} ({}% overlap), fs = {} Hz, {} repeat(s); {} x {}\n",
+        report.n,
+        report.hop,
+        OVERLAP * 100.0,
+        report.sample_rate_hz,
+        report.repeats,
+        report.machine.nproc,
+        report.machine.cpu
+    );
+    s.push_str(&format!(
+        "{:<8} {:<22} {:>10} {:>21} {:<14} {:>6} {:>13}  {}\n",
+        "phase", "case", "median", "min-max", "unit", "ratio", "min-max", "target"
+    ));
+    for r in &report.rows {
+        let (rm, rr) = match &r.ratio {
+            Some(x) => (
+                format!("{:.3}", x.median),
+                format!("{:.3}-{:.3}", x.min, x.max),
+            ),
+            None => (String::new(), String::new()),
+        };
+        s.push_str(&format!(
+            "{:<8} {:<22} {:>10} {:>21} {:<14} {:>6} {:>13}  {}\n",
+            r.phase,
+            r.case,
+            fmt_rate(r.value.median),
+            format!("{} - {}", fmt_rate(r.value.min), fmt_rate(r.value.max)),
+            r.unit,
+            rm,
+            rr,
+            r.target.clone().unwrap_or_default()
+        ));
+    }
+    for n in &report.notes {
+        s.push_str(&format!("note: {n}\n"));
+    }
+    s
+}
+
+pub(crate) fn wants(args: &BenchArgs, phase: &str) -> bool {
+    args.only.is_empty() || args.only.iter().any(|p| p == phase)
+}
+
+/// Runs the benchmark as the options say, prints the table (or, in the
+/// welch and memory-child modes, JSON) and writes `--json`.
+///
+/// # Errors
+/// Bad options, a socket or file that cannot be opened, or a rig that
+/// lost data (which would make its numbers meaningless).
+pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
+    if args.n < 16 || !args.n.is_multiple_of(4) {
+        return Err(BenchError::Usage(format!(
+            "--n {} must be at least 16 and a multiple of 4",
+            args.n
+        )));
+    }
+    if let Some(c) = args.memory_child {
+        let p = memory::memory_probe(args.n, c)?;
+        println!("{}", serde_json::to_string(&p).unwrap_or_default());
+        return Ok(());
+    }
+    if args.only.iter().any(|p| p == "welch") {
+        let w = welch::welch(args)?;
+        let text = serde_json::to_string(&w).map_err(|e| BenchError::Lost(e.to_string()))?;
+        match &args.json {
+            Some(p) => std::fs::write(p, text).map_err(io_err(format!("write {}", p.display())))?,
+            None => println!("{text}"),
+        }
+        return Ok(());
+    }
+    for p in &args.only {
+        if !["fft", "dsp", "path", "memory", "ingest", "http"].contains(&p.as_str()) {
+            return Err(BenchError::Usage(format!("unknown phase {p:?}")));
+        }
+    }
+    if args.channels.iter().any(|&c| c == 0 || c > 1024) {
+        return Err(BenchError::Usage("--channels must be 1 to 1024".into()));
+    }
+    if args
+        .http_channels
+        .iter()
+        .any(|&c| c == 0 || c > http::MAX_HTTP_CHANNELS)
+    {
+        return Err(BenchError::Usage(format!(
+            "--http-channels must be 1 to {}",
+            http::MAX_HTTP_CHANNELS
+        )));
+    }
+    let repeats = args.repeats.max(1);
+    let n = args.n;
+    let signal = Arc::new(test_signal(4 * FS as usize, FS));
+    let hop = bench_config(1, n, FS, UNUSED_SOURCE)?.channels[0].hop;
+    let mut rows = Vec::new();
+    let mut notes = Vec::new();
+
+    if wants(args, "fft") || wants(args, "dsp") || wants(args, "path") {
+        fft::compute_phases(args, &signal, hop, &mut rows)?;
+    }
+    if wants(args, "memory") {
+        memory::memory_phase(args, &mut rows)?;
+    }
+
+    let need_rt = wants(args, "ingest") || wants(args, "http");
+    let rt = if need_rt {
+        Some(
+            tokio::runtime::Builder::new_multi_thread()
+                .worker_threads(2)
+                .enable_all()
+                .thread_name("bench-io")
+                .build()
+                .map_err(io_err("async runtime"))?,
+        )
+    } else {
+        None
+    };
+
+    if let (true, Some(rt)) = (wants(args, "ingest"), &rt) {
+        ingest::ingest_phase(rt, args, &signal, &mut rows, &mut notes)?;
+    }
+
+    if let (true, Some(rt)) = (wants(args, "http"), &rt) {
+        http::http_phase(rt, args, &signal, &mut rows, &mut notes)?;
+    }
+
+    let report = Report {
+        machine: machine(),
+        n,
+        hop,
+        sample_rate_hz: FS,
+        repeats,
+        rows,
+        notes,
+    };
+    print!("{}", table(&report));
+    let _ = std::io::stdout().flush();
+    if let Some(p) = &args.json {
+        let text =
+            serde_json::to_string_pretty(&report).map_err(|e| BenchError::Lost(e.to_string()))?;
+        std::fs::write(p, text).map_err(io_err(format!("write {}", p.display())))?;
+    }
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn summary_takes_median_and_range() {
+        let s = Summary::of(&[3.0, 1.0, 2.0, 10.0]);
+        assert_eq!(s.median, 2.5);
+        assert_eq!((s.min, s.max), (1.0, 10.0));
+        assert_eq!(Summary::of(&[5.0, 1.0, 3.0]).median, 3.0);
+    }
+}
