@@ -6,6 +6,7 @@
 //! same way.
 
 use super::*;
+use crate::config::fixture::{quoted, Channel, Fixture, Source};
 
 // ---------------------------------------------------------------------------
 // Published window figures
@@ -159,28 +160,32 @@ pub struct ChannelSetup<'a> {
 }
 
 impl ChannelSetup<'_> {
-    /// The config text of a one-channel `sim` setup with these settings.
+    /// The config text of a one-channel `sim` setup with these settings
+    /// (written by the tests' config fixture, `config::fixture`).
     pub fn config_text(&self) -> String {
-        let mut text = format!(
-            "[server]\nlisten = \"127.0.0.1:0\"\n\n[[source]]\nname = \"sim\"\nkind = \"sim\"\n\n\
-             [[channel]]\nname = \"ref\"\nsource = \"sim\"\nindex = 0\nunit = \"g\"\n\
-             block = {}\nnfft = {}\nwindow = \"{}\"\noverlap = {:?}\ndetrend = \"{}\"\n\
-             averaging = {{ mode = \"linear\", count = {} }}\n",
-            self.block,
-            self.nfft,
-            self.window,
-            self.noverlap as f64 / self.block as f64,
-            self.detrend,
-            self.averages,
-        );
+        let mut ch = Channel::new("ref", "sim", 0)
+            .unit("g")
+            .block(self.block)
+            .set("nfft", self.nfft.to_string())
+            .window(self.window)
+            .overlap(self.noverlap as f64 / self.block as f64)
+            .set("detrend", quoted(self.detrend))
+            .set(
+                "averaging",
+                format!("{{ mode = \"linear\", count = {} }}", self.averages),
+            );
         for b in &self.bands {
-            let _ = write!(
-                text,
-                "\n[[channel.band]]\nname = \"{}\"\nlo_hz = {:?}\nhi_hz = {:?}\nunit = \"{}\"\nmeasure = \"{}\"\n",
-                b.name, b.lo_hz, b.hi_hz, b.unit, b.measure
+            ch = ch.band_with(
+                b.name,
+                b.lo_hz,
+                b.hi_hz,
+                &[("unit", quoted(b.unit)), ("measure", quoted(b.measure))],
             );
         }
-        text
+        Fixture::new()
+            .source(Source::new("sim", "sim"))
+            .channel(ch)
+            .toml()
     }
 
     /// Builds the channel the way the daemon does: config text through
