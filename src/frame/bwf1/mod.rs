@@ -416,6 +416,26 @@ pub fn encode_into(
     Ok(())
 }
 
+/// A frame of `given` bytes holds exactly the frame `header` announces.
+fn check_whole(header: &Header, given: usize) -> Result<(), FrameError> {
+    let needed = header.frame_bytes();
+    let given = given as u64;
+    if given < needed {
+        return Err(FrameError::Truncated {
+            offset: given,
+            needed,
+            available: given,
+        });
+    }
+    if given > needed {
+        return Err(FrameError::TrailingBytes {
+            offset: needed,
+            extra: given - needed,
+        });
+    }
+    Ok(())
+}
+
 /// Rewrites the stream position, timestamp and sample rate of the encoded
 /// frame `frame` in place and recomputes its CRC: the frame [`encode_into`]
 /// writes for the same header and samples. The samples are kept as they
@@ -434,21 +454,7 @@ pub fn restamp(
     sample_rate_hz: f64,
 ) -> Result<Header, FrameError> {
     let mut header = Header::parse(frame, 0)?;
-    let len = header.frame_bytes();
-    let given = frame.len() as u64;
-    if given < len {
-        return Err(FrameError::Truncated {
-            offset: given,
-            needed: len,
-            available: given,
-        });
-    }
-    if given > len {
-        return Err(FrameError::TrailingBytes {
-            offset: len,
-            extra: given - len,
-        });
-    }
+    check_whole(&header, frame.len())?;
     header.first_sample = first_sample;
     header.timestamp_ns = timestamp_ns;
     header.sample_rate_hz = sample_rate_hz;
@@ -511,21 +517,7 @@ pub fn decode_datagram_body(datagram: &[u8]) -> Result<(Header, &[u8]), FrameErr
         return Err(FrameError::BadMagic { offset: 0 });
     }
     let header = Header::parse(datagram, 0)?;
-    let total = header.frame_bytes();
-    let len = datagram.len() as u64;
-    if len < total {
-        return Err(FrameError::Truncated {
-            offset: len,
-            needed: total,
-            available: len,
-        });
-    }
-    if len > total {
-        return Err(FrameError::TrailingBytes {
-            offset: total,
-            extra: len - total,
-        });
-    }
+    check_whole(&header, datagram.len())?;
     let body = checked_frame(datagram, &header, 0)?;
     Ok((header, body))
 }
