@@ -10,7 +10,7 @@ use std::sync::Arc;
 use crate::config::{Config, SourceKind, StreamSpec};
 use crate::counters::SourceCounters;
 use crate::pipeline::worker::ChannelDsp;
-use crate::pipeline::{AlarmMode, Builder, RingSize};
+use crate::pipeline::{AlarmMode, Builder, RingSize, RunError};
 use crate::source::framed::{FrameSink, StreamFraming};
 
 #[derive(Debug, thiserror::Error)]
@@ -31,6 +31,8 @@ pub enum ReplayError {
     Write(#[source] std::io::Error),
     #[error("decoder: {0}")]
     Decoder(String),
+    #[error("cannot assemble the pipeline: {0}")]
+    Pipeline(#[from] RunError),
 }
 
 /// One line of replay output.
@@ -93,16 +95,17 @@ pub fn replay(
         .alarms(AlarmMode::Off)
         .gather(false)
         .blocks_per_turn(1)
-        .assemble()
-        .map_err(|e| ReplayError::Decoder(e.to_string()))?
+        .assemble()?
         .inline();
     if pipeline.channels.is_empty() {
         return Err(ReplayError::NoChannels(spec.name.clone()));
     }
-    let outputs = pipeline
-        .source_outputs(&spec.name)
-        .map_err(|e| ReplayError::Decoder(e.to_string()))?;
-    let state = pipeline.state.sources[source_index(config, &spec.name)].clone();
+    let outputs = pipeline.source_outputs(&spec.name)?;
+    let state = pipeline
+        .state
+        .source(&spec.name)
+        .ok_or_else(|| ReplayError::UnknownSource(spec.name.clone()))?
+        .clone();
     let mut sink = FrameSink::new(outputs, state.clone(), spec.sample_rate_hz);
     let mut framing = StreamFraming::new(&stream, spec.channels).map_err(ReplayError::Decoder)?;
     let read_err = |source| ReplayError::Read {
@@ -131,14 +134,6 @@ pub fn replay(
     }
     out.flush().map_err(ReplayError::Write)?;
     Ok(state)
-}
-
-fn source_index(config: &Config, name: &str) -> usize {
-    config
-        .sources
-        .iter()
-        .position(|s| s.name == name)
-        .unwrap_or_default()
 }
 
 fn emit(dsp: &ChannelDsp, seq: &mut u64, out: &mut dyn Write) -> Result<(), ReplayError> {

@@ -11,6 +11,7 @@ use serde::Serialize;
 use crate::config::SourceKind;
 use crate::counters::SourceCounters;
 use crate::frame::SampleFormat;
+use crate::pipeline::state::AppState;
 use crate::pipeline::Pipeline;
 
 use super::input::bench_config;
@@ -175,17 +176,7 @@ async fn ingest_step(
         let want = sent * channels as u64;
         let deadline = tokio::time::Instant::now() + Duration::from_secs(5);
         loop {
-            let processed: u64 = state
-                .channels
-                .iter()
-                .map(|c| c.counters.samples_processed.load(Ordering::Relaxed))
-                .sum();
-            let dropped: u64 = state
-                .channels
-                .iter()
-                .map(|c| c.counters.dropped_total())
-                .sum();
-            let missing = SourceCounters::get(&state.sources[0].samples_missing);
+            let (processed, dropped, missing) = totals(&state);
             if processed + dropped + missing * channels as u64 >= want
                 || tokio::time::Instant::now() > deadline
             {
@@ -196,17 +187,7 @@ async fn ingest_step(
         Ok(())
     }
     .await;
-    let processed: u64 = state
-        .channels
-        .iter()
-        .map(|c| c.counters.samples_processed.load(Ordering::Relaxed))
-        .sum();
-    let dropped: u64 = state
-        .channels
-        .iter()
-        .map(|c| c.counters.dropped_total())
-        .sum();
-    let missing = SourceCounters::get(&state.sources[0].samples_missing);
+    let (processed, dropped, missing) = totals(&state);
     let rejected: u64 = state.sources[0]
         .rejected()
         .iter()
@@ -334,4 +315,21 @@ pub(crate) fn ingest_phase(
         "ingest: {LOAD_CHANNELS} channels of i16 BWF1 ({INGEST_FRAME_SAMPLES} instants a frame), per-channel rate doubled from 25.6 kHz until a step loses a sample or ends with the DSP more than {MAX_LAG_S} s behind (beyond the samples held back for the next result), then bisected; sender, source and 2 DSP workers share the cores"
     ));
     Ok(())
+}
+
+/// Samples processed and dropped over every channel, and instants missing
+/// at the (only) source.
+fn totals(state: &AppState) -> (u64, u64, u64) {
+    let processed = state
+        .channels
+        .iter()
+        .map(|c| c.counters.samples_processed.load(Ordering::Relaxed))
+        .sum();
+    let dropped = state
+        .channels
+        .iter()
+        .map(|c| c.counters.dropped_total())
+        .sum();
+    let missing = SourceCounters::get(&state.sources[0].samples_missing);
+    (processed, dropped, missing)
 }
