@@ -126,14 +126,38 @@ pub fn replay(
             .bytes
             .fetch_add(n as u64, std::sync::atomic::Ordering::Relaxed);
         framing.feed(&buf[..n], &mut sink);
-        for (dsp, seq) in pipeline.channels.iter_mut().zip(seqs.iter_mut()) {
+        poll_all(&mut pipeline.channels, &mut seqs, out)?;
+    }
+    // End of input: no more speed measurements will come, so a channel
+    // waiting for its machine's speed goes on (README "Orders").
+    for m in &pipeline.state.machines {
+        m.close();
+    }
+    poll_all(&mut pipeline.channels, &mut seqs, out)?;
+    out.flush().map_err(ReplayError::Write)?;
+    Ok(state)
+}
+
+/// Polls every channel until none has work left, writing each published
+/// result. A channel waiting for its machine's speed (measured by another
+/// channel) goes on once that channel has been polled.
+fn poll_all(
+    channels: &mut [ChannelDsp],
+    seqs: &mut [u64],
+    out: &mut dyn Write,
+) -> Result<(), ReplayError> {
+    loop {
+        let mut worked = false;
+        for (dsp, seq) in channels.iter_mut().zip(seqs.iter_mut()) {
             while dsp.poll() {
+                worked = true;
                 emit(dsp, seq, out)?;
             }
         }
+        if !worked {
+            return Ok(());
+        }
     }
-    out.flush().map_err(ReplayError::Write)?;
-    Ok(state)
 }
 
 fn emit(dsp: &ChannelDsp, seq: &mut u64, out: &mut dyn Write) -> Result<(), ReplayError> {
