@@ -45,6 +45,9 @@ pub struct ReplayLine {
     /// Band values in each band's unit, in config order; null when the band
     /// has no value (e.g. an order band while the speed is unknown).
     pub bands: Vec<(String, Option<f64>)>,
+    /// Running speed the order bands used, Hz (null: unknown or no machine).
+    #[serde(default)]
+    pub speed_hz: Option<f64>,
     pub rms: f64,
     pub peak: f64,
     pub crest_factor: f64,
@@ -181,6 +184,7 @@ fn emit(dsp: &ChannelDsp, seq: &mut u64, out: &mut dyn Write) -> Result<(), Repl
             .zip(&snap.bands)
             .map(|(b, v)| (b.name.clone(), v.is_ok().then_some(v.value)))
             .collect(),
+        speed_hz: snap.speed_hz,
         rms: snap.overall.rms,
         peak: snap.overall.peak,
         crest_factor: snap.overall.crest_factor,
