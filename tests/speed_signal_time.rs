@@ -112,8 +112,18 @@ detrend = "none"
 machine = "shaft"
 "#,
         vib("vib-a", 0, "shaft", r#"{ mode = "linear", count = 2 }"#),
-        vib("vib-b", 1, "shaft-peak", r#"{ mode = "linear", count = 2 }"#),
-        vib("vib-c", 2, "shaft", r#"{ mode = "exponential", count = 3 }"#),
+        vib(
+            "vib-b",
+            1,
+            "shaft-peak",
+            r#"{ mode = "linear", count = 2 }"#
+        ),
+        vib(
+            "vib-c",
+            2,
+            "shaft",
+            r#"{ mode = "exponential", count = 3 }"#
+        ),
     );
     match parse_str(&text) {
         Ok(c) => c,
@@ -132,7 +142,11 @@ fn signal(seconds: f64, tach_off: Option<(f64, f64)>) -> Vec<f32> {
         angle += (20.0 + 2.0 * t) / FS;
         let ph = 2.0 * PI * angle;
         let off = tach_off.is_some_and(|(a, b)| t >= a && t < b);
-        let tach = if !off && angle.fract() < 0.1 { 4.0 } else { 0.0 };
+        let tach = if !off && angle.fract() < 0.1 {
+            4.0
+        } else {
+            0.0
+        };
         out.push((1.0 * ph.sin() + 0.3 * (2.0 * ph).sin()) as f32);
         out.push((0.5 * ph.sin() + 0.8 * (2.0 * ph + 0.3).sin()) as f32);
         out.push((0.2 * ph.sin() + 0.6 * (2.0 * ph + 1.1).sin()) as f32);
@@ -221,7 +235,11 @@ async fn live(cfg: &Config, port: u16, bytes: &[u8], ends: &[usize], pace: Pace)
                             *last = s.seq;
                             let r = Result1 {
                                 speed_hz: s.speed_hz,
-                                bands: s.bands.iter().map(|b| b.is_ok().then_some(b.value)).collect(),
+                                bands: s
+                                    .bands
+                                    .iter()
+                                    .map(|b| b.is_ok().then_some(b.value))
+                                    .collect(),
                             };
                             seen.lock()
                                 .expect("lock")
@@ -314,7 +332,11 @@ async fn paced(c: &mut tokio::net::TcpStream, bytes: &[u8], ends: &[usize], upto
 }
 
 fn ends_slice(bytes: &[u8], ends: &[usize], from_frame: usize, to_frame: usize) -> Vec<u8> {
-    let a = if from_frame == 0 { 0 } else { ends[from_frame - 1] };
+    let a = if from_frame == 0 {
+        0
+    } else {
+        ends[from_frame - 1]
+    };
     bytes[a..ends[to_frame - 1]].to_vec()
 }
 
@@ -344,7 +366,10 @@ fn assert_plausible(rep: &Results) {
                 "{name}@{first}: {hz} Hz at t = {t}"
             );
             if name != "tach" {
-                assert!(r.bands[1].is_some() && r.bands[2].is_some(), "{name}@{first}");
+                assert!(
+                    r.bands[1].is_some() && r.bands[2].is_some(),
+                    "{name}@{first}"
+                );
             }
             *with_speed.entry(name.clone()).or_insert(0) += 1;
         }
@@ -387,7 +412,11 @@ async fn real_time_and_a_stall_then_backlog_give_the_replayed_numbers() {
     let rep = replayed(&cfg, &bytes, "ramp-1x.bwf1");
     let l = live(&cfg, port, &bytes, &ends, Pace::Rate(1.0)).await;
     let n = assert_same("1x", &l, &rep);
-    assert!(n * 10 >= rep.len() * 9, "1x: only {n} of {} seen", rep.len());
+    assert!(
+        n * 10 >= rep.len() * 9,
+        "1x: only {n} of {} seen",
+        rep.len()
+    );
     // A stall longer than stale_s of wall-clock time, then the backlog at
     // once: the speed is judged in signal time, so nothing changes.
     let port = free_tcp_port();

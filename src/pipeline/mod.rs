@@ -198,7 +198,10 @@ impl<'a> Builder<'a> {
         // longest ring, plus `stale_s`); a machine whose measuring channel
         // is not built here (replay of another source) gets no
         // measurements, and nobody waits for it.
-        let longest_ring = dsps.iter().map(ChannelDsp::ring_seconds).fold(0.0, f64::max);
+        let longest_ring = dsps
+            .iter()
+            .map(ChannelDsp::ring_seconds)
+            .fold(0.0, f64::max);
         for m in &state.machines {
             m.set_horizon_s(longest_ring + m.stale_s().unwrap_or(0.0) + 1.0);
             if m.is_measured() && !dsps.iter().any(|d| d.measures(m)) {

@@ -236,9 +236,7 @@ impl MachineShared {
     pub fn stale_s(&self) -> Option<f64> {
         match &self.spec.speed {
             SpeedSource::Fixed { .. } => None,
-            SpeedSource::Tach { stale_s, .. } | SpeedSource::Peak { stale_s, .. } => {
-                Some(*stale_s)
-            }
+            SpeedSource::Tach { stale_s, .. } | SpeedSource::Peak { stale_s, .. } => Some(*stale_s),
         }
     }
 

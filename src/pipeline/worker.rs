@@ -489,9 +489,7 @@ impl ChannelDsp {
             return false;
         };
         let need = self.frame.len() - self.filled;
-        if self.speed_late
-            || self.averager.blocks_to_result() != 1
-            || self.reader.occupied() < need
+        if self.speed_late || self.averager.blocks_to_result() != 1 || self.reader.occupied() < need
         {
             return false;
         }
