@@ -398,6 +398,16 @@ async fn tach_and_peak_speeds_are_the_same_live_and_in_replay_whatever_the_worke
         compared += assert_same(&format!("{workers} workers, burst"), &l, &rep);
         let l = live(&cfg, port, &bytes, &ends, Pace::Rate(20.0)).await;
         let n = assert_same(&format!("{workers} workers, 20x"), &l, &rep);
+        // The comparison in numbers (shown with --nocapture).
+        let mut rows: Vec<_> = l.iter().filter(|((c, _), _)| c == "vib-a").collect();
+        rows.sort_by_key(|((_, f), _)| *f);
+        for ((c, f), r) in rows.iter().step_by(4) {
+            let want = &rep[&(c.clone(), *f)];
+            eprintln!(
+                "{workers} workers 20x {c}@{f}: speed live {:?} replay {:?}; 2x band live {:?} replay {:?}",
+                r.speed_hz, want.speed_hz, r.bands[2], want.bands[2]
+            );
+        }
         assert!(n * 2 >= rep.len(), "20x: only {n} of {} seen", rep.len());
         compared += n;
     }
