@@ -470,6 +470,8 @@ pub async fn channel_detail(
                     "seq": s.seq,
                     "averages": s.averages,
                     "first_sample": s.first_sample,
+                    "oldest_first_sample": s.oldest_first_sample,
+                    "end_sample": s.first_sample + spec.block as u64,
                     "timestamp": rfc3339_ns(s.timestamp_ns),
                     "published": rfc3339_ns(s.published_unix_ns),
                 }),
@@ -508,7 +510,14 @@ struct SpectrumBody<'a> {
     enbw_hz: f64,
     averages: u32,
     averaging: &'static str,
+    /// Stream index of the first sample of the newest block.
     first_sample: u64,
+    /// Stream index of the first sample of the oldest block averaged.
+    oldest_first_sample: u64,
+    /// One past the newest block's last sample: the spectrum covers
+    /// `oldest_first_sample .. end_sample`, with no gap inside.
+    end_sample: u64,
+    /// Time of `first_sample` (the newest block's start), from the frames.
     timestamp: Option<String>,
     /// Frequency of `values[0]`.
     f0_hz: f64,
@@ -635,6 +644,8 @@ pub async fn spectrum(
         averages: snap.averages,
         averaging: averaging_str(spec.averaging),
         first_sample: snap.first_sample,
+        oldest_first_sample: snap.oldest_first_sample,
+        end_sample: snap.first_sample + spec.block as u64,
         timestamp: rfc3339_ns(snap.timestamp_ns),
         f0_hz,
         integration_low_cut_hz: integrates.then_some(spec.integration_low_cut_hz),

@@ -32,6 +32,11 @@ pub struct ChannelSnapshot {
     pub published_unix_ns: u64,
     /// Stream index of the first sample of the newest block in the average.
     pub first_sample: u64,
+    /// Stream index of the first sample of the oldest block in the average
+    /// (exponential averaging: the first block since the last reset). The
+    /// spectrum covers `oldest_first_sample .. first_sample + block`, all
+    /// of it one unbroken segment of the stream.
+    pub oldest_first_sample: u64,
     /// Time of that sample, ns since the Unix epoch.
     pub timestamp_ns: u64,
     /// Blocks in this average.

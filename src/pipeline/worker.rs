@@ -84,6 +84,9 @@ pub struct ChannelDsp {
     segment_sums: Vec<f64>,
     /// Stream index of `frame[0]`.
     frame_first_sample: u64,
+    /// Stream index of the first sample of the oldest block in the average
+    /// being accumulated.
+    average_first_sample: u64,
     /// Stream index of the next sample read.
     next_sample: u64,
     /// Latest time anchor: (stream index, ns since epoch).
@@ -202,6 +205,7 @@ impl ChannelDsp {
             engine,
             filled: 0,
             frame_first_sample: 0,
+            average_first_sample: 0,
             next_sample: 0,
             anchor: (0, 0),
             spare: None,
@@ -379,13 +383,32 @@ impl ChannelDsp {
         worked
     }
 
+    /// A discontinuity of any reason (sequence gap, ring overflow, a
+    /// non-finite sample, a reconnect or restart of the source) starts
+    /// everything that spans samples over: the partly filled block, the raw
+    /// and envelope averages (linear, exponential and peak hold alike), the
+    /// tach detector, and the health checks' sample history (see
+    /// `ChannelAlarms::on_gap`). No published number then mixes samples
+    /// from both sides of a gap; the last spectrum published before it
+    /// stays published until the first one after it (README, "Gaps").
     fn on_mark(&mut self, m: Mark) {
         if let Some(reason) = m.gap {
-            // No block may span a gap: start the block over.
             self.filled = 0;
             self.segment_sums.fill(0.0);
+            self.averager.reset();
+            if let Some(e) = &mut self.envelope {
+                e.averager.reset();
+            }
             if let Some(a) = &mut self.alarms {
-                if reason != GapReason::Restart || self.seq > 0 {
+                // The stream's first mark is a restart too: nothing to
+                // forget yet, and not a gap in the health statistics.
+                let seen = self
+                    .shared
+                    .counters
+                    .samples_processed
+                    .load(Ordering::Relaxed)
+                    > 0;
+                if reason != GapReason::Restart || seen {
                     a.on_gap();
                 }
             }
@@ -400,12 +423,6 @@ impl ChannelDsp {
                 if let SpeedRole::Tach(_, t, found) = role {
                     t.reset();
                     found.push((unknown_from, f64::NAN));
-                }
-            }
-            if reason == GapReason::Restart {
-                self.averager.reset();
-                if let Some(e) = &mut self.envelope {
-                    e.averager.reset();
                 }
             }
         }
@@ -551,6 +568,9 @@ impl ChannelDsp {
 
     fn block_ready(&mut self) {
         let mean = self.frame_mean();
+        if self.averager.is_fresh() {
+            self.average_first_sample = self.frame_first_sample;
+        }
         let (averager, norm) = (&mut self.averager, self.engine.norm());
         let mut ready = false;
         self.engine.transform(&self.frame, Some(mean), |x| {
@@ -624,6 +644,7 @@ impl ChannelDsp {
         snap.seq = self.seq;
         snap.published_unix_ns = unix_now_ns();
         snap.first_sample = self.frame_first_sample;
+        snap.oldest_first_sample = self.average_first_sample;
         snap.timestamp_ns = self.timestamp_of(self.frame_first_sample);
         snap.averages = self.averager.result_averages();
         snap.overall = stats::overall_about(&self.frame, mean);

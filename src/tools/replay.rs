@@ -40,7 +40,11 @@ pub enum ReplayError {
 pub struct ReplayLine {
     pub channel: String,
     pub seq: u64,
+    /// Stream index of the newest block's first sample.
     pub first_sample: u64,
+    /// Stream index of the oldest averaged block's first sample.
+    #[serde(default)]
+    pub oldest_first_sample: u64,
     pub averages: u32,
     /// Band values in each band's unit, in config order; null when the band
     /// has no value (e.g. an order band while the speed is unknown).
@@ -176,6 +180,7 @@ fn emit(dsp: &ChannelDsp, seq: &mut u64, out: &mut dyn Write) -> Result<(), Repl
         channel: shared.spec.name.clone(),
         seq: snap.seq,
         first_sample: snap.first_sample,
+        oldest_first_sample: snap.oldest_first_sample,
         averages: snap.averages,
         bands: shared
             .spec
