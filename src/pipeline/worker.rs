@@ -502,14 +502,14 @@ impl ChannelDsp {
     /// the ring; then the result is evaluated with what is known, counted
     /// in the machine's `late_results` and logged.
     fn must_wait_for_speed(&mut self) -> bool {
-        let Some(m) = self.machine.clone() else {
-            return false;
-        };
         let need = self.frame.len() - self.filled;
         if self.speed_late || self.averager.blocks_to_result() != 1 || self.reader.occupied() < need
         {
             return false;
         }
+        let Some(m) = self.machine.clone() else {
+            return false;
+        };
         let end = self.signal_time(self.next_sample + need as u64);
         if m.known_through_or_wake(&end, self.machine_same_source) {
             self.speed_wait = None;
