@@ -38,6 +38,9 @@ pub enum BandStatus {
     AboveNyquist,
     /// At the current speed the band is narrower than one line.
     NoLine,
+    /// The band's lines hold a value past the f32 range (an absurd input,
+    /// e.g. a tone of 1e20 units, whose power overflows): no valid value.
+    OutOfRange,
 }
 
 impl BandStatus {
@@ -47,6 +50,7 @@ impl BandStatus {
             BandStatus::NoSpeed => "no_speed",
             BandStatus::AboveNyquist => "above_nyquist",
             BandStatus::NoLine => "no_line",
+            BandStatus::OutOfRange => "out_of_range",
         }
     }
 }
@@ -245,6 +249,17 @@ impl BandPlan {
             Measure::Rms => (sum * self.inv_noise_bw).max(0.0).sqrt(),
             Measure::Peak => (2.0 * best.1.max(0.0) as f64).sqrt(),
         };
+        // An overflowed line (inf, or NaN from inf − inf in the FFT) must
+        // not pass as a value: `max(0.0)` would turn NaN into 0.
+        if !(sum.is_finite() && best.1.is_finite() && value.is_finite()) {
+            return BandValue {
+                value: f64::NAN,
+                peak_hz: f64::NAN,
+                lo_hz,
+                hi_hz,
+                status: BandStatus::OutOfRange,
+            };
+        }
         BandValue {
             value,
             peak_hz: best.0 as f64 * df,

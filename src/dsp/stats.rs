@@ -62,8 +62,17 @@ pub fn overall_about(x: &[f32], m: f64) -> Overall {
     // for that rounding: Σ(x−m)² = Σd² − n·d̄², d = x − m₃₂.
     let mo = moments(x, m as f32);
     let n = x.len() as f64;
-    let d_mean = mo.sum / n;
-    let rms = (mo.sum2 / n - d_mean * d_mean).max(0.0).sqrt();
+    let rms = if mo.sum.is_finite() && mo.sum2.is_finite() {
+        let d_mean = mo.sum / n;
+        (mo.sum2 / n - d_mean * d_mean).max(0.0).sqrt()
+    } else {
+        // The f32 lanes overflowed (|x − m| beyond ~1.8e19 squares past
+        // f32::MAX): the same sum in f64, which holds the square of any
+        // f32. Rare by nature, so the slower pass costs nothing in steady
+        // state.
+        let s2: f64 = x.iter().map(|&v| (f64::from(v) - m).powi(2)).sum();
+        (s2 / n).sqrt()
+    };
     let (min, max) = (f64::from(mo.min), f64::from(mo.max));
     let peak = (max - m).abs().max((min - m).abs());
     Overall {
@@ -91,6 +100,34 @@ mod tests {
         assert!((o.rms - 3.0 / 2f64.sqrt()).abs() < 1e-4);
         assert!((o.crest_factor - 2f64.sqrt()).abs() < 1e-3);
         assert!((o.peak_to_peak - 6.0).abs() < 1e-3);
+    }
+
+    #[test]
+    fn the_whole_f32_range_is_measured() {
+        // A square wave of ±3e38 (near f32::MAX): RMS = peak = 3e38, crest
+        // factor 1 (common practice: a square wave's crest factor is 1).
+        // The f32 lanes overflow on d²; the result must not.
+        let x: Vec<f32> = (0..1024)
+            .map(|i| if i % 2 == 0 { 3e38 } else { -3e38 })
+            .collect();
+        let o = overall(&x);
+        assert!((o.rms / 3e38 - 1.0).abs() < 1e-6, "rms {}", o.rms);
+        assert!((o.peak / 3e38 - 1.0).abs() < 1e-6, "peak {}", o.peak);
+        assert!(
+            (o.crest_factor - 1.0).abs() < 1e-6,
+            "crest {}",
+            o.crest_factor
+        );
+        // A 1e20 tone (its square, 1e40, is past f32::MAX).
+        let y: Vec<f32> = (0..1000)
+            .map(|i| (1e20 * (2.0 * std::f64::consts::PI * 10.0 * i as f64 / 1000.0).sin()) as f32)
+            .collect();
+        let o = overall(&y);
+        assert!(
+            (o.rms / (1e20 / 2f64.sqrt()) - 1.0).abs() < 1e-5,
+            "rms {}",
+            o.rms
+        );
     }
 
     #[test]
