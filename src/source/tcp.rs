@@ -100,7 +100,7 @@ pub async fn run_connect(ctx: SourceContext) {
         tracing::error!(source = %spec.name, kind = spec.kind.as_str(), "not a tcp-connect source");
         return;
     };
-    let sink = FrameSink::new(outputs, counters, spec.sample_rate_hz);
+    let sink = FrameSink::new(outputs, counters, spec.sample_rate_hz).with_sequence(&spec.sequence);
     connect(&address, &stream, backoff, sink, shutdown).await;
 }
 
@@ -186,7 +186,7 @@ pub async fn run_listen(ctx: SourceContext) {
         tracing::error!(source = %spec.name, kind = spec.kind.as_str(), "not a tcp-listen source");
         return;
     };
-    let sink = FrameSink::new(outputs, counters, spec.sample_rate_hz);
+    let sink = FrameSink::new(outputs, counters, spec.sample_rate_hz).with_sequence(&spec.sequence);
     accept(listen, &stream, on_second_connection, sink, shutdown).await;
 }
 
