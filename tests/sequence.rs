@@ -10,7 +10,7 @@ use std::time::{Duration, Instant};
 mod common;
 
 use bandwatch::config::fixture::{Channel, Fixture};
-use bandwatch::counters::{ChannelCounters, GapReason, SourceCounters};
+use bandwatch::counters::{ChannelCounters, GapReason, RestartReason, SourceCounters};
 use bandwatch::frame::bwf1::{encode, Header};
 use bandwatch::frame::{SampleFormat, SampleSlice};
 use bandwatch::tools::send::{send, Faults, SendOptions, SendReport, WireFormat};
@@ -180,6 +180,42 @@ async fn udp_daq_restart_is_taken_again_and_counted_as_a_restart() {
         restarts_before + 1,
         "the restart breaks the blocks and averages once"
     );
+    assert_eq!(s.restarts(RestartReason::BackwardJump), 1);
+    assert_eq!(ch.dropped(GapReason::Restart), 0, "nothing refused");
+    p.stop().await;
+}
+
+/// A box that restarts after less than the reorder window (1 s by
+/// default): its first frames look late; the third in a row that follows
+/// on from the one before starts the new sequence, the two before it are
+/// counted per channel as dropped for the restart.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn udp_daq_restart_within_the_reorder_window_is_taken_from_its_third_frame() {
+    let (port, p) = udp_daemon("").await;
+    let s = p.state.sources[0].clone();
+    let sock = std::net::UdpSocket::bind("127.0.0.1:0").expect("bind");
+    let mut sent = 0;
+    for run in [20, 30] {
+        for i in 0..run {
+            sock.send_to(&frame(i * S), ("127.0.0.1", port)).expect("send");
+            sent += 1;
+            std::thread::sleep(Duration::from_micros(300));
+        }
+    }
+    wait_for("every datagram", 10, || seen(&s) >= sent).await;
+    assert_eq!(get(&s.frames), 20 + 28);
+    assert_eq!(get(&s.frames_late), 2);
+    assert_eq!(get(&s.samples_missing), 0);
+    assert_eq!(s.restarts(RestartReason::BackwardJump), 1);
+    for ch in &p.state.channels {
+        let c = &ch.counters;
+        assert_eq!(c.dropped(GapReason::Restart), 2 * S);
+        assert_eq!(
+            get(&c.samples_in) + c.dropped_total(),
+            50 * S,
+            "instants sent = received + dropped by reason"
+        );
+    }
     p.stop().await;
 }
 
@@ -217,6 +253,8 @@ async fn udp_one_datagram_far_ahead_neither_counts_missing_nor_locks_out() {
     assert_eq!(get(&s.frames), 101);
     let ch = &p.state.channels[0].counters;
     assert_eq!(get(&ch.samples_in), 101 * S);
+    assert_eq!(s.restarts(RestartReason::ForwardJump), 1);
+    assert_eq!(s.restarts(RestartReason::BackwardJump), 1);
     p.stop().await;
 }
 
@@ -277,6 +315,11 @@ async fn tcp_index_wrap_keeps_every_counter_monotonic() {
     }
     assert_eq!(get(&chans[0].samples_in) - in_before, 200 * S);
     assert_eq!(get(&s.samples_missing), 0);
+    assert_eq!(s.restarts(RestartReason::IndexWrap), 1);
+    for c in &chans {
+        assert_eq!(c.dropped(GapReason::Restart), S, "the wrapping frame");
+        assert_eq!(get(&c.samples_in) + c.dropped_total(), 301 * S);
+    }
     drop(c);
     p.stop().await;
 }

@@ -891,4 +891,59 @@ mod tests {
             })
         );
     }
+
+    /// A header that disagrees with the config is refused from its 36
+    /// bytes alone (no body pushed), and the next frame is found at once.
+    #[test]
+    fn a_header_that_disagrees_with_the_config_is_refused_before_its_body() {
+        let expect = HeaderExpect {
+            channels: 4,
+            sample_rate_hz: 25_600.0,
+        };
+        let good = frame_i16(7, &[1; 8], 4);
+        for (bad, want) in [
+            (
+                Header::new(SampleFormat::F32, 63, 65_536, 0, 0, 25_600.0),
+                FrameError::ChannelCountMismatch {
+                    offset: 6,
+                    count: 63,
+                    expected: 4,
+                },
+            ),
+            (
+                Header::new(SampleFormat::F32, 4, 65_536, 0, 0, 48_000.0),
+                FrameError::SampleRateMismatch {
+                    offset: 28,
+                    rate: 48_000.0,
+                    expected: 25_600.0,
+                },
+            ),
+        ] {
+            let mut d = StreamDecoder::new();
+            d.set_expect(Some(expect));
+            let mut bytes = Vec::new();
+            bad.write_to(&mut bytes);
+            d.push(&bytes);
+            assert_eq!(d.next_frame(), Err(want.clone()));
+            d.push(&good);
+            assert_eq!(d.next_frame().unwrap().unwrap().header.first_sample, 7);
+            assert_eq!(d.stats().resyncs, 1);
+            assert_eq!(d.stats().bytes_skipped, 36);
+            assert_eq!(d.stats().rejected(want.reason()), 1);
+            // Without the config the same header waits for its body.
+            let mut d = StreamDecoder::new();
+            d.push(&bytes);
+            d.push(&good);
+            assert_eq!(d.next_frame(), Ok(None));
+        }
+        // A datagram decoder given the config refuses the frame whole.
+        let two = frame_i16(0, &[1; 4], 2);
+        let mut d = DatagramDecoder::expecting(expect);
+        assert!(matches!(
+            d.decode_body(&two),
+            Err(FrameError::ChannelCountMismatch { count: 2, .. })
+        ));
+        assert_eq!(d.stats().bytes_skipped, two.len() as u64);
+        assert!(d.decode_body(&good).is_ok());
+    }
 }
