@@ -197,7 +197,8 @@ async fn udp_daq_restart_within_the_reorder_window_is_taken_from_its_third_frame
     let mut sent = 0;
     for run in [20, 30] {
         for i in 0..run {
-            sock.send_to(&frame(i * S), ("127.0.0.1", port)).expect("send");
+            sock.send_to(&frame(i * S), ("127.0.0.1", port))
+                .expect("send");
             sent += 1;
             std::thread::sleep(Duration::from_micros(300));
         }
