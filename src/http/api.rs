@@ -308,6 +308,7 @@ fn summary<'a>(
                 .machine(m)
                 .and_then(|x| x.speed_hz())
                 .map(|hz| hz * 60.0),
+            speed_late_results: app.machine(m).map_or(0, |x| x.late_results()),
         }),
         envelope_hz: spec.envelope.map(|(a, b)| [a, b]),
         expected_update_interval_seconds: expected_interval_seconds(spec),
@@ -338,6 +339,10 @@ struct MachineInfo<'a> {
     /// Null while the speed is unknown or stale.
     speed_hz: Option<f64>,
     speed_rpm: Option<f64>,
+    /// Results (of any channel following this machine) whose order bands
+    /// were evaluated before the speed was measured through their signal
+    /// time (README "Orders": the wait ran out).
+    speed_late_results: u64,
 }
 
 #[derive(Serialize)]

@@ -49,6 +49,9 @@ pub struct ReplayLine {
     /// Band values in each band's unit, in config order; null when the band
     /// has no value (e.g. an order band while the speed is unknown).
     pub bands: Vec<(String, Option<f64>)>,
+    /// Running speed the order bands used, Hz (null: unknown or no machine).
+    #[serde(default)]
+    pub speed_hz: Option<f64>,
     pub rms: f64,
     pub peak: f64,
     pub crest_factor: f64,
@@ -131,14 +134,38 @@ pub fn replay(
             .bytes
             .fetch_add(n as u64, std::sync::atomic::Ordering::Relaxed);
         framing.feed(&buf[..n], &mut sink);
-        for (dsp, seq) in pipeline.channels.iter_mut().zip(seqs.iter_mut()) {
+        poll_all(&mut pipeline.channels, &mut seqs, out)?;
+    }
+    // End of input: no more speed measurements will come, so a channel
+    // waiting for its machine's speed goes on (README "Orders").
+    for m in &pipeline.state.machines {
+        m.close();
+    }
+    poll_all(&mut pipeline.channels, &mut seqs, out)?;
+    out.flush().map_err(ReplayError::Write)?;
+    Ok(state)
+}
+
+/// Polls every channel until none has work left, writing each published
+/// result. A channel waiting for its machine's speed (measured by another
+/// channel) goes on once that channel has been polled.
+fn poll_all(
+    channels: &mut [ChannelDsp],
+    seqs: &mut [u64],
+    out: &mut dyn Write,
+) -> Result<(), ReplayError> {
+    loop {
+        let mut worked = false;
+        for (dsp, seq) in channels.iter_mut().zip(seqs.iter_mut()) {
             while dsp.poll() {
+                worked = true;
                 emit(dsp, seq, out)?;
             }
         }
+        if !worked {
+            return Ok(());
+        }
     }
-    out.flush().map_err(ReplayError::Write)?;
-    Ok(state)
 }
 
 fn emit(dsp: &ChannelDsp, seq: &mut u64, out: &mut dyn Write) -> Result<(), ReplayError> {
@@ -163,6 +190,7 @@ fn emit(dsp: &ChannelDsp, seq: &mut u64, out: &mut dyn Write) -> Result<(), Repl
             .zip(&snap.bands)
             .map(|(b, v)| (b.name.clone(), v.is_ok().then_some(v.value)))
             .collect(),
+        speed_hz: snap.speed_hz,
         rms: snap.overall.rms,
         peak: snap.overall.peak,
         crest_factor: snap.overall.crest_factor,
