@@ -42,6 +42,38 @@ impl GapReason {
     }
 }
 
+/// Why a source's sequence of frame indices started over without a new
+/// connection (README, "Sequence rules").
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum RestartReason {
+    /// The index went back by more than the reorder window, or a run of
+    /// consecutive frames behind it began a new sequence (a DAQ box that
+    /// restarted and counts from 0 again, a narrower counter that wrapped).
+    BackwardJump,
+    /// The index went forward by more than is plausible (`max_gap_s` of
+    /// samples plus the time since the last frame taken).
+    ForwardJump,
+    /// The frame's samples would run past the end of the u64 index space:
+    /// it is dropped and the sequence starts over at the next frame.
+    IndexWrap,
+}
+
+impl RestartReason {
+    pub const ALL: [RestartReason; 3] = [
+        RestartReason::BackwardJump,
+        RestartReason::ForwardJump,
+        RestartReason::IndexWrap,
+    ];
+
+    pub fn as_str(self) -> &'static str {
+        match self {
+            RestartReason::BackwardJump => "backward_jump",
+            RestartReason::ForwardJump => "forward_jump",
+            RestartReason::IndexWrap => "index_wrap",
+        }
+    }
+}
+
 #[derive(Debug, Default)]
 pub struct ChannelCounters {
     /// Samples accepted into the ring.
@@ -100,6 +132,8 @@ pub struct SourceCounters {
     pub samples_missing: AtomicU64,
     /// Frames dropped because they were duplicates or arrived late.
     pub frames_late: AtomicU64,
+    /// Times the sequence of frame indices started over, by reason.
+    restarts: [AtomicU64; 3],
     /// Time of the last good frame, ns since the Unix epoch (0: never).
     pub last_frame_unix_ns: AtomicU64,
     /// Frames or connections rejected, by reason (a metric label). Written
@@ -121,6 +155,7 @@ impl SourceCounters {
             bytes_skipped: AtomicU64::new(0),
             samples_missing: AtomicU64::new(0),
             frames_late: AtomicU64::new(0),
+            restarts: Default::default(),
             last_frame_unix_ns: AtomicU64::new(0),
             rejected: Mutex::new(BTreeMap::new()),
         }
@@ -128,6 +163,15 @@ impl SourceCounters {
 
     pub fn is_connected(&self) -> bool {
         self.connected.load(Ordering::Relaxed)
+    }
+
+    pub fn add_restart(&self, reason: RestartReason) {
+        self.restarts[reason as usize].fetch_add(1, Ordering::Relaxed);
+    }
+
+    /// Times the sequence started over for `reason`.
+    pub fn restarts(&self, reason: RestartReason) -> u64 {
+        self.restarts[reason as usize].load(Ordering::Relaxed)
     }
 
     pub fn add_rejected(&self, reason: &'static str, n: u64) {

@@ -90,6 +90,13 @@ pub struct RingWriter {
 }
 
 impl RingWriter {
+    /// Counts `n` samples of this channel lost for `reason` before they
+    /// reached the ring (the source saw them missing or refused them); the
+    /// ring's own drops (overflow, non-finite) it counts itself.
+    pub fn add_dropped(&self, reason: GapReason, n: u64) {
+        self.counters.add_dropped(reason, n);
+    }
+
     /// Records that the stream breaks before the next sample written.
     pub fn mark_discontinuity(&mut self, reason: GapReason) {
         if self.pending.is_none() {

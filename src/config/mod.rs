@@ -45,7 +45,8 @@ pub use raw::{
 pub use spec::HttpLimits;
 pub use spec::{
     AlarmTarget, Backoff, BandEdges, BandSpec, ChannelAlarm, ChannelSpec, Config, Framing,
-    MachineSpec, SourceKind, SourceSpec, SpeedSource, StreamSpec, SIM_CHANNELS, SIM_SAMPLE_RATE_HZ,
+    MachineSpec, SequenceSpec, SourceKind, SourceSpec, SpeedSource, StreamSpec, SIM_CHANNELS,
+    SIM_SAMPLE_RATE_HZ,
 };
 
 #[derive(Debug, thiserror::Error)]

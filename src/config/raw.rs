@@ -216,6 +216,14 @@ pub enum RawSource {
         /// Largest BWF1 frame accepted, bytes.
         #[serde(default = "default_max_frame")]
         max_frame_bytes: usize,
+        /// A frame at most this far behind the stream (seconds of samples)
+        /// is late; further behind, the stream restarted.
+        #[serde(default = "default_reorder_window")]
+        reorder_window_s: f64,
+        /// A forward jump of at most this (seconds of samples, plus the
+        /// time since the last frame) is a gap; further, a restart.
+        #[serde(default = "default_max_gap")]
+        max_gap_s: f64,
         /// First wait before reconnecting, doubled after each failure.
         #[serde(default = "default_backoff_min")]
         reconnect_min_ms: u64,
@@ -244,6 +252,14 @@ pub enum RawSource {
         /// Largest BWF1 frame accepted, bytes.
         #[serde(default = "default_max_frame")]
         max_frame_bytes: usize,
+        /// A frame at most this far behind the stream (seconds of samples)
+        /// is late; further behind, the stream restarted.
+        #[serde(default = "default_reorder_window")]
+        reorder_window_s: f64,
+        /// A forward jump of at most this (seconds of samples, plus the
+        /// time since the last frame) is a gap; further, a restart.
+        #[serde(default = "default_max_gap")]
+        max_gap_s: f64,
         /// What a second connection does while one is active.
         #[serde(default)]
         on_second_connection: SecondConnection,
@@ -264,6 +280,14 @@ pub enum RawSource {
         /// Largest datagram accepted; bigger ones are counted as truncated.
         #[serde(default = "default_max_datagram")]
         max_datagram_bytes: usize,
+        /// A frame at most this far behind the stream (seconds of samples)
+        /// is late; further behind, the stream restarted.
+        #[serde(default = "default_reorder_window")]
+        reorder_window_s: f64,
+        /// A forward jump of at most this (seconds of samples, plus the
+        /// time since the last frame) is a gap; further, a restart.
+        #[serde(default = "default_max_gap")]
+        max_gap_s: f64,
     },
     /// A serial line (RS-232/485, USB adapter).
     Serial {
@@ -291,6 +315,14 @@ pub enum RawSource {
         /// Largest BWF1 frame accepted, bytes.
         #[serde(default = "default_max_frame")]
         max_frame_bytes: usize,
+        /// A frame at most this far behind the stream (seconds of samples)
+        /// is late; further behind, the stream restarted.
+        #[serde(default = "default_reorder_window")]
+        reorder_window_s: f64,
+        /// A forward jump of at most this (seconds of samples, plus the
+        /// time since the last frame) is a gap; further, a restart.
+        #[serde(default = "default_max_gap")]
+        max_gap_s: f64,
         /// Wait between attempts to reopen a vanished port.
         #[serde(default = "default_backoff_min")]
         reopen_ms: u64,
@@ -313,6 +345,12 @@ fn default_backoff_max() -> u64 {
 }
 fn default_max_datagram() -> usize {
     65_507
+}
+fn default_reorder_window() -> f64 {
+    crate::config::spec::SequenceSpec::DEFAULT.reorder_window_s
+}
+fn default_max_gap() -> f64 {
+    crate::config::spec::SequenceSpec::DEFAULT.max_gap_s
 }
 fn default_data_bits() -> u8 {
     8

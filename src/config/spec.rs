@@ -113,6 +113,33 @@ pub struct SourceSpec {
     /// Channels in one frame of this source.
     pub channels: usize,
     pub kind: SourceKind,
+    /// How frame indices are followed (framed sources; the simulator's
+    /// indices are its own and never jump).
+    pub sequence: SequenceSpec,
+}
+
+/// The sequence rules of a framed source (README, "Sequence rules").
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct SequenceSpec {
+    /// A frame at most this far behind the stream, seconds of samples, is
+    /// late or a duplicate; further behind, the stream restarted.
+    pub reorder_window_s: f64,
+    /// A forward jump of at most this, seconds of samples, plus the wall
+    /// time since the last frame taken, is a gap; further, a restart.
+    pub max_gap_s: f64,
+}
+
+impl SequenceSpec {
+    pub const DEFAULT: SequenceSpec = SequenceSpec {
+        reorder_window_s: 1.0,
+        max_gap_s: 10.0,
+    };
+}
+
+impl Default for SequenceSpec {
+    fn default() -> Self {
+        SequenceSpec::DEFAULT
+    }
 }
 
 #[derive(Debug, Clone)]

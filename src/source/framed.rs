@@ -2,25 +2,40 @@
 //! against the source's config, follows its sequence, and counts and logs
 //! everything that is not passed on.
 //!
-//! Sequence rule (BWF1): the next frame's `first_sample` should be the
-//! previous one's plus S. Larger: the instants in between are lost (counted
-//! in `samples_missing`, and the ring marks a gap so no block spans it).
-//! Smaller: a duplicate or a late frame, dropped and counted in
-//! `frames_late`. A new connection restarts the sequence.
+//! Sequence rules (README, "Sequence rules"; decided in
+//! [`crate::source::sequence`]): the next frame's `first_sample` should be
+//! the previous one's plus S. Ahead within a plausible bound: the instants
+//! in between are lost (counted in the source's `samples_missing` and in
+//! each channel's `samples_dropped{reason="sequence_gap"}`, and the ring
+//! marks a gap so no block spans it). Behind within the reorder window: a
+//! duplicate or a late frame, dropped and counted in `frames_late`. Any
+//! other jump, and a frame that would run past the end of the index space,
+//! is a restart: counted by reason, marked in every ring (the block
+//! assembler and the averages start over), never a lockout. A new
+//! connection restarts the sequence too.
+//!
+//! Counting, so that for each channel the instants the sender emitted
+//! equal `samples_in` plus its `samples_dropped` over every reason (each
+//! lost instant counted once): a gap's instants are `sequence_gap`; a
+//! frame refused by the sequence rules for a restart (a wrap, or frames of
+//! a restarted sequence first taken for late ones) is `restart`; a late
+//! frame inside a gap is not counted again (its instants already are), nor
+//! is a duplicate (they were taken).
 
 use std::sync::atomic::Ordering;
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 use crate::clock::unix_now_ns;
-use crate::config::{Framing, StreamSpec};
-use crate::counters::GapReason;
+use crate::config::{Framing, SequenceSpec, StreamSpec};
 use crate::counters::SourceCounters;
-use crate::frame::bwf1::{FrameError, Header, StreamDecoder};
+use crate::counters::{GapReason, RestartReason};
+use crate::frame::bwf1::{FrameError, Header, HeaderExpect, StreamDecoder};
 use crate::frame::lines::{LineBatch, LineDecoder, LineEvent};
 use crate::frame::raw::RawDecoder;
 use crate::frame::wire::{WireF32, WireF64, WireI16, WireI24, WireI32};
 use crate::frame::{SampleFormat, Samples};
+use crate::source::sequence::{Sequencer, Verdict};
 use crate::source::{note_frame, SourceOutputs};
 
 /// Error logs of one kind are written at most this often per source.
@@ -62,27 +77,89 @@ pub struct FrameSink {
     pub state: Arc<SourceCounters>,
     channels: usize,
     sample_rate_hz: f64,
-    next_sample: Option<u64>,
+    seq: Sequencer,
     pub logs: LogLimiter,
 }
 
 impl FrameSink {
+    /// A sink with the default sequence rules.
     pub fn new(out: SourceOutputs, state: Arc<SourceCounters>, sample_rate_hz: f64) -> FrameSink {
         FrameSink {
             channels: out.width(),
             out,
             state,
             sample_rate_hz,
-            next_sample: None,
+            seq: Sequencer::new(&SequenceSpec::DEFAULT, sample_rate_hz),
             logs: LogLimiter::default(),
+        }
+    }
+
+    /// The same sink following the configured source's sequence rules.
+    #[must_use]
+    pub fn with_sequence(mut self, spec: &SequenceSpec) -> FrameSink {
+        self.seq = Sequencer::new(spec, self.sample_rate_hz);
+        self
+    }
+
+    /// What every BWF1 header of this source must announce (the config's
+    /// channel count and rate), for the decoders to check before a body is
+    /// awaited.
+    pub fn expect(&self) -> HeaderExpect {
+        HeaderExpect {
+            channels: u16::try_from(self.channels).unwrap_or(u16::MAX),
+            sample_rate_hz: self.sample_rate_hz,
         }
     }
 
     /// A new connection or a reopened port: the sequence starts over and
     /// the rings mark a restart.
     pub fn restart(&mut self) {
-        self.next_sample = None;
+        self.seq.reset();
         self.out.mark_discontinuity(GapReason::Restart);
+    }
+
+    /// Applies the sequence rules to a frame of `instants` instants from
+    /// `first`, counting what they decide. True: pass the frame on.
+    fn sequence(&mut self, first: u64, instants: u64) -> bool {
+        let expected = self.seq.next();
+        match self.seq.admit(first, instants, Instant::now()) {
+            Verdict::Take { missing: 0 } => true,
+            Verdict::Take { missing } => {
+                self.state
+                    .samples_missing
+                    .fetch_add(missing, Ordering::Relaxed);
+                self.out.add_dropped(GapReason::SequenceGap, missing);
+                if let Some(suppressed) = self.logs.allow("gap") {
+                    tracing::warn!(source = %self.state.name, expected, got = first, missing, suppressed, "gap in the sample sequence");
+                }
+                true
+            }
+            Verdict::Late => {
+                self.state.frames_late.fetch_add(1, Ordering::Relaxed);
+                if let Some(suppressed) = self.logs.allow("late") {
+                    tracing::debug!(source = %self.state.name, first_sample = first, expected, suppressed, "duplicate or late frame dropped");
+                }
+                false
+            }
+            Verdict::Restart { reason, refused } => {
+                self.state.add_restart(reason);
+                self.out.add_dropped(GapReason::Restart, refused);
+                self.out.mark_discontinuity(GapReason::Restart);
+                if let Some(suppressed) = self.logs.allow(reason.as_str()) {
+                    tracing::warn!(source = %self.state.name, reason = reason.as_str(), expected, got = first, refused, suppressed, "the sample sequence starts over");
+                }
+                true
+            }
+            Verdict::Wrap => {
+                self.state.add_restart(RestartReason::IndexWrap);
+                self.out.add_dropped(GapReason::Restart, instants);
+                self.out.mark_discontinuity(GapReason::Restart);
+                if let Some(suppressed) = self.logs.allow("index_wrap") {
+                    tracing::warn!(source = %self.state.name, first_sample = first, instants, suppressed, "frame runs past the end of the index space: dropped, the sequence starts over");
+                }
+                false
+            }
+        }
     }
 
     /// Shows the link as up (a peer connected, the port open, datagrams
@@ -107,7 +184,9 @@ impl FrameSink {
         self.reject(e.reason().as_str(), e);
     }
 
-    /// Passes one BWF1 frame on, if it fits this source. `body` is its
+    /// Passes one BWF1 frame on, if it fits this source (the decoders
+    /// already refuse a header that disagrees with [`FrameSink::expect`];
+    /// the check here keeps a frame from elsewhere out too). `body` is its
     /// sample section as wire bytes, as the decoders return it: it is
     /// scaled into the rings straight from them.
     pub fn bwf1(&mut self, h: &Header, body: &[u8]) {
@@ -127,26 +206,9 @@ impl FrameSink {
             self.reject("sample_rate_mismatch", &msg);
             return;
         }
-        let s = h.samples_per_channel as u64;
-        if let Some(next) = self.next_sample {
-            if h.first_sample < next {
-                self.state.frames_late.fetch_add(1, Ordering::Relaxed);
-                if let Some(suppressed) = self.logs.allow("late") {
-                    tracing::debug!(source = %self.state.name, first_sample = h.first_sample, expected = next, suppressed, "duplicate or late frame dropped");
-                }
-                return;
-            }
-            if h.first_sample > next {
-                let missing = h.first_sample - next;
-                self.state
-                    .samples_missing
-                    .fetch_add(missing, Ordering::Relaxed);
-                if let Some(suppressed) = self.logs.allow("gap") {
-                    tracing::warn!(source = %self.state.name, expected = next, got = h.first_sample, missing, suppressed, "gap in the sample sequence");
-                }
-            }
+        if !self.sequence(h.first_sample, u64::from(h.samples_per_channel)) {
+            return;
         }
-        self.next_sample = Some(h.first_sample + s);
         let ts = if h.timestamp_ns == 0 {
             unix_now_ns()
         } else {
@@ -167,15 +229,9 @@ impl FrameSink {
     /// Passes a run of instants from `lines` or `raw` framing on. These
     /// framings carry no time: the run is stamped on arrival.
     pub fn instants(&mut self, first_sample: u64, samples: &Samples) {
-        if samples.is_empty() {
+        let instants = (samples.len() / self.channels.max(1)) as u64;
+        if instants == 0 || !self.sequence(first_sample, instants) {
             return;
-        }
-        if let Some(next) = self.next_sample {
-            if first_sample > next {
-                self.state
-                    .samples_missing
-                    .fetch_add(first_sample - next, Ordering::Relaxed);
-            }
         }
         let ts = unix_now_ns();
         match samples {
@@ -184,7 +240,6 @@ impl FrameSink {
             Samples::F32(v) => self.out.write_interleaved(first_sample, ts, v),
             Samples::F64(v) => self.out.write_interleaved(first_sample, ts, v),
         }
-        self.next_sample = Some(first_sample + (samples.len() / self.channels.max(1)) as u64);
         note_frame(&self.state);
     }
 }
@@ -230,6 +285,9 @@ impl StreamFraming {
     pub fn feed(&mut self, bytes: &[u8], sink: &mut FrameSink) {
         match self {
             StreamFraming::Bwf1 { decoder } => {
+                // Headers are checked against the config of the source this
+                // framing feeds, before any body is awaited.
+                decoder.set_expect(Some(sink.expect()));
                 let before = decoder.stats().clone();
                 decoder.push(bytes);
                 loop {

@@ -14,8 +14,10 @@
 //! - `serial`: serial lines via tokio-serial
 //! - `framed`: frame checks, sequence tracking and counting for all the
 //!   readers
+//! - `sequence`: the sequence rules (gap, late, restart, wrap)
 
 pub mod framed;
+pub mod sequence;
 pub mod serial;
 pub mod sim;
 pub mod tcp;
@@ -131,6 +133,8 @@ impl SourceOutputs {
             let k = TILE_CHANNELS.min(width - c0);
             for t0 in (0..instants).step_by(TILE_INSTANTS) {
                 let n = TILE_INSTANTS.min(instants - t0);
+                // No overflow: the sequence rules pass on no frame whose
+                // instants run past u64::MAX.
                 let first = first_sample + t0 as u64;
                 // The tile's rows (n instants x k samples) are read from
                 // memory by its first channel and from L1 by the others.
@@ -147,6 +151,18 @@ impl SourceOutputs {
                     }
                 }
             }
+        }
+    }
+
+    /// Counts `n` instants of every channel of this source as lost for
+    /// `reason` before they reached the rings (a sequence gap, frames
+    /// refused at a restart).
+    pub fn add_dropped(&self, reason: GapReason, n: u64) {
+        if n == 0 {
+            return;
+        }
+        for input in self.inputs.iter().flatten() {
+            input.writer.add_dropped(reason, n);
         }
     }
 

@@ -37,7 +37,8 @@ pub async fn run(ctx: SourceContext) {
         tracing::error!(source = %spec.name, kind = spec.kind.as_str(), "not a serial source");
         return;
     };
-    let mut sink = FrameSink::new(outputs, counters, spec.sample_rate_hz);
+    let mut sink =
+        FrameSink::new(outputs, counters, spec.sample_rate_hz).with_sequence(&spec.sequence);
     let mut framing = match StreamFraming::new(stream, sink.out.width()) {
         Ok(f) => f,
         Err(e) => {

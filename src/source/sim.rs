@@ -258,6 +258,7 @@ mod tests {
                 seed: 3,
                 speed: 1.0,
             },
+            sequence: crate::config::SequenceSpec::DEFAULT,
         };
         let (ctx, signal) = SourceContext::new_test(spec, SourceOutputs::new(CHANNELS));
         let counters = ctx.counters.clone();

@@ -126,7 +126,7 @@ pub async fn run_connect(ctx: SourceContext) {
         tracing::error!(source = %spec.name, kind = spec.kind.as_str(), "not a tcp-connect source");
         return;
     };
-    let sink = FrameSink::new(outputs, counters, spec.sample_rate_hz);
+    let sink = FrameSink::new(outputs, counters, spec.sample_rate_hz).with_sequence(&spec.sequence);
     connect(&address, &stream, backoff, idle_timeout, sink, shutdown).await;
 }
 
@@ -227,7 +227,7 @@ pub async fn run_listen(ctx: SourceContext) {
         tracing::error!(source = %spec.name, kind = spec.kind.as_str(), "not a tcp-listen source");
         return;
     };
-    let sink = FrameSink::new(outputs, counters, spec.sample_rate_hz);
+    let sink = FrameSink::new(outputs, counters, spec.sample_rate_hz).with_sequence(&spec.sequence);
     let policy = ListenPolicy {
         second: on_second_connection,
         replace_after_silent,

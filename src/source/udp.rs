@@ -1,7 +1,11 @@
 //! The `udp` source: one BWF1 frame per datagram, bound on `listen`. The
 //! source counts as connected while datagrams keep arriving (a datagram
 //! socket has no connection to lose); a datagram longer than
-//! `max_datagram_bytes` is rejected, not truncated into a frame.
+//! `max_datagram_bytes` is rejected, not truncated into a frame. A datagram
+//! not taken as a frame (too long, a bad header or CRC, a header that
+//! disagrees with the config) counts its bytes in `bytes_skipped`, as a
+//! stream's decoder counts the bytes it skips; a good frame dropped by the
+//! sequence rules is counted there instead (`frames_late`, restarts).
 
 use std::sync::atomic::Ordering;
 use std::time::Duration;
@@ -37,7 +41,8 @@ pub async fn run(ctx: SourceContext) {
         tracing::error!(source = %spec.name, kind = spec.kind.as_str(), "not a udp source");
         return;
     };
-    let mut sink = FrameSink::new(outputs, counters, spec.sample_rate_hz);
+    let mut sink =
+        FrameSink::new(outputs, counters, spec.sample_rate_hz).with_sequence(&spec.sequence);
     let socket = loop {
         match UdpSocket::bind(listen).await {
             Ok(s) => break s,
@@ -63,7 +68,7 @@ pub async fn run(ctx: SourceContext) {
     // One byte more than the largest datagram accepted: a datagram that
     // fills it was longer than allowed, and the kernel truncated it.
     let mut buf = vec![0u8; max_datagram + 1];
-    let mut decoder = DatagramDecoder::new();
+    let mut decoder = DatagramDecoder::expecting(sink.expect());
     let mut tick = tokio::time::interval(Duration::from_secs(1));
     let mut last = tokio::time::Instant::now();
     sink.restart();
@@ -80,11 +85,15 @@ pub async fn run(ctx: SourceContext) {
                     if n > max_datagram {
                         let msg = format!("datagram from {peer} longer than max_datagram_bytes {max_datagram}");
                         sink.reject("oversize_datagram", &msg);
+                        sink.state.bytes_skipped.fetch_add(n as u64, Ordering::Relaxed);
                         continue;
                     }
                     match decoder.decode_body(&buf[..n]) {
                         Ok((h, body)) => sink.bwf1(&h, body),
-                        Err(e) => sink.frame_error(&e),
+                        Err(e) => {
+                            sink.frame_error(&e);
+                            sink.state.bytes_skipped.fetch_add(n as u64, Ordering::Relaxed);
+                        }
                     }
                     sink.out.wake();
                 }

@@ -113,7 +113,8 @@ pub fn replay(
         .source(&spec.name)
         .ok_or_else(|| ReplayError::UnknownSource(spec.name.clone()))?
         .clone();
-    let mut sink = FrameSink::new(outputs, state.clone(), spec.sample_rate_hz);
+    let mut sink =
+        FrameSink::new(outputs, state.clone(), spec.sample_rate_hz).with_sequence(&spec.sequence);
     let mut framing = StreamFraming::new(&stream, spec.channels).map_err(ReplayError::Decoder)?;
     let read_err = |source| ReplayError::Read {
         path: file.display().to_string(),

@@ -8,7 +8,8 @@ use std::net::SocketAddr;
 use crate::config::issue::Issues;
 use crate::config::raw::RawSource;
 use crate::config::spec::{
-    Backoff, Framing, SourceKind, SourceSpec, StreamSpec, SIM_CHANNELS, SIM_SAMPLE_RATE_HZ,
+    Backoff, Framing, SequenceSpec, SourceKind, SourceSpec, StreamSpec, SIM_CHANNELS,
+    SIM_SAMPLE_RATE_HZ,
 };
 use crate::frame::SampleFormat;
 
@@ -64,6 +65,7 @@ fn check_source(issues: &mut Issues, path: &str, s: &RawSource) -> SourceSpec {
                     seed: *seed,
                     speed: *speed,
                 },
+                sequence: SequenceSpec::DEFAULT,
             }
         }
         RawSource::TcpConnect {
@@ -74,6 +76,8 @@ fn check_source(issues: &mut Issues, path: &str, s: &RawSource) -> SourceSpec {
             sample_rate_hz,
             sample_format,
             max_frame_bytes,
+            reorder_window_s,
+            max_gap_s,
             reconnect_min_ms,
             reconnect_max_ms,
             idle_timeout_s,
@@ -92,6 +96,7 @@ fn check_source(issues: &mut Issues, path: &str, s: &RawSource) -> SourceSpec {
                 name: name.clone(),
                 sample_rate_hz: *sample_rate_hz,
                 channels: *channels,
+                sequence: check_sequence(issues, path, *reorder_window_s, *max_gap_s),
                 kind: SourceKind::TcpConnect {
                     address: address.clone(),
                     stream,
@@ -108,6 +113,8 @@ fn check_source(issues: &mut Issues, path: &str, s: &RawSource) -> SourceSpec {
             sample_rate_hz,
             sample_format,
             max_frame_bytes,
+            reorder_window_s,
+            max_gap_s,
             on_second_connection,
             replace_after_silent_s,
             idle_timeout_s,
@@ -131,6 +138,7 @@ fn check_source(issues: &mut Issues, path: &str, s: &RawSource) -> SourceSpec {
                 name: name.clone(),
                 sample_rate_hz: *sample_rate_hz,
                 channels: *channels,
+                sequence: check_sequence(issues, path, *reorder_window_s, *max_gap_s),
                 kind: SourceKind::TcpListen {
                     listen: addr,
                     stream,
@@ -146,6 +154,8 @@ fn check_source(issues: &mut Issues, path: &str, s: &RawSource) -> SourceSpec {
             channels,
             sample_rate_hz,
             max_datagram_bytes,
+            reorder_window_s,
+            max_gap_s,
         } => {
             let addr = socket_addr(issues, &format!("{path}.listen"), listen);
             check_shape(issues, path, *channels, *sample_rate_hz);
@@ -159,6 +169,7 @@ fn check_source(issues: &mut Issues, path: &str, s: &RawSource) -> SourceSpec {
                 name: name.clone(),
                 sample_rate_hz: *sample_rate_hz,
                 channels: *channels,
+                sequence: check_sequence(issues, path, *reorder_window_s, *max_gap_s),
                 kind: SourceKind::Udp {
                     listen: addr,
                     max_datagram_bytes: *max_datagram_bytes,
@@ -178,6 +189,8 @@ fn check_source(issues: &mut Issues, path: &str, s: &RawSource) -> SourceSpec {
             sample_rate_hz,
             sample_format,
             max_frame_bytes,
+            reorder_window_s,
+            max_gap_s,
             reopen_ms,
         } => {
             check_serial_line(
@@ -195,6 +208,7 @@ fn check_source(issues: &mut Issues, path: &str, s: &RawSource) -> SourceSpec {
                 name: name.clone(),
                 sample_rate_hz: *sample_rate_hz,
                 channels: *channels,
+                sequence: check_sequence(issues, path, *reorder_window_s, *max_gap_s),
                 kind: SourceKind::Serial {
                     device: device.clone(),
                     baud: *baud,
@@ -286,6 +300,32 @@ fn check_shape(issues: &mut Issues, path: &str, channels: usize, rate: f64) {
             format!("{path}.sample_rate_hz"),
             format!("{rate} must be a finite number above 0 and at most 10 MHz"),
         );
+    }
+}
+
+/// The sequence rules of a framed source: a reorder window of 0 to 60 s
+/// of samples and a plausible gap of more than 0 up to a day.
+fn check_sequence(
+    issues: &mut Issues,
+    path: &str,
+    reorder_window_s: f64,
+    max_gap_s: f64,
+) -> SequenceSpec {
+    if !(reorder_window_s.is_finite() && (0.0..=60.0).contains(&reorder_window_s)) {
+        issues.add(
+            format!("{path}.reorder_window_s"),
+            format!("{reorder_window_s} is out of range 0 to 60"),
+        );
+    }
+    if !(max_gap_s.is_finite() && max_gap_s > 0.0 && max_gap_s <= 86_400.0) {
+        issues.add(
+            format!("{path}.max_gap_s"),
+            format!("{max_gap_s} is out of range (0, 86400]"),
+        );
+    }
+    SequenceSpec {
+        reorder_window_s,
+        max_gap_s,
     }
 }
 
@@ -464,6 +504,58 @@ mod tests {
                 ("p.data_bits", "9 is not 5, 6, 7 or 8"),
                 ("p.stop_bits", "3 is not 1 or 2"),
                 ("p.reopen_ms", "must be > 0"),
+            ]
+        );
+    }
+
+    #[test]
+    fn sequence_keys_default_and_range() {
+        let raw = sources(
+            r#"
+            [[source]]
+            name = "a"
+            kind = "udp"
+            listen = "127.0.0.1:7703"
+            channels = 4
+            sample_rate_hz = 25600
+
+            [[source]]
+            name = "b"
+            kind = "tcp-listen"
+            listen = "127.0.0.1:7701"
+            channels = 4
+            sample_rate_hz = 25600
+            reorder_window_s = 0.25
+            max_gap_s = 60
+
+            [[source]]
+            name = "c"
+            kind = "tcp-connect"
+            address = "127.0.0.1:7702"
+            channels = 4
+            sample_rate_hz = 25600
+            reorder_window_s = -1
+            max_gap_s = 0
+            "#,
+        );
+        let mut issues = Issues::default();
+        let specs = check_sources(&mut issues, &raw);
+        assert_eq!(specs[0].sequence, SequenceSpec::DEFAULT);
+        assert_eq!(
+            specs[1].sequence,
+            SequenceSpec {
+                reorder_window_s: 0.25,
+                max_gap_s: 60.0
+            }
+        );
+        assert_eq!(
+            issues.pairs(),
+            vec![
+                (
+                    "source[2] \"c\".reorder_window_s",
+                    "-1 is out of range 0 to 60"
+                ),
+                ("source[2] \"c\".max_gap_s", "0 is out of range (0, 86400]"),
             ]
         );
     }

@@ -18,7 +18,10 @@
 //! Decoding is check-then-parse. The [`StreamDecoder`] validates a header
 //! as soon as its 36 bytes are there, and refuses a frame larger than its
 //! `max_frame_bytes` before it waits for (or buffers) the body: so a header
-//! announcing half a gigabyte costs nothing. After a bad header or a bad CRC
+//! announcing half a gigabyte costs nothing. Given the source's config
+//! ([`HeaderExpect`]), it also refuses a header whose channel count or
+//! sample rate disagrees, from the header alone: a plausible-looking header
+//! never makes it wait for a body. After a bad header or a bad CRC
 //! it drops one byte and scans for the next magic (a resync). It never
 //! reserves memory on the word of a header; its buffer only holds bytes
 //! that were pushed and not yet consumed.
@@ -262,6 +265,60 @@ pub enum FrameError {
     /// `offset`: of the first byte after the frame (datagrams only).
     #[error("byte {offset}: {extra} bytes after the end of the frame")]
     TrailingBytes { offset: u64, extra: u64 },
+    /// `offset`: of the channel count field; the header is valid but
+    /// announces `count` channels where the source's config says `expected`.
+    #[error("byte {offset}: frame has {count} channels, the config says {expected}")]
+    ChannelCountMismatch {
+        offset: u64,
+        count: u16,
+        expected: u16,
+    },
+    /// `offset`: of the sample rate field; the header is valid but
+    /// announces `rate` Hz where the source's config says `expected`.
+    #[error("byte {offset}: frame says {rate} Hz, the config says {expected} Hz")]
+    SampleRateMismatch {
+        offset: u64,
+        rate: f64,
+        expected: f64,
+    },
+}
+
+/// What a source's config says every header must announce: a decoder given
+/// one refuses a header that disagrees from its 36 bytes, before it waits
+/// for the body (README, "Wire format BWF1").
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct HeaderExpect {
+    /// Channels in one instant.
+    pub channels: u16,
+    /// Samples per second per channel; a header within a relative 1e-6 of
+    /// it agrees.
+    pub sample_rate_hz: f64,
+}
+
+impl HeaderExpect {
+    /// Checks a parsed header against the config; `offset` is the stream
+    /// offset of the frame's first byte, used in the error.
+    ///
+    /// # Errors
+    /// [`FrameError::ChannelCountMismatch`], then
+    /// [`FrameError::SampleRateMismatch`], with the field's own offset.
+    pub fn check(&self, h: &Header, offset: u64) -> Result<(), FrameError> {
+        if h.channels != self.channels {
+            return Err(FrameError::ChannelCountMismatch {
+                offset: offset + OFF_CHANNELS,
+                count: h.channels,
+                expected: self.channels,
+            });
+        }
+        if (h.sample_rate_hz - self.sample_rate_hz).abs() > 1e-6 * self.sample_rate_hz {
+            return Err(FrameError::SampleRateMismatch {
+                offset: offset + OFF_RATE,
+                rate: h.sample_rate_hz,
+                expected: self.sample_rate_hz,
+            });
+        }
+        Ok(())
+    }
 }
 
 /// The kind of a [`FrameError`], for counting and metric labels.
@@ -277,10 +334,12 @@ pub enum RejectReason {
     CrcMismatch,
     Truncated,
     TrailingBytes,
+    ChannelCountMismatch,
+    SampleRateMismatch,
 }
 
 impl RejectReason {
-    pub const ALL: [RejectReason; 10] = [
+    pub const ALL: [RejectReason; 12] = [
         RejectReason::BadMagic,
         RejectReason::UnsupportedVersion,
         RejectReason::BadFormat,
@@ -291,6 +350,8 @@ impl RejectReason {
         RejectReason::CrcMismatch,
         RejectReason::Truncated,
         RejectReason::TrailingBytes,
+        RejectReason::ChannelCountMismatch,
+        RejectReason::SampleRateMismatch,
     ];
 
     /// Snake-case name, usable as a metric label value.
@@ -306,6 +367,8 @@ impl RejectReason {
             RejectReason::CrcMismatch => "crc_mismatch",
             RejectReason::Truncated => "truncated",
             RejectReason::TrailingBytes => "trailing_bytes",
+            RejectReason::ChannelCountMismatch => "channel_count_mismatch",
+            RejectReason::SampleRateMismatch => "sample_rate_mismatch",
         }
     }
 }
@@ -323,6 +386,8 @@ impl FrameError {
             FrameError::CrcMismatch { .. } => RejectReason::CrcMismatch,
             FrameError::Truncated { .. } => RejectReason::Truncated,
             FrameError::TrailingBytes { .. } => RejectReason::TrailingBytes,
+            FrameError::ChannelCountMismatch { .. } => RejectReason::ChannelCountMismatch,
+            FrameError::SampleRateMismatch { .. } => RejectReason::SampleRateMismatch,
         }
     }
 
@@ -338,7 +403,9 @@ impl FrameError {
             | FrameError::TooLarge { offset, .. }
             | FrameError::CrcMismatch { offset, .. }
             | FrameError::Truncated { offset, .. }
-            | FrameError::TrailingBytes { offset, .. } => offset,
+            | FrameError::TrailingBytes { offset, .. }
+            | FrameError::ChannelCountMismatch { offset, .. }
+            | FrameError::SampleRateMismatch { offset, .. } => offset,
         }
     }
 }
@@ -512,11 +579,34 @@ pub fn decode_datagram_into(datagram: &[u8], samples: &mut Samples) -> Result<He
 /// # Errors
 /// As [`decode_datagram`].
 pub fn decode_datagram_body(datagram: &[u8]) -> Result<(Header, &[u8]), FrameError> {
+    decode_datagram_checked(datagram, None)
+}
+
+/// As [`decode_datagram_body`], refusing a header that disagrees with
+/// `expect` before anything else is looked at.
+///
+/// # Errors
+/// As [`decode_datagram`], and [`FrameError::ChannelCountMismatch`] or
+/// [`FrameError::SampleRateMismatch`].
+pub fn decode_datagram_expecting<'a>(
+    datagram: &'a [u8],
+    expect: &HeaderExpect,
+) -> Result<(Header, &'a [u8]), FrameError> {
+    decode_datagram_checked(datagram, Some(expect))
+}
+
+fn decode_datagram_checked<'a>(
+    datagram: &'a [u8],
+    expect: Option<&HeaderExpect>,
+) -> Result<(Header, &'a [u8]), FrameError> {
     let n = datagram.len().min(MAGIC.len());
     if datagram[..n] != MAGIC[..n] {
         return Err(FrameError::BadMagic { offset: 0 });
     }
     let header = Header::parse(datagram, 0)?;
+    if let Some(e) = expect {
+        e.check(&header, 0)?;
+    }
     check_whole(&header, datagram.len())?;
     let body = checked_frame(datagram, &header, 0)?;
     Ok((header, body))
@@ -548,11 +638,22 @@ fn checked_frame<'a>(
 #[derive(Debug, Default)]
 pub struct DatagramDecoder {
     stats: DecoderStats,
+    expect: Option<HeaderExpect>,
 }
 
 impl DatagramDecoder {
     pub fn new() -> DatagramDecoder {
         DatagramDecoder::default()
+    }
+
+    /// A decoder that also refuses a frame whose header disagrees with
+    /// `expect` (counted like any other bad datagram, before its CRC is
+    /// computed).
+    pub fn expecting(expect: HeaderExpect) -> DatagramDecoder {
+        DatagramDecoder {
+            stats: DecoderStats::default(),
+            expect: Some(expect),
+        }
     }
 
     /// Decodes one datagram into `samples`, counting the outcome. A bad
@@ -577,7 +678,11 @@ impl DatagramDecoder {
     ) -> Result<(Header, &'a [u8]), FrameError> {
         let len = datagram.len() as u64;
         self.stats.bytes_in += len;
-        match decode_datagram_body(datagram) {
+        let decoded = match self.expect {
+            None => decode_datagram_body(datagram),
+            Some(e) => decode_datagram_expecting(datagram, &e),
+        };
+        match decoded {
             Ok(h) => {
                 self.stats.frames += 1;
                 self.stats.frame_bytes += len;
@@ -785,5 +890,60 @@ mod tests {
                 available: 0
             })
         );
+    }
+
+    /// A header that disagrees with the config is refused from its 36
+    /// bytes alone (no body pushed), and the next frame is found at once.
+    #[test]
+    fn a_header_that_disagrees_with_the_config_is_refused_before_its_body() {
+        let expect = HeaderExpect {
+            channels: 4,
+            sample_rate_hz: 25_600.0,
+        };
+        let good = frame_i16(7, &[1; 8], 4);
+        for (bad, want) in [
+            (
+                Header::new(SampleFormat::F32, 63, 65_536, 0, 0, 25_600.0),
+                FrameError::ChannelCountMismatch {
+                    offset: 6,
+                    count: 63,
+                    expected: 4,
+                },
+            ),
+            (
+                Header::new(SampleFormat::F32, 4, 65_536, 0, 0, 48_000.0),
+                FrameError::SampleRateMismatch {
+                    offset: 28,
+                    rate: 48_000.0,
+                    expected: 25_600.0,
+                },
+            ),
+        ] {
+            let mut d = StreamDecoder::new();
+            d.set_expect(Some(expect));
+            let mut bytes = Vec::new();
+            bad.write_to(&mut bytes);
+            d.push(&bytes);
+            assert_eq!(d.next_frame(), Err(want.clone()));
+            d.push(&good);
+            assert_eq!(d.next_frame().unwrap().unwrap().header.first_sample, 7);
+            assert_eq!(d.stats().resyncs, 1);
+            assert_eq!(d.stats().bytes_skipped, 36);
+            assert_eq!(d.stats().rejected(want.reason()), 1);
+            // Without the config the same header waits for its body.
+            let mut d = StreamDecoder::new();
+            d.push(&bytes);
+            d.push(&good);
+            assert_eq!(d.next_frame(), Ok(None));
+        }
+        // A datagram decoder given the config refuses the frame whole.
+        let two = frame_i16(0, &[1; 4], 2);
+        let mut d = DatagramDecoder::expecting(expect);
+        assert!(matches!(
+            d.decode_body(&two),
+            Err(FrameError::ChannelCountMismatch { count: 2, .. })
+        ));
+        assert_eq!(d.stats().bytes_skipped, two.len() as u64);
+        assert!(d.decode_body(&good).is_ok());
     }
 }

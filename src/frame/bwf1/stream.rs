@@ -1,7 +1,8 @@
 //! The BWF1 stream decoder: frames out of a byte stream (TCP, serial, a
 //! file) pushed in arbitrary pieces. Check-then-parse on the header, a
-//! size limit before any body is awaited, and a resync to the next magic
-//! after a bad frame (see the parent module for the layout).
+//! size limit and the config's channel count and rate checked before any
+//! body is awaited, and a resync to the next magic after a bad frame (see
+//! the parent module for the layout).
 
 use super::*;
 
@@ -22,6 +23,8 @@ pub struct StreamDecoder {
     max_frame_bytes: usize,
     /// After an error: looking for the next magic.
     scanning: bool,
+    /// What the source's config says every header must announce.
+    expect: Option<HeaderExpect>,
     stats: DecoderStats,
 }
 
@@ -57,8 +60,22 @@ impl StreamDecoder {
             base: 0,
             max_frame_bytes,
             scanning: false,
+            expect: None,
             stats: DecoderStats::default(),
         }
+    }
+
+    /// Also refuse, from its 36 bytes, a header whose channel count or
+    /// sample rate disagrees with `expect` (the source's config): counted
+    /// like a bad header and resynchronised past, so no body is awaited
+    /// on its word. `None`: any valid header is taken.
+    pub fn set_expect(&mut self, expect: Option<HeaderExpect>) {
+        self.expect = expect;
+    }
+
+    /// What headers are checked against, if anything.
+    pub fn expect(&self) -> Option<HeaderExpect> {
+        self.expect
     }
 
     /// The frame size limit.
@@ -237,6 +254,11 @@ impl StreamDecoder {
             Ok(h) => h,
             Err(e) => return Step::Bad(e),
         };
+        if let Some(e) = &self.expect {
+            if let Err(e) = e.check(&header, offset) {
+                return Step::Bad(e);
+            }
+        }
         let total = header.frame_bytes();
         if total > self.max_frame_bytes as u64 {
             return Step::Bad(FrameError::TooLarge {
