@@ -119,6 +119,8 @@ fn capture_round_trips_through_bwf1_and_json() {
         nfft: 8,
         averages: 4,
         first_sample: 0,
+        oldest_first_sample: None,
+        end_sample: None,
         values: vec![0.0, 1.0, 0.5, 0.25, 0.0],
     };
     let mut b = CaptureBuilder::start(
