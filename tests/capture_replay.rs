@@ -67,7 +67,10 @@ async fn demo_capture(dir: &Path) -> (PathBuf, String) {
     let deadline = Instant::now() + Duration::from_secs(120);
     let id = loop {
         let l = capture::list(&caps).unwrap();
-        if let Some(c) = l.iter().find(|c| c.channel == "pump-de" && c.band == "bpfo") {
+        if let Some(c) = l
+            .iter()
+            .find(|c| c.channel == "pump-de" && c.band == "bpfo")
+        {
             break c.id.clone();
         }
         assert!(Instant::now() < deadline, "no BPFO capture: {l:?}");
@@ -81,13 +84,7 @@ fn max_rel(got: &[f64], want: &[f64]) -> f64 {
     assert_eq!(got.len(), want.len());
     got.iter()
         .zip(want)
-        .map(|(g, w)| {
-            if g == w {
-                0.0
-            } else {
-                ((g - w) / w).abs()
-            }
-        })
+        .map(|(g, w)| if g == w { 0.0 } else { ((g - w) / w).abs() })
         .fold(0.0, f64::max)
 }
 
@@ -219,16 +216,17 @@ async fn a_demo_trip_capture_replays_to_its_stored_spectrum_and_bands() {
     )
     .unwrap();
     let c2 = r2.check.unwrap();
-    assert_eq!(c2.spectrum_max_rel, 0.0, "the spectrum does not use the speed");
+    assert_eq!(
+        c2.spectrum_max_rel, 0.0,
+        "the spectrum does not use the speed"
+    );
     assert!(c2.bands_max_rel > 1e-4, "{c2}");
     assert!(!c2.reproduced());
 
     // A capture written before the settings were stored (version 1).
     let old = TempDir::new("capture-replay-v1");
-    let mut v: serde_json::Value = serde_json::from_slice(
-        &std::fs::read(caps.join(format!("{id}.json"))).unwrap(),
-    )
-    .unwrap();
+    let mut v: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(caps.join(format!("{id}.json"))).unwrap()).unwrap();
     v["version"] = 1.into();
     let o = v.as_object_mut().unwrap();
     o.remove("settings");
@@ -318,7 +316,10 @@ fn a_replay_that_accepts_no_frame_fails_and_counts_why() {
             assert_eq!(r.bytes, bytes.len() as u64);
             assert_eq!(r.channels, 4);
             assert_eq!(r.reasons.len(), 1);
-            assert_eq!((r.reasons[0].0.as_str(), r.reasons[0].1), ("channel_count_mismatch", 5));
+            assert_eq!(
+                (r.reasons[0].0.as_str(), r.reasons[0].1),
+                ("channel_count_mismatch", 5)
+            );
         }
         Err(e) => panic!("wrong error: {e}"),
         Ok(_) => panic!("replay accepted nothing and succeeded"),

@@ -265,7 +265,8 @@ pub fn history_blocks(mode: AveragingMode, count: u32) -> usize {
         AveragingMode::Exponential if count == 1 => 1,
         AveragingMode::Exponential => {
             let k = (24.0 * std::f64::consts::LN_2) / -(1.0 - 1.0 / f64::from(count)).ln();
-            (k.ceil() as usize).max(count as usize)
+            // The smallest K with w^K < 2⁻²⁴ strictly.
+            (k.floor() as usize + 1).max(count as usize)
         }
     }
 }
