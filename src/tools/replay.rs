@@ -538,11 +538,10 @@ fn replay_start(
         AveragingMode::None => hop,
     };
     if oldest >= wave_first {
-        let from = if group == 0 {
-            oldest
-        } else {
-            oldest - (oldest - wave_first) / group * group
-        };
+        // Whole groups before the oldest block (none for exponential).
+        let from = (oldest - wave_first)
+            .checked_div(group)
+            .map_or(oldest, |q| oldest - q * group);
         return (from, None);
     }
     // The capture does not hold the oldest block of the average.
