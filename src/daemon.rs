@@ -4,7 +4,7 @@ use std::future::Future;
 
 use tokio::net::TcpListener;
 
-use crate::config::Config;
+use crate::config::{Config, HttpLimits};
 use crate::http;
 use crate::pipeline::{Pipeline, RunError};
 
@@ -14,12 +14,50 @@ pub async fn serve<F>(config: Config, listener: TcpListener, shutdown: F) -> Res
 where
     F: Future<Output = ()> + Send + 'static,
 {
+    let limits = fit_to_open_file_limit(config.http, config.sources.len());
     let pipeline = Pipeline::start(&config)?;
-    let app = http::router(pipeline.state.clone());
-    let result = axum::serve(listener, app)
-        .with_graceful_shutdown(shutdown)
+    let (app, connections) = http::app(pipeline.state.clone());
+    let result = http::server::serve(listener, app, limits, connections, shutdown)
         .await
         .map_err(RunError::Http);
     pipeline.stop().await;
     result
+}
+
+/// File descriptors kept out of the HTTP server's reach, for the journal,
+/// captures and baselines (a write opens a temporary file, the file and its
+/// directory), the sources' sockets, logs and the runtime (README, "Limits
+/// of the HTTP server").
+pub const FD_RESERVE: u64 = 128;
+
+/// Raises the soft open-file limit to the hard limit, then lowers the HTTP
+/// connection cap if it would not leave [`FD_RESERVE`] descriptors (plus
+/// one per source) free, with a warning. A failure to raise is logged, and
+/// the cap fitted to the limit as it is.
+pub fn fit_to_open_file_limit(mut limits: HttpLimits, sources: usize) -> HttpLimits {
+    let soft = match rlimit::increase_nofile_limit(u64::MAX) {
+        Ok(n) => n,
+        Err(e) => {
+            tracing::warn!(error = %e, "cannot raise the open-file limit");
+            match rlimit::getrlimit(rlimit::Resource::NOFILE) {
+                Ok((soft, _)) => soft,
+                Err(_) => return limits,
+            }
+        }
+    };
+    let reserve = FD_RESERVE + sources as u64;
+    let room = soft.saturating_sub(reserve).max(1);
+    if (limits.max_connections as u64) > room {
+        tracing::warn!(
+            max_connections = limits.max_connections,
+            open_file_limit = soft,
+            reserve,
+            using = room,
+            "server.max_connections does not fit the open-file limit; lowered"
+        );
+        limits.max_connections = room as usize;
+    } else {
+        tracing::debug!(open_file_limit = soft, "open-file limit");
+    }
+    limits
 }

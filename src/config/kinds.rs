@@ -13,6 +13,10 @@ pub enum SecondConnection {
     Refuse,
     /// Close the active connection; the newcomer takes over.
     Replace,
+    /// The newcomer takes over if the active connection has sent nothing
+    /// for `replace_after_silent_s` (a DAQ box that restarted, or lost
+    /// power and left a half-open socket); otherwise it is refused.
+    ReplaceSilent,
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Default)]

@@ -42,6 +42,7 @@ pub use raw::{
     RawAveraging, RawBand, RawBearing, RawChannel, RawConfig, RawDsp, RawEnvelope, RawMachine,
     RawOverallAlarms, RawServer, RawSource, RawSpeed,
 };
+pub use spec::HttpLimits;
 pub use spec::{
     AlarmTarget, Backoff, BandEdges, BandSpec, ChannelAlarm, ChannelSpec, Config, Framing,
     MachineSpec, SourceKind, SourceSpec, SpeedSource, StreamSpec, SIM_CHANNELS, SIM_SAMPLE_RATE_HZ,

@@ -121,6 +121,36 @@ pub struct RawEnvelope {
 pub struct RawServer {
     /// Address the HTTP server binds, e.g. "127.0.0.1:9750".
     pub listen: String,
+    /// Most HTTP connections open at once; more are closed at accept.
+    #[serde(default = "default_max_connections")]
+    pub max_connections: usize,
+    /// Longest a client may take to send a request's headers, from the
+    /// moment the server waits for them (also between keep-alive requests).
+    #[serde(default = "default_header_timeout_s")]
+    pub header_timeout_s: f64,
+    /// A connection on which nothing is read or written for this long is
+    /// closed (a stalled reader of a response, a half-open socket).
+    #[serde(default = "default_http_idle_timeout_s")]
+    pub idle_timeout_s: f64,
+    /// Longest one request may take to be answered (503 after).
+    #[serde(default = "default_request_timeout_s")]
+    pub request_timeout_s: f64,
+}
+
+fn default_max_connections() -> usize {
+    256
+}
+
+fn default_header_timeout_s() -> f64 {
+    10.0
+}
+
+fn default_http_idle_timeout_s() -> f64 {
+    60.0
+}
+
+fn default_request_timeout_s() -> f64 {
+    30.0
 }
 
 #[derive(Debug, Clone, Deserialize)]
@@ -192,6 +222,10 @@ pub enum RawSource {
         /// Longest wait between reconnects.
         #[serde(default = "default_backoff_max")]
         reconnect_max_ms: u64,
+        /// A connection that delivers no byte for this long is closed and
+        /// dialled again.
+        #[serde(default = "default_idle_timeout_s")]
+        idle_timeout_s: f64,
     },
     /// The DAQ box dials bandwatch.
     TcpListen {
@@ -213,6 +247,13 @@ pub enum RawSource {
         /// What a second connection does while one is active.
         #[serde(default)]
         on_second_connection: SecondConnection,
+        /// `replace-silent`: how long the active connection must have been
+        /// silent for a newcomer to replace it.
+        #[serde(default = "default_replace_after_silent_s")]
+        replace_after_silent_s: f64,
+        /// A connection that delivers no byte for this long is closed.
+        #[serde(default = "default_idle_timeout_s")]
+        idle_timeout_s: f64,
     },
     /// One BWF1 frame per datagram.
     Udp {
@@ -254,6 +295,14 @@ pub enum RawSource {
         #[serde(default = "default_backoff_min")]
         reopen_ms: u64,
     },
+}
+
+fn default_idle_timeout_s() -> f64 {
+    10.0
+}
+
+fn default_replace_after_silent_s() -> f64 {
+    2.0
 }
 
 fn default_backoff_min() -> u64 {

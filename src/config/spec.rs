@@ -4,6 +4,7 @@
 //! `check::validate`; every value here has passed its checks.
 
 use std::net::SocketAddr;
+use std::time::Duration;
 
 use crate::frame::SampleFormat;
 use crate::units::Unit;
@@ -27,11 +28,34 @@ pub struct Config {
     /// `[alarms]`, when given.
     pub alarms: Option<AlarmsSpec>,
     pub listen: SocketAddr,
+    /// Limits of the HTTP server (`[server]`).
+    pub http: HttpLimits,
     pub workers: usize,
     pub ring_seconds: f64,
     pub sources: Vec<SourceSpec>,
     pub machines: Vec<MachineSpec>,
     pub channels: Vec<ChannelSpec>,
+}
+
+/// How much the HTTP server gives one client (`[server]`, README "Config
+/// reference"): bounded connections, and bounded time for each.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct HttpLimits {
+    pub max_connections: usize,
+    pub header_timeout: Duration,
+    pub idle_timeout: Duration,
+    pub request_timeout: Duration,
+}
+
+impl Default for HttpLimits {
+    fn default() -> HttpLimits {
+        HttpLimits {
+            max_connections: 256,
+            header_timeout: Duration::from_secs(10),
+            idle_timeout: Duration::from_secs(60),
+            request_timeout: Duration::from_secs(30),
+        }
+    }
 }
 
 #[derive(Debug, Clone)]
@@ -101,11 +125,18 @@ pub enum SourceKind {
         address: String,
         stream: StreamSpec,
         backoff: Backoff,
+        /// A connection silent this long is closed and dialled again.
+        idle_timeout: Duration,
     },
     TcpListen {
         listen: SocketAddr,
         stream: StreamSpec,
         on_second_connection: SecondConnection,
+        /// `replace-silent`: the active connection's silence that lets a
+        /// newcomer in.
+        replace_after_silent: Duration,
+        /// A connection silent this long is closed.
+        idle_timeout: Duration,
     },
     Udp {
         listen: SocketAddr,

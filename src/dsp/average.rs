@@ -143,6 +143,14 @@ impl Averager {
         }
     }
 
+    /// Whether the next block pushed starts a new average (nothing is
+    /// accumulated): after a reset, after a linear or peak-hold result, and
+    /// always without averaging. Exponential averaging starts afresh only
+    /// after a reset, since every block since then stays in it.
+    pub fn is_fresh(&self) -> bool {
+        self.n == 0
+    }
+
     /// Blocks still to push before the next result (at least 1).
     pub fn blocks_to_result(&self) -> u32 {
         match self.mode {

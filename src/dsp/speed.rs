@@ -53,6 +53,19 @@ impl TachDetector {
     /// Feeds consecutive samples whose first has stream index `first`.
     /// Returns how many edges were found.
     pub fn push(&mut self, first: u64, samples: &[f32]) -> usize {
+        self.push_each(first, samples, |_, _| {})
+    }
+
+    /// As [`TachDetector::push`], calling `on_edge(index, speed)` at each
+    /// edge found: `index` is the stream index of the sample that fired it
+    /// (the edge is known once that sample is read), `speed` the speed in
+    /// Hz with that edge counted (None until two edges are known).
+    pub fn push_each(
+        &mut self,
+        first: u64,
+        samples: &[f32],
+        mut on_edge: impl FnMut(u64, Option<f64>),
+    ) -> usize {
         let mut found = 0;
         let lo = self.threshold - self.hysteresis;
         let hi = self.threshold + self.hysteresis;
@@ -76,6 +89,7 @@ impl TachDetector {
                 }
                 self.edges.push_back(t / self.fs);
                 found += 1;
+                on_edge(idx, self.speed_hz());
             }
             self.prev = Some((idx, x));
         }

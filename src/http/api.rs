@@ -308,6 +308,7 @@ fn summary<'a>(
                 .machine(m)
                 .and_then(|x| x.speed_hz())
                 .map(|hz| hz * 60.0),
+            speed_late_results: app.machine(m).map_or(0, |x| x.late_results()),
         }),
         envelope_hz: spec.envelope.map(|(a, b)| [a, b]),
         expected_update_interval_seconds: expected_interval_seconds(spec),
@@ -338,6 +339,10 @@ struct MachineInfo<'a> {
     /// Null while the speed is unknown or stale.
     speed_hz: Option<f64>,
     speed_rpm: Option<f64>,
+    /// Results (of any channel following this machine) whose order bands
+    /// were evaluated before the speed was measured through their signal
+    /// time (README "Orders": the wait ran out).
+    speed_late_results: u64,
 }
 
 #[derive(Serialize)]
@@ -465,6 +470,8 @@ pub async fn channel_detail(
                     "seq": s.seq,
                     "averages": s.averages,
                     "first_sample": s.first_sample,
+                    "oldest_first_sample": s.oldest_first_sample,
+                    "end_sample": s.first_sample + spec.block as u64,
                     "timestamp": rfc3339_ns(s.timestamp_ns),
                     "published": rfc3339_ns(s.published_unix_ns),
                 }),
@@ -503,7 +510,14 @@ struct SpectrumBody<'a> {
     enbw_hz: f64,
     averages: u32,
     averaging: &'static str,
+    /// Stream index of the first sample of the newest block.
     first_sample: u64,
+    /// Stream index of the first sample of the oldest block averaged.
+    oldest_first_sample: u64,
+    /// One past the newest block's last sample: the spectrum covers
+    /// `oldest_first_sample .. end_sample`, with no gap inside.
+    end_sample: u64,
+    /// Time of `first_sample` (the newest block's start), from the frames.
     timestamp: Option<String>,
     /// Frequency of `values[0]`.
     f0_hz: f64,
@@ -630,6 +644,8 @@ pub async fn spectrum(
         averages: snap.averages,
         averaging: averaging_str(spec.averaging),
         first_sample: snap.first_sample,
+        oldest_first_sample: snap.oldest_first_sample,
+        end_sample: snap.first_sample + spec.block as u64,
         timestamp: rfc3339_ns(snap.timestamp_ns),
         f0_hz,
         integration_low_cut_hz: integrates.then_some(spec.integration_low_cut_hz),

@@ -49,6 +49,9 @@ pub enum ApiError {
     /// (the bound is the number of computations that may run at once).
     #[error("busy: {0} request-time DSP computation(s) already running; retry shortly")]
     Busy(usize),
+    /// The request was not answered within `server.request_timeout_s`.
+    #[error("not answered within the request timeout ({0} s); retry shortly")]
+    Timeout(f64),
     /// Something on our side failed; the detail is logged, not sent.
     #[error("internal error")]
     Internal,
@@ -67,7 +70,8 @@ impl ApiError {
             ApiError::NoSnapshot(_)
             | ApiError::Waiting(_)
             | ApiError::NotReady(_)
-            | ApiError::Busy(_) => StatusCode::SERVICE_UNAVAILABLE,
+            | ApiError::Busy(_)
+            | ApiError::Timeout(_) => StatusCode::SERVICE_UNAVAILABLE,
             ApiError::MethodNotAllowed => StatusCode::METHOD_NOT_ALLOWED,
             ApiError::Internal => StatusCode::INTERNAL_SERVER_ERROR,
         }

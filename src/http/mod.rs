@@ -14,6 +14,7 @@ pub mod error;
 pub mod gate;
 pub mod metrics;
 pub mod scaling;
+pub mod server;
 
 use std::sync::Arc;
 
@@ -45,12 +46,20 @@ pub struct HttpState {
 /// Builds the router; kept apart from `serve` so tests can call it with
 /// `tower::ServiceExt::oneshot` and no socket.
 pub fn router(state: Arc<AppState>) -> Router {
+    app(state).0
+}
+
+/// The router, and the connection series of its `/metrics` for the accept
+/// loop ([`server::serve`]) to update.
+pub fn app(state: Arc<AppState>) -> (Router, metrics::ConnectionMetrics) {
     let metrics = Arc::new(Metrics::new(state.clone()));
-    router_with(HttpState {
+    let connections = metrics.connections();
+    let router = router_with(HttpState {
         app: state,
         metrics,
         dsp: Arc::new(DspGate::per_core()),
-    })
+    });
+    (router, connections)
 }
 
 /// As [`router`], with a prepared state (tests pin the metrics clock).

@@ -193,6 +193,21 @@ impl<'a> Builder<'a> {
             dsps.push(dsp);
             writers.push(w);
         }
+        // Signal-time speeds (README "Orders"): a machine keeps its
+        // measurements for as long as a follower can lag behind it (the
+        // longest ring, plus `stale_s`); a machine whose measuring channel
+        // is not built here (replay of another source) gets no
+        // measurements, and nobody waits for it.
+        let longest_ring = dsps
+            .iter()
+            .map(ChannelDsp::ring_seconds)
+            .fold(0.0, f64::max);
+        for m in &state.machines {
+            m.set_horizon_s(longest_ring + m.stale_s().unwrap_or(0.0) + 1.0);
+            if m.is_measured() && !dsps.iter().any(|d| d.measures(m)) {
+                m.close();
+            }
+        }
         Ok(Assembly {
             config: config.clone(),
             state,
@@ -369,6 +384,16 @@ impl Inline {
 
     /// Polls every channel until none has work left.
     pub fn drain(&mut self) {
+        drain(&mut self.channels);
+    }
+
+    /// End of input: no more speed measurements will come (each machine's
+    /// timeline is closed), so channels waiting for a speed go on; then
+    /// drains.
+    pub fn end_of_input(&mut self) {
+        for m in &self.state.machines {
+            m.close();
+        }
         drain(&mut self.channels);
     }
 

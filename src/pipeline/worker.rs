@@ -24,7 +24,7 @@ use crate::dsp::envelope::EnvelopeEngine;
 use crate::dsp::spectrum::SpectrumEngine;
 use crate::dsp::speed::{track_peak, TachDetector};
 use crate::dsp::stats;
-use crate::pipeline::state::{ChannelShared, ChannelSnapshot, MachineShared};
+use crate::pipeline::state::{ChannelShared, ChannelSnapshot, MachineShared, SignalTime};
 use crate::ring::{Mark, ReadEvent, RingReader};
 
 /// Envelope analysis state of a channel.
@@ -35,10 +35,12 @@ struct EnvelopeState {
     signal: Vec<f32>,
 }
 
-/// A channel whose data measures a machine's speed.
+/// A channel whose data measures a machine's speed. The Vec holds the
+/// measurements of the current run of samples, placed in signal time,
+/// until they are reported to the machine (`MachineShared::record`).
 enum SpeedRole {
-    Tach(Arc<MachineShared>, TachDetector),
-    Peak(Arc<MachineShared>, usize, usize),
+    Tach(Arc<MachineShared>, TachDetector, Vec<(SignalTime, f64)>),
+    Peak(Arc<MachineShared>, usize, usize, Vec<(SignalTime, f64)>),
 }
 
 /// Blocks one channel may compute before the worker moves to the next, so a
@@ -58,6 +60,20 @@ pub struct ChannelDsp {
     /// Which spectrum each band reads.
     band_spectrum: Vec<SpectrumKind>,
     machine: Option<Arc<MachineShared>>,
+    /// Whether this channel shares the stream index of the channel that
+    /// measures its machine's speed (same source), or compares by the
+    /// frames' time.
+    machine_same_source: bool,
+    /// Whether a result waits until its machine's speed is known through
+    /// its end (a tach or peak machine this channel does not measure).
+    waits_for_speed: bool,
+    /// When the channel began to wait for its machine's speed.
+    speed_wait: Option<Instant>,
+    /// The wait for the current result's speed has run out: evaluate it
+    /// with what is known.
+    speed_late: bool,
+    /// Times the stream index went backwards (see `SignalTime::epoch`).
+    epoch: u32,
     envelope: Option<Box<EnvelopeState>>,
     speed_roles: Vec<SpeedRole>,
     frame: Vec<f32>,
@@ -68,6 +84,9 @@ pub struct ChannelDsp {
     segment_sums: Vec<f64>,
     /// Stream index of `frame[0]`.
     frame_first_sample: u64,
+    /// Stream index of the first sample of the oldest block in the average
+    /// being accumulated.
+    average_first_sample: u64,
     /// Stream index of the next sample read.
     next_sample: u64,
     /// Latest time anchor: (stream index, ns since epoch).
@@ -122,7 +141,7 @@ impl ChannelDsp {
             })
         });
         let df = spec.df_hz();
-        let speed_roles = machines
+        let speed_roles: Vec<SpeedRole> = machines
             .iter()
             .filter_map(|m| match &m.spec.speed {
                 SpeedSource::Tach {
@@ -141,6 +160,7 @@ impl ChannelDsp {
                         *hysteresis,
                         *average_revs,
                     ),
+                    Vec::new(),
                 )),
                 SpeedSource::Peak {
                     channel,
@@ -151,11 +171,28 @@ impl ChannelDsp {
                     m.clone(),
                     (min_hz / df).ceil() as usize,
                     (max_hz / df).floor() as usize,
+                    Vec::new(),
                 )),
                 _ => None,
             })
             .collect();
+        let machine_same_source = machine
+            .as_ref()
+            .is_some_and(|m| m.same_source(&spec.source));
+        let measures = |m: &Arc<MachineShared>| {
+            speed_roles.iter().any(|r| match r {
+                SpeedRole::Tach(x, ..) | SpeedRole::Peak(x, ..) => Arc::ptr_eq(x, m),
+            })
+        };
+        let waits_for_speed = machine
+            .as_ref()
+            .is_some_and(|m| m.is_measured() && !measures(m));
         ChannelDsp {
+            machine_same_source,
+            waits_for_speed,
+            speed_wait: None,
+            speed_late: false,
+            epoch: 0,
             band_spectrum: spec.bands.iter().map(|b| b.spectrum).collect(),
             machine,
             envelope,
@@ -168,6 +205,7 @@ impl ChannelDsp {
             engine,
             filled: 0,
             frame_first_sample: 0,
+            average_first_sample: 0,
             next_sample: 0,
             anchor: (0, 0),
             spare: None,
@@ -245,6 +283,18 @@ impl ChannelDsp {
         }
     }
 
+    /// Whether this channel measures `machine`'s speed (tach or peak).
+    pub fn measures(&self, machine: &Arc<MachineShared>) -> bool {
+        self.speed_roles.iter().any(|r| match r {
+            SpeedRole::Tach(x, ..) | SpeedRole::Peak(x, ..) => Arc::ptr_eq(x, machine),
+        })
+    }
+
+    /// Capacity of the channel's ring, seconds at its sample rate.
+    pub fn ring_seconds(&self) -> f64 {
+        self.reader.capacity() as f64 / self.shared.spec.sample_rate_hz.max(1.0)
+    }
+
     pub fn shared(&self) -> &Arc<ChannelShared> {
         &self.shared
     }
@@ -275,6 +325,12 @@ impl ChannelDsp {
             blocks = self.blocks_per_turn;
         }
         while blocks < self.blocks_per_turn {
+            if self.waits_for_speed && self.must_wait_for_speed() {
+                // The samples that complete the next result stay in the
+                // ring until its speed is known; the measuring channel's
+                // report wakes this thread.
+                break;
+            }
             match self.reader.read(&mut self.frame[self.filled..]) {
                 ReadEvent::Empty => break,
                 ReadEvent::Mark(m) => {
@@ -297,18 +353,15 @@ impl ChannelDsp {
                             fs,
                         );
                     }
-                    for role in &mut self.speed_roles {
-                        if let SpeedRole::Tach(m, t) = role {
-                            let new = &self.frame[self.filled..self.filled + n];
-                            if t.push(self.next_sample, new) > 0 {
-                                if let Some(hz) = t.speed_hz() {
-                                    m.set_speed_hz(hz);
-                                }
-                            }
-                        }
+                    if !self.speed_roles.is_empty() {
+                        self.measure_tach(n);
                     }
                     self.filled += n;
                     self.next_sample += n as u64;
+                    // Tach measurements are reported before this run's
+                    // block is computed (a tach channel may follow its own
+                    // machine); a peak reading comes with the block.
+                    self.report_speed(true);
                     self.shared
                         .counters
                         .samples_processed
@@ -317,6 +370,7 @@ impl ChannelDsp {
                         self.block_ready();
                         blocks += 1;
                     }
+                    self.report_speed(false);
                 }
             }
         }
@@ -329,36 +383,166 @@ impl ChannelDsp {
         worked
     }
 
+    /// A discontinuity of any reason (sequence gap, ring overflow, a
+    /// non-finite sample, a reconnect or restart of the source) starts
+    /// everything that spans samples over: the partly filled block, the raw
+    /// and envelope averages (linear, exponential and peak hold alike), the
+    /// tach detector, and the health checks' sample history (see
+    /// `ChannelAlarms::on_gap`). No published number then mixes samples
+    /// from both sides of a gap; the last spectrum published before it
+    /// stays published until the first one after it (README, "Gaps").
     fn on_mark(&mut self, m: Mark) {
         if let Some(reason) = m.gap {
-            // No block may span a gap: start the block over.
             self.filled = 0;
             self.segment_sums.fill(0.0);
+            self.averager.reset();
+            if let Some(e) = &mut self.envelope {
+                e.averager.reset();
+            }
             if let Some(a) = &mut self.alarms {
-                if reason != GapReason::Restart || self.seq > 0 {
+                // The stream's first mark is a restart too: nothing to
+                // forget yet, and not a gap in the health statistics.
+                let seen = self
+                    .shared
+                    .counters
+                    .samples_processed
+                    .load(Ordering::Relaxed)
+                    > 0;
+                if reason != GapReason::Restart || seen {
                     a.on_gap();
                 }
             }
+            // A break in a tach channel: the speed is unknown from the
+            // first sample it did not see until two edges are found again.
+            let unknown_from = SignalTime {
+                epoch: self.epoch,
+                sample: self.next_sample + 1,
+                ns: self.timestamp_of(self.next_sample).saturating_add(1),
+            };
             for role in &mut self.speed_roles {
-                if let SpeedRole::Tach(_, t) = role {
+                if let SpeedRole::Tach(_, t, found) = role {
                     t.reset();
-                }
-            }
-            if reason == GapReason::Restart {
-                self.averager.reset();
-                if let Some(e) = &mut self.envelope {
-                    e.averager.reset();
+                    found.push((unknown_from, f64::NAN));
                 }
             }
         }
+        if m.first_sample < self.next_sample {
+            // The stream's count went back (a restarted sender): a new
+            // epoch of signal time.
+            self.epoch += 1;
+        }
         self.next_sample = m.first_sample;
         self.anchor = (m.first_sample, m.timestamp_ns);
+        if !self.speed_roles.is_empty() {
+            self.report_speed(true);
+            self.report_speed(false);
+        }
+    }
+
+    /// Stream position `sample` as signal time.
+    fn signal_time(&self, sample: u64) -> SignalTime {
+        SignalTime {
+            epoch: self.epoch,
+            sample,
+            ns: self.timestamp_of(sample),
+        }
+    }
+
+    /// Runs the tach detectors over the `n` samples just read into the
+    /// frame (at `filled`), placing each speed at the sample that fired
+    /// its edge.
+    fn measure_tach(&mut self, n: usize) {
+        let first = self.next_sample;
+        let (anchor, fs, epoch) = (self.anchor, self.shared.spec.sample_rate_hz, self.epoch);
+        let new = &self.frame[self.filled..self.filled + n];
+        for role in &mut self.speed_roles {
+            if let SpeedRole::Tach(_, t, found) = role {
+                t.push_each(first, new, |idx, hz| {
+                    if let Some(hz) = hz {
+                        let sample = idx + 1;
+                        found.push((
+                            SignalTime {
+                                epoch,
+                                sample,
+                                ns: stamp(anchor, fs, sample),
+                            },
+                            hz,
+                        ));
+                    }
+                });
+            }
+        }
+    }
+
+    /// Reports the measurements held by the tach (`tach`) or peak roles
+    /// and how far this channel has read.
+    fn report_speed(&mut self, tach: bool) {
+        if self.speed_roles.is_empty() {
+            return;
+        }
+        let through = self.signal_time(self.next_sample);
+        for role in &mut self.speed_roles {
+            match role {
+                SpeedRole::Tach(m, _, found) if tach => {
+                    m.record(found, through);
+                    found.clear();
+                }
+                SpeedRole::Peak(m, _, _, found) if !tach => {
+                    m.record(found, through);
+                    found.clear();
+                }
+                _ => {}
+            }
+        }
+    }
+
+    /// Whether the next read would complete a result whose speed is not
+    /// known yet (the measuring channel has not read that far). Waits at
+    /// most the machine's `stale_s` of wall-clock time and never past half
+    /// the ring; then the result is evaluated with what is known, counted
+    /// in the machine's `late_results` and logged.
+    fn must_wait_for_speed(&mut self) -> bool {
+        let need = self.frame.len() - self.filled;
+        if self.speed_late || self.averager.blocks_to_result() != 1 || self.reader.occupied() < need
+        {
+            return false;
+        }
+        let Some(m) = self.machine.clone() else {
+            return false;
+        };
+        let end = self.signal_time(self.next_sample + need as u64);
+        if m.known_through_or_wake(&end, self.machine_same_source) {
+            self.speed_wait = None;
+            return false;
+        }
+        let now = Instant::now();
+        let since = *self.speed_wait.get_or_insert(now);
+        let limit = match &m.spec.speed {
+            SpeedSource::Tach { stale_s, .. } | SpeedSource::Peak { stale_s, .. } => *stale_s,
+            SpeedSource::Fixed { .. } => 0.0,
+        };
+        let ring_ok = self.reader.occupied() < self.reader.capacity() / 2;
+        if ring_ok && now.duration_since(since).as_secs_f64() < limit {
+            return true;
+        }
+        self.speed_wait = None;
+        self.speed_late = true;
+        let late = m.note_late_result();
+        if late.is_power_of_two() {
+            tracing::warn!(
+                channel = %self.shared.spec.name,
+                machine = %m.spec.name,
+                late_results = late,
+                first_sample = self.next_sample,
+                ring_full = !ring_ok,
+                "speed not measured through this result yet; order bands use what is known"
+            );
+        }
+        false
     }
 
     fn timestamp_of(&self, sample: u64) -> u64 {
-        let (s0, t0) = self.anchor;
-        let dt = (sample as f64 - s0 as f64) * 1e9 / self.shared.spec.sample_rate_hz;
-        (t0 as f64 + dt).max(0.0) as u64
+        stamp(self.anchor, self.shared.spec.sample_rate_hz, sample)
     }
 
     fn hop(&self) -> usize {
@@ -384,6 +568,9 @@ impl ChannelDsp {
 
     fn block_ready(&mut self) {
         let mean = self.frame_mean();
+        if self.averager.is_fresh() {
+            self.average_first_sample = self.frame_first_sample;
+        }
         let (averager, norm) = (&mut self.averager, self.engine.norm());
         let mut ready = false;
         self.engine.transform(&self.frame, Some(mean), |x| {
@@ -417,14 +604,21 @@ impl ChannelDsp {
     fn publish(&mut self, mean: f64) {
         let avg = self.averager.result();
         let df = self.shared.spec.df_hz();
-        for role in &self.speed_roles {
-            if let SpeedRole::Peak(m, lo, hi) = role {
+        // The result's signal time: the end of its newest block.
+        let at = self.signal_time(self.frame_first_sample + self.frame.len() as u64);
+        for role in &mut self.speed_roles {
+            if let SpeedRole::Peak(m, lo, hi, _) = role {
                 if let Some(k) = track_peak(avg, *lo, *hi) {
-                    m.set_speed_hz(k * df);
+                    m.record(&[(at, k * df)], at);
                 }
             }
         }
-        let speed = self.machine.as_ref().and_then(|m| m.speed_hz());
+        let speed = self
+            .machine
+            .as_ref()
+            .and_then(|m| m.speed_at(&at, self.machine_same_source));
+        self.speed_late = false;
+        self.speed_wait = None;
         let env = self.envelope.as_ref().map(|e| e.averager.result());
         for ((v, plan), kind) in self
             .band_values
@@ -450,6 +644,7 @@ impl ChannelDsp {
         snap.seq = self.seq;
         snap.published_unix_ns = unix_now_ns();
         snap.first_sample = self.frame_first_sample;
+        snap.oldest_first_sample = self.average_first_sample;
         snap.timestamp_ns = self.timestamp_of(self.frame_first_sample);
         snap.averages = self.averager.result_averages();
         snap.overall = stats::overall_about(&self.frame, mean);
@@ -479,6 +674,14 @@ impl ChannelDsp {
         self.spare = self.shared.snapshot.swap(Some(arc));
         self.shared.counters.spectra.fetch_add(1, Ordering::Relaxed);
     }
+}
+
+/// The time of stream index `sample` from a time anchor (stream index, ns
+/// since the Unix epoch) at `fs` samples per second.
+fn stamp(anchor: (u64, u64), fs: f64, sample: u64) -> u64 {
+    let (s0, t0) = anchor;
+    let dt = (sample as f64 - s0 as f64) * 1e9 / fs;
+    (t0 as f64 + dt).max(0.0) as u64
 }
 
 /// Running worker threads. Dropping them stops and joins them (as

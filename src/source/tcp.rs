@@ -3,10 +3,17 @@
 //! one refused or replacing the first as configured). Each is one tokio
 //! task that owns its [`FrameSink`]; it logs every change of link state
 //! once, and counts what it rejects.
+//!
+//! A connection that delivers no byte for the source's `idle_timeout_s` is
+//! closed and counted (`rejected{reason="idle_timeout"}`): a DAQ box streams
+//! continuously, so silence means a dead or half-open peer, and with
+//! `tcp-listen` the slot is free again for the box's next connection. TCP
+//! keepalive probes (after 5 s idle, every 2 s, 3 tries) detect a vanished
+//! peer at the socket level as well.
 
 use std::net::SocketAddr;
 use std::sync::atomic::Ordering;
-use std::time::Duration;
+use std::time::{Duration, Instant};
 
 use tokio::io::{AsyncRead, AsyncReadExt};
 use tokio::net::{TcpListener, TcpStream};
@@ -56,20 +63,38 @@ enum Ended {
     Shutdown,
     Closed,
     Error(std::io::Error),
+    /// No byte for the idle timeout.
+    Idle,
 }
 
-/// Reads `io` into the framing until EOF, error or shutdown.
+/// Keepalive probes on a DAQ connection, so that a peer that vanished
+/// without a FIN (power loss, cable pulled) is found by the kernel too.
+fn keepalive(s: &TcpStream) {
+    let ka = socket2::TcpKeepalive::new()
+        .with_time(Duration::from_secs(5))
+        .with_interval(Duration::from_secs(2));
+    #[cfg(any(target_os = "linux", target_os = "macos", target_os = "freebsd"))]
+    let ka = ka.with_retries(3);
+    if let Err(e) = socket2::SockRef::from(s).set_tcp_keepalive(&ka) {
+        tracing::debug!(error = %e, "cannot set TCP keepalive");
+    }
+}
+
+/// Reads `io` into the framing until EOF, error, `idle` without a byte,
+/// or shutdown.
 async fn read_stream<R: AsyncRead + Unpin>(
     io: &mut R,
     framing: &mut StreamFraming,
     sink: &mut FrameSink,
     buf: &mut [u8],
     shutdown: &mut Shutdown,
+    idle: Duration,
 ) -> Ended {
     loop {
         let n = tokio::select! {
             r = io.read(buf) => r,
             _ = shutdown.recv() => return Ended::Shutdown,
+            _ = sleep(idle) => return Ended::Idle,
         };
         match n {
             Ok(0) => return Ended::Closed,
@@ -95,19 +120,21 @@ pub async fn run_connect(ctx: SourceContext) {
         address,
         stream,
         backoff,
+        idle_timeout,
     } = spec.kind
     else {
         tracing::error!(source = %spec.name, kind = spec.kind.as_str(), "not a tcp-connect source");
         return;
     };
     let sink = FrameSink::new(outputs, counters, spec.sample_rate_hz);
-    connect(&address, &stream, backoff, sink, shutdown).await;
+    connect(&address, &stream, backoff, idle_timeout, sink, shutdown).await;
 }
 
 async fn connect(
     address: &str,
     stream: &StreamSpec,
     backoff: Backoff,
+    idle: Duration,
     mut sink: FrameSink,
     mut shutdown: Shutdown,
 ) {
@@ -129,6 +156,7 @@ async fn connect(
         match attempt {
             Ok(mut s) => {
                 let _ = s.set_nodelay(true);
+                keepalive(&s);
                 let peer = s
                     .peer_addr()
                     .map_or_else(|_| address.to_string(), |a| a.to_string());
@@ -138,8 +166,15 @@ async fn connect(
                 sink.state.connections.fetch_add(1, Ordering::Relaxed);
                 sink.restart();
                 sink.set_connected(true);
-                let ended =
-                    read_stream(&mut s, &mut framing, &mut sink, &mut buf, &mut shutdown).await;
+                let ended = read_stream(
+                    &mut s,
+                    &mut framing,
+                    &mut sink,
+                    &mut buf,
+                    &mut shutdown,
+                    idle,
+                )
+                .await;
                 sink.set_connected(false);
                 framing.reset(&mut sink);
                 sink.out
@@ -151,6 +186,10 @@ async fn connect(
                     }
                     Ended::Error(e) => {
                         tracing::warn!(source = %sink.state.name, %peer, error = %e, "connection lost; reconnecting")
+                    }
+                    Ended::Idle => {
+                        let msg = format!("no byte from {peer} for {idle:?}; closed, reconnecting");
+                        sink.reject("idle_timeout", &msg);
                     }
                 }
             }
@@ -181,19 +220,40 @@ pub async fn run_listen(ctx: SourceContext) {
         listen,
         stream,
         on_second_connection,
+        replace_after_silent,
+        idle_timeout,
     } = spec.kind
     else {
         tracing::error!(source = %spec.name, kind = spec.kind.as_str(), "not a tcp-listen source");
         return;
     };
     let sink = FrameSink::new(outputs, counters, spec.sample_rate_hz);
-    accept(listen, &stream, on_second_connection, sink, shutdown).await;
+    let policy = ListenPolicy {
+        second: on_second_connection,
+        replace_after_silent,
+        idle: idle_timeout,
+    };
+    accept(listen, &stream, policy, sink, shutdown).await;
+}
+
+/// How `tcp-listen` treats its connections.
+struct ListenPolicy {
+    second: SecondConnection,
+    replace_after_silent: Duration,
+    idle: Duration,
+}
+
+/// The connection being read, and when its last byte came.
+struct Active {
+    stream: TcpStream,
+    peer: SocketAddr,
+    last_byte: Instant,
 }
 
 async fn accept(
     listen: SocketAddr,
     stream: &StreamSpec,
-    policy: SecondConnection,
+    policy: ListenPolicy,
     mut sink: FrameSink,
     mut shutdown: Shutdown,
 ) {
@@ -219,10 +279,11 @@ async fn accept(
         }
     };
     let mut buf = vec![0u8; READ_BUF];
-    let mut active: Option<(TcpStream, SocketAddr)> = None;
+    let mut active: Option<Active> = None;
     enum Event {
         Accepted(std::io::Result<(TcpStream, SocketAddr)>),
         Read(std::io::Result<usize>),
+        Idle,
     }
     loop {
         let event = match active.as_mut() {
@@ -230,26 +291,37 @@ async fn accept(
                 a = listener.accept() => Event::Accepted(a),
                 _ = shutdown.recv() => return,
             },
-            Some((s, _)) => tokio::select! {
-                a = listener.accept() => Event::Accepted(a),
-                r = s.read(&mut buf) => Event::Read(r),
-                _ = shutdown.recv() => return,
-            },
+            Some(a) => {
+                let deadline = a.last_byte + policy.idle;
+                tokio::select! {
+                    r = a.stream.read(&mut buf) => Event::Read(r),
+                    c = listener.accept() => Event::Accepted(c),
+                    _ = tokio::time::sleep_until(deadline.into()) => Event::Idle,
+                    _ = shutdown.recv() => return,
+                }
+            }
         };
         let accepted = match event {
             Event::Read(Ok(n)) if n > 0 => {
+                if let Some(a) = active.as_mut() {
+                    a.last_byte = Instant::now();
+                }
                 sink.state.bytes.fetch_add(n as u64, Ordering::Relaxed);
                 framing.feed(&buf[..n], &mut sink);
                 sink.out.wake();
                 continue;
             }
-            Event::Read(r) => {
-                let peer = active.take().map(|(_, p)| p);
-                match r {
-                    Err(e) => {
+            Event::Read(_) | Event::Idle => {
+                let peer = active.take().map(|a| a.peer);
+                match event {
+                    Event::Read(Err(e)) => {
                         tracing::warn!(source = %sink.state.name, ?peer, error = %e, "connection lost")
                     }
-                    Ok(_) => {
+                    Event::Idle => {
+                        let msg = format!("no byte from {peer:?} for {:?}; closed", policy.idle);
+                        sink.reject("idle_timeout", &msg);
+                    }
+                    _ => {
                         tracing::warn!(source = %sink.state.name, ?peer, "connection closed by the peer")
                     }
                 }
@@ -271,29 +343,37 @@ async fn accept(
                 }
             }
             Ok((s, peer)) => {
-                if let Some((_, old)) = &active {
-                    match policy {
-                        SecondConnection::Refuse => {
-                            let msg = format!(
-                                "second connection from {peer} refused while {old} is active"
-                            );
-                            sink.reject("second_connection", &msg);
-                            drop(s);
-                            continue;
-                        }
-                        SecondConnection::Replace => {
-                            tracing::warn!(source = %sink.state.name, %peer, old = %old, "second connection replaces the active one");
-                            framing.reset(&mut sink);
-                        }
+                if let Some(a) = &active {
+                    let silent = a.last_byte.elapsed();
+                    let replace = match policy.second {
+                        SecondConnection::Refuse => false,
+                        SecondConnection::Replace => true,
+                        SecondConnection::ReplaceSilent => silent >= policy.replace_after_silent,
+                    };
+                    let old = a.peer;
+                    if !replace {
+                        let msg = format!(
+                            "second connection from {peer} refused while {old} is active (last byte {silent:?} ago)"
+                        );
+                        sink.reject("second_connection", &msg);
+                        drop(s);
+                        continue;
                     }
+                    tracing::warn!(source = %sink.state.name, %peer, old = %old, silent_ms = silent.as_millis() as u64, "second connection replaces the active one");
+                    framing.reset(&mut sink);
                 } else {
                     tracing::info!(source = %sink.state.name, %peer, "DAQ connected");
                 }
                 let _ = s.set_nodelay(true);
+                keepalive(&s);
                 sink.state.connections.fetch_add(1, Ordering::Relaxed);
                 sink.restart();
                 sink.set_connected(true);
-                active = Some((s, peer));
+                active = Some(Active {
+                    stream: s,
+                    peer,
+                    last_byte: Instant::now(),
+                });
             }
         }
     }

@@ -120,11 +120,18 @@ impl std::fmt::Display for Rejections {
 pub struct ReplayLine {
     pub channel: String,
     pub seq: u64,
+    /// Stream index of the newest block's first sample.
     pub first_sample: u64,
+    /// Stream index of the oldest averaged block's first sample.
+    #[serde(default)]
+    pub oldest_first_sample: u64,
     pub averages: u32,
     /// Band values in each band's unit, in config order; null when the band
     /// has no value (e.g. an order band while the speed is unknown).
     pub bands: Vec<(String, Option<f64>)>,
+    /// Running speed the order bands used, Hz (null: unknown or no machine).
+    #[serde(default)]
+    pub speed_hz: Option<f64>,
     pub rms: f64,
     pub peak: f64,
     pub crest_factor: f64,
@@ -205,23 +212,40 @@ impl<'a> Run<'a> {
         })
     }
 
-    /// Runs the DSP over what the rings hold and writes each result.
+    /// Runs the DSP over what the rings hold and writes each result, until
+    /// no channel has work left (a channel waiting for its machine's speed,
+    /// measured by another channel, goes on once that one was polled).
     fn drain(&mut self) -> Result<(), ReplayError> {
-        for (i, (dsp, seq)) in self
-            .pipeline
-            .channels
-            .iter_mut()
-            .zip(self.seqs.iter_mut())
-            .enumerate()
-        {
-            while dsp.poll() {
-                let watch = self.watch.filter(|(c, _)| *c == i).map(|(_, s)| s);
-                if let Some(k) = emit(dsp, seq, &mut *self.out, watch)? {
-                    self.kept = Some(k);
+        loop {
+            let mut worked = false;
+            for (i, (dsp, seq)) in self
+                .pipeline
+                .channels
+                .iter_mut()
+                .zip(self.seqs.iter_mut())
+                .enumerate()
+            {
+                while dsp.poll() {
+                    worked = true;
+                    let watch = self.watch.filter(|(c, _)| *c == i).map(|(_, s)| s);
+                    if let Some(k) = emit(dsp, seq, &mut *self.out, watch)? {
+                        self.kept = Some(k);
+                    }
                 }
             }
+            if !worked {
+                return Ok(());
+            }
         }
-        Ok(())
+    }
+
+    /// End of input: no more speed measurements will come, so a channel
+    /// waiting for its machine's speed goes on (README "Orders").
+    fn end_of_input(&mut self) -> Result<(), ReplayError> {
+        for m in &self.pipeline.state.machines {
+            m.close();
+        }
+        self.drain()
     }
 
     /// Ends the replay: fails if no frame was accepted.
@@ -295,7 +319,7 @@ pub fn replay(
         framing.feed(&buf[..n], &mut run.sink);
         run.drain()?;
     }
-    run.drain()?;
+    run.end_of_input()?;
     Ok(run.finish(spec.channels)?.0)
 }
 
@@ -500,11 +524,14 @@ fn capture_config(spec: ChannelSpec, speed_hz: Option<f64>) -> Config {
                 max_frame_bytes: 16 << 20,
             },
             on_second_connection: SecondConnection::Refuse,
+            replace_after_silent: std::time::Duration::from_secs(10),
+            idle_timeout: std::time::Duration::from_secs(60),
         },
     };
     Config {
         alarms: None,
         listen: std::net::SocketAddr::from(([127, 0, 0, 1], 0)),
+        http: crate::config::HttpLimits::default(),
         workers: 1,
         ring_seconds: 2.0,
         sources: vec![source],
@@ -658,7 +685,7 @@ pub fn replay_capture(
     run.state
         .bytes_skipped
         .fetch_add(decoder.stats().bytes_skipped, Ordering::Relaxed);
-    run.drain()?;
+    run.end_of_input()?;
     let (counters, kept) = run.finish(1)?;
     let mut problem = None;
     let check = match (&meta.spectrum, kept) {
@@ -735,6 +762,7 @@ fn emit(
         channel: shared.spec.name.clone(),
         seq: snap.seq,
         first_sample: snap.first_sample,
+        oldest_first_sample: snap.oldest_first_sample,
         averages: snap.averages,
         bands: shared
             .spec
@@ -743,6 +771,7 @@ fn emit(
             .zip(&snap.bands)
             .map(|(b, v)| (b.name.clone(), v.is_ok().then_some(v.value)))
             .collect(),
+        speed_hz: snap.speed_hz,
         rms: snap.overall.rms,
         peak: snap.overall.peak,
         crest_factor: snap.overall.crest_factor,

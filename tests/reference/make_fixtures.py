@@ -353,12 +353,96 @@ def fft_fixture():
     return doc
 
 
+GAP_AT = 4584  # first sample after the gap (tests/reference_gaps.rs)
+GAP_BLOCK = 1024
+GAP_HOP = 512
+GAP_COUNT = 4
+
+
+def gap_fixture():
+    """gap_resets.json: what a channel must publish after a discontinuity.
+
+    One record of 8192 float32 samples (pump-like tones in noise, stream
+    200). The Rust test breaks it at GAP_AT for each discontinuity reason
+    and feeds only samples[GAP_AT:] after the break; the spectra here are
+    of those post-gap samples alone:
+
+    - linear (and exponential after COUNT blocks, which weighs every block
+      1/n while n <= COUNT, so it is the same mean): scipy.signal.welch of
+      the first COUNT post-gap blocks, average 'mean';
+    - peak_hold: the per-line maximum (numpy) over the same blocks'
+      spectra from scipy.signal.spectrogram (mode 'psd', scaling
+      'spectrum': each segment as welch scales it);
+    - exponential_6: the exponential average after 6 post-gap blocks,
+      P = P + (P_n - P)/min(n, COUNT), computed in float64 by numpy on the
+      spectrogram's per-block spectra (the rule in the README, "Averaging").
+    """
+    rng = rng_for(200)
+    n = 8192
+    t = np.arange(n) / FS
+
+    def tone(a, f, phase=0.0):
+        return a * np.cos(2 * np.pi * f * t + phase)
+
+    # Pump P2's 1x and 2x (24.75 Hz), a vane-pass-like 7x, a bearing-band
+    # tone, in noise (the demo's scenario, README).
+    x = (
+        tone(0.8, 24.75)
+        + tone(0.3, 49.5, 0.4)
+        + tone(0.5, 173.25, 1.1)
+        + tone(0.2, 3125.0, 2.0)
+        + rng.normal(0.0, 0.05, n)
+    )
+    x32 = np.asarray(x, dtype=np.float32)
+    win = get_window("hann", GAP_BLOCK)
+    common = dict(
+        fs=FS,
+        window=win,
+        nperseg=GAP_BLOCK,
+        noverlap=GAP_BLOCK - GAP_HOP,
+        nfft=GAP_BLOCK,
+        detrend="constant",
+        return_onesided=True,
+        scaling="spectrum",
+    )
+    span4 = GAP_BLOCK + (GAP_COUNT - 1) * GAP_HOP
+    span6 = GAP_BLOCK + 5 * GAP_HOP
+    post4 = x32[GAP_AT : GAP_AT + span4].astype(np.float64)
+    post6 = x32[GAP_AT : GAP_AT + span6].astype(np.float64)
+    _, linear = scipy.signal.welch(post4, average="mean", **common)
+    _, _, per4 = scipy.signal.spectrogram(post4, mode="psd", **common)
+    _, _, per6 = scipy.signal.spectrogram(post6, mode="psd", **common)
+    assert per4.shape[1] == GAP_COUNT and per6.shape[1] == 6
+    assert np.allclose(per4.mean(axis=1), linear, rtol=1e-12, atol=0)
+    exp = np.zeros_like(per6[:, 0])
+    for i in range(per6.shape[1]):
+        exp += (per6[:, i] - exp) / min(i + 1, GAP_COUNT)
+    doc = header("spectra of post-gap samples only (scipy.signal.welch, spectrogram)")
+    doc.update(
+        {
+            "stream": 200,
+            "n_samples": n,
+            "samples_f32_hex": f32_hex(x32),
+            "window": "hann",
+            "block": GAP_BLOCK,
+            "hop": GAP_HOP,
+            "count": GAP_COUNT,
+            "gap_at": GAP_AT,
+            "linear": nums(linear),
+            "peak_hold": nums(per4.max(axis=1)),
+            "exponential_6": nums(exp),
+        }
+    )
+    return doc
+
+
 def main():
     here = os.path.dirname(os.path.abspath(__file__))
     out_dir = sys.argv[1] if len(sys.argv) > 1 else os.path.join(here, "fixtures")
     os.makedirs(out_dir, exist_ok=True)
     write(out_dir, "windows.json", windows_fixture())
     write(out_dir, "fft_roundtrip.json", fft_fixture())
+    write(out_dir, "gap_resets.json", gap_fixture())
     for name, stream, description, x in signals():
         x32 = np.asarray(x, dtype=np.float32)
         x64 = x32.astype(np.float64)

@@ -16,16 +16,18 @@ mod machines;
 mod sources;
 
 use std::net::SocketAddr;
+use std::time::Duration;
 
 use crate::config::alarms::{AlarmsSpec, RawAlarms};
 use crate::config::issue::{ConfigIssue, Issues};
 use crate::config::raw::{RawConfig, RawDsp, RawServer};
-use crate::config::spec::{ChannelSpec, Config};
+use crate::config::spec::{ChannelSpec, Config, HttpLimits};
 
 /// Checks every rule and returns the typed config, or every problem found.
 pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
     let mut issues = Issues::default();
     let listen = check_server(&mut issues, &raw.server);
+    let http = check_http_limits(&mut issues, &raw.server);
     let workers = check_dsp(&mut issues, &raw.dsp);
     let sources = sources::check_sources(&mut issues, &raw.sources);
     let channels = channels::check_channels(&mut issues, raw, &sources);
@@ -36,6 +38,7 @@ pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
         (true, Some(listen)) => Ok(Config {
             alarms,
             listen,
+            http,
             workers,
             ring_seconds: raw.dsp.ring_seconds,
             sources,
@@ -60,6 +63,26 @@ fn check_server(issues: &mut Issues, raw: &RawServer) -> Option<SocketAddr> {
             );
             None
         }
+    }
+}
+
+/// `[server]`: the HTTP server's connection cap and timeouts.
+fn check_http_limits(issues: &mut Issues, raw: &RawServer) -> HttpLimits {
+    if !(1..=65_536).contains(&raw.max_connections) {
+        issues.add(
+            "server.max_connections",
+            format!("{} is out of range 1 to 65536", raw.max_connections),
+        );
+    }
+    let mut seconds = |key: &str, v: f64| {
+        issues.check_range(format!("server.{key}"), v, 0.1, 86_400.0);
+        Duration::try_from_secs_f64(v).unwrap_or(Duration::from_secs(1))
+    };
+    HttpLimits {
+        max_connections: raw.max_connections,
+        header_timeout: seconds("header_timeout_s", raw.header_timeout_s),
+        idle_timeout: seconds("idle_timeout_s", raw.idle_timeout_s),
+        request_timeout: seconds("request_timeout_s", raw.request_timeout_s),
     }
 }
 

@@ -76,8 +76,10 @@ fn check_source(issues: &mut Issues, path: &str, s: &RawSource) -> SourceSpec {
             max_frame_bytes,
             reconnect_min_ms,
             reconnect_max_ms,
+            idle_timeout_s,
         } => {
             let backoff = check_dial(issues, path, address, *reconnect_min_ms, *reconnect_max_ms);
+            let idle_timeout = seconds(issues, &format!("{path}.idle_timeout_s"), *idle_timeout_s);
             let stream = check_stream(
                 issues,
                 path,
@@ -94,6 +96,7 @@ fn check_source(issues: &mut Issues, path: &str, s: &RawSource) -> SourceSpec {
                     address: address.clone(),
                     stream,
                     backoff,
+                    idle_timeout,
                 },
             }
         }
@@ -106,8 +109,16 @@ fn check_source(issues: &mut Issues, path: &str, s: &RawSource) -> SourceSpec {
             sample_format,
             max_frame_bytes,
             on_second_connection,
+            replace_after_silent_s,
+            idle_timeout_s,
         } => {
             let addr = socket_addr(issues, &format!("{path}.listen"), listen);
+            let idle_timeout = seconds(issues, &format!("{path}.idle_timeout_s"), *idle_timeout_s);
+            let replace_after_silent = seconds(
+                issues,
+                &format!("{path}.replace_after_silent_s"),
+                *replace_after_silent_s,
+            );
             let stream = check_stream(
                 issues,
                 path,
@@ -124,6 +135,8 @@ fn check_source(issues: &mut Issues, path: &str, s: &RawSource) -> SourceSpec {
                     listen: addr,
                     stream,
                     on_second_connection: *on_second_connection,
+                    replace_after_silent,
+                    idle_timeout,
                 },
             }
         }
@@ -333,6 +346,12 @@ fn check_stream(
         framing,
         max_frame_bytes,
     }
+}
+
+/// A duration in seconds, 0.1 s to one day.
+fn seconds(issues: &mut Issues, path: &str, v: f64) -> std::time::Duration {
+    issues.check_range(path.to_string(), v, 0.1, 86_400.0);
+    std::time::Duration::try_from_secs_f64(v).unwrap_or(std::time::Duration::from_secs(1))
 }
 
 #[cfg(test)]

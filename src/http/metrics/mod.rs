@@ -44,13 +44,16 @@ use std::time::{Duration, Instant};
 
 use axum::body::Bytes;
 use axum::http::StatusCode;
-use prometheus::{Encoder, Gauge, IntCounterVec, IntGaugeVec, Opts, Registry, TextEncoder};
+use prometheus::{
+    Encoder, Gauge, IntCounter, IntCounterVec, IntGauge, IntGaugeVec, Opts, Registry, TextEncoder,
+};
 
 #[cfg(test)]
 pub(crate) use families::fixed_order;
 pub use text::{push_escaped, push_value, PipelineCollector};
 
 use crate::clock::unix_now_ns;
+use crate::http::server::CloseReason;
 use crate::pipeline::state::AppState;
 
 /// Content type of the text exposition format.
@@ -84,6 +87,7 @@ pub struct Metrics {
     /// `None` only if the prometheus crate refused its constant options.
     http_requests: Option<IntCounterVec>,
     collector: PipelineCollector,
+    connections: ConnectionMetrics,
     max_age: Duration,
     mono: MonoClock,
     cache: Mutex<Option<Cached>>,
@@ -156,15 +160,22 @@ impl Metrics {
             g.set(app.started_unix_ns as f64 * 1e-9);
             register(&registry, Box::new(g));
         }
+        let connections = ConnectionMetrics::register(&registry);
         Metrics {
             registry,
             http_requests,
+            connections,
             collector: PipelineCollector::new(app, clock),
             max_age,
             mono,
             cache: Mutex::new(None),
             rendering: Mutex::new(()),
         }
+    }
+
+    /// The connection series the accept loop updates.
+    pub fn connections(&self) -> ConnectionMetrics {
+        self.connections.clone()
     }
 
     /// Counts one answered request under its route template.
@@ -220,6 +231,80 @@ impl Metrics {
             statics.push((f.name().to_string(), text));
         }
         Ok(self.collector.encode(&statics))
+    }
+}
+
+/// The HTTP server's connection series (`http::server`). Cheap to clone:
+/// every field is a shared counter.
+#[derive(Clone)]
+pub struct ConnectionMetrics {
+    pub open: IntGauge,
+    pub refused: IntCounter,
+    pub accept_errors: IntCounter,
+    closed: IntCounterVec,
+}
+
+impl ConnectionMetrics {
+    /// Creates and registers the series. The names are constants, so the
+    /// prometheus crate cannot refuse them; if it ever did, the series are
+    /// still counted but not exported, and the error is logged.
+    pub(crate) fn register(registry: &Registry) -> ConnectionMetrics {
+        let m = ConnectionMetrics {
+            open: IntGauge::new(
+                "bandwatch_http_connections_open",
+                "HTTP connections open now.",
+            )
+            .unwrap_or_else(|e| unregistered(e, |n, h| IntGauge::new(n, h))),
+            refused: IntCounter::new(
+                "bandwatch_http_connections_refused_total",
+                "HTTP connections closed at accept because server.max_connections were open.",
+            )
+            .unwrap_or_else(|e| unregistered(e, |n, h| IntCounter::new(n, h))),
+            accept_errors: IntCounter::new(
+                "bandwatch_http_accept_errors_total",
+                "Failed accepts of HTTP connections (e.g. no file descriptor left).",
+            )
+            .unwrap_or_else(|e| unregistered(e, |n, h| IntCounter::new(n, h))),
+            closed: IntCounterVec::new(
+                Opts::new(
+                    "bandwatch_http_connections_closed_total",
+                    "HTTP connections the server closed for a limit, by reason.",
+                ),
+                &["reason"],
+            )
+            .unwrap_or_else(|e| {
+                unregistered(e, |n, h| IntCounterVec::new(Opts::new(n, h), &["reason"]))
+            }),
+        };
+        for r in CloseReason::ALL {
+            m.closed.with_label_values(&[r.as_str()]);
+        }
+        register(registry, Box::new(m.open.clone()));
+        register(registry, Box::new(m.refused.clone()));
+        register(registry, Box::new(m.accept_errors.clone()));
+        register(registry, Box::new(m.closed.clone()));
+        m
+    }
+
+    /// Counts a connection the server closed for `reason`.
+    pub fn closed(&self, reason: CloseReason) {
+        self.closed.with_label_values(&[reason.as_str()]).inc();
+    }
+
+    /// Connections closed for `reason` so far.
+    pub fn closed_count(&self, reason: CloseReason) -> u64 {
+        self.closed.with_label_values(&[reason.as_str()]).get()
+    }
+}
+
+/// A metric under a placeholder name after the crate refused the real one
+/// (a programming error, logged); a second refusal is impossible for this
+/// fixed, valid name.
+fn unregistered<T>(e: prometheus::Error, make: impl Fn(&str, &str) -> prometheus::Result<T>) -> T {
+    tracing::error!(error = %e, "cannot create an HTTP connection metric");
+    match make("bandwatch_unregistered", "placeholder") {
+        Ok(m) => m,
+        Err(e) => panic!("the prometheus crate refused a fixed valid name: {e}"),
     }
 }
 

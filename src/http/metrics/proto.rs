@@ -40,6 +40,9 @@ pub fn render(app: Arc<AppState>, clock: fn() -> u64) -> Vec<u8> {
     .expect("start time");
     start_time.set(app.started_unix_ns as f64 * 1e-9);
     registry.register(Box::new(start_time)).expect("register");
+    // The HTTP server's connection series are static ones too, encoded
+    // by the crate on both sides.
+    let _connections = super::ConnectionMetrics::register(&registry);
     registry
         .register(Box::new(ProtoCollector::new(app, clock)))
         .expect("register");

@@ -134,6 +134,8 @@ async fn channel_detail_has_bands_overall_counters() {
     assert_eq!(k["blocks"], 6);
     assert_eq!(k["spectra"], 1);
     assert_eq!(v["spectrum"]["timestamp"], "2023-11-14T22:13:20.123456789Z");
+    assert_eq!(v["spectrum"]["oldest_first_sample"], 3712);
+    assert_eq!(v["spectrum"]["end_sample"], 4096 + 256);
 }
 
 #[tokio::test]
@@ -192,6 +194,9 @@ async fn spectrum_default_is_rms_with_metadata() {
     assert!(close(f(&v["enbw_hz"]), 150.0, 1e-6), "{}", v["enbw_hz"]);
     assert_eq!(v["averages"], 4);
     assert_eq!(v["first_sample"], 4096);
+    // The samples covered: the oldest block's start to the newest's end.
+    assert_eq!(v["oldest_first_sample"], 3712);
+    assert_eq!(v["end_sample"], 4096 + 256);
     assert_eq!(v["timestamp"], "2023-11-14T22:13:20.123456789Z");
     assert_eq!(f(&v["f0_hz"]), 0.0);
     let values = v["values"].as_array().expect("values");

@@ -69,6 +69,8 @@ fn snapshot(published_unix_ns: u64) -> ChannelSnapshot {
         seq: 7,
         published_unix_ns,
         first_sample: 4096,
+        // Four blocks of 256 at hop 128 (overlap 0.5): 3712 .. 4352.
+        oldest_first_sample: 3712,
         timestamp_ns: TS_NS,
         averages: 4,
         power,
