@@ -89,12 +89,18 @@ enum Command {
         #[arg(long)]
         seconds: Option<f64>,
     },
-    /// Run a recorded stream through the pipeline as fast as possible and
-    /// print one JSON line per spectrum.
+    /// Run a recorded stream, or an alarm capture, through the pipeline as
+    /// fast as possible and print one JSON line per spectrum. A capture
+    /// (its .json or .bwf1) needs no config: its trip spectrum and band
+    /// values are recomputed and compared. Exits non-zero when no frame
+    /// was accepted.
     Replay {
+        /// A recording, or a capture's .json or .bwf1.
         file: PathBuf,
+        /// The config of the source that received the recording; for a
+        /// capture only if it was written without its channel settings.
         #[arg(long)]
-        config: PathBuf,
+        config: Option<PathBuf>,
         /// Source of the config the file feeds (default: the first network or serial one).
         #[arg(long)]
         source: Option<String>,
@@ -236,7 +242,7 @@ fn main() -> ExitCode {
             config,
             source,
         } => {
-            let cfg = match bandwatch::config::load(&config) {
+            let cfg = match config.as_deref().map(bandwatch::config::load).transpose() {
                 Ok(c) => c,
                 Err(e) => {
                     eprintln!("{e}");
@@ -245,6 +251,40 @@ fn main() -> ExitCode {
             };
             let stdout = std::io::stdout();
             let mut lock = std::io::BufWriter::new(stdout.lock());
+            if bandwatch::tools::replay::is_capture(&file) {
+                return match bandwatch::tools::replay::replay_capture(
+                    &file,
+                    cfg.as_ref(),
+                    &mut lock,
+                ) {
+                    Ok(r) => {
+                        tracing::info!(
+                            capture = %r.meta.id,
+                            from_sample = r.from_sample,
+                            frames = bandwatch::counters::SourceCounters::get(&r.counters.frames),
+                            "replay done"
+                        );
+                        if let Some(c) = &r.check {
+                            eprintln!("replay: {c}");
+                        }
+                        if let Some(p) = &r.problem {
+                            eprintln!("replay: {p}");
+                        }
+                        ExitCode::SUCCESS
+                    }
+                    Err(e) => {
+                        eprintln!("replay: {e}");
+                        ExitCode::FAILURE
+                    }
+                };
+            }
+            let Some(cfg) = cfg else {
+                eprintln!(
+                    "replay: {} is not an alarm capture; a recording needs --config",
+                    file.display()
+                );
+                return ExitCode::from(2);
+            };
             match bandwatch::tools::replay::replay(&cfg, &file, source.as_deref(), &mut lock) {
                 Ok(state) => {
                     let rejected = state.rejected();

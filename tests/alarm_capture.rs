@@ -119,6 +119,8 @@ fn capture_round_trips_through_bwf1_and_json() {
         nfft: 8,
         averages: 4,
         first_sample: 0,
+        oldest_first_sample: None,
+        end_sample: None,
         values: vec![0.0, 1.0, 0.5, 0.25, 0.0],
     };
     let mut b = CaptureBuilder::start(
@@ -505,4 +507,29 @@ fn sigkill_while_writing_leaves_latch_journal_and_no_half_capture() {
             "round {round}"
         );
     }
+}
+
+#[test]
+fn history_covers_the_blocks_of_the_trip_average() {
+    use bandwatch::alarm::capture::{history_blocks, span_samples};
+    use bandwatch::config::AveragingMode;
+    assert_eq!(history_blocks(AveragingMode::None, 4), 1);
+    assert_eq!(history_blocks(AveragingMode::Linear, 4), 4);
+    assert_eq!(history_blocks(AveragingMode::PeakHold, 7), 7);
+    assert_eq!(history_blocks(AveragingMode::Exponential, 1), 1);
+    // Exponential: the smallest K with (1 - 1/count)^K < 2^-24, the f32
+    // resolution (IEEE 754 binary32: 24-bit significand).
+    for count in [2u32, 4, 10, 100] {
+        let k = history_blocks(AveragingMode::Exponential, count);
+        let w = |k: usize| (1.0 - 1.0 / f64::from(count)).powi(k as i32);
+        assert!(w(k) < 2f64.powi(-24), "count {count}: K {k}");
+        assert!(
+            w(k - 1) >= 2f64.powi(-24),
+            "count {count}: K {k} is not the smallest"
+        );
+    }
+    assert_eq!(history_blocks(AveragingMode::Exponential, 4), 58);
+    // Block 8192, hop 2048 (overlap 0.75), linear 4: 8192 + 3·2048.
+    assert_eq!(span_samples(8192, 2048, 4), 14_336);
+    assert_eq!(span_samples(8192, 2048, 1), 8192);
 }

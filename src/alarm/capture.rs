@@ -46,11 +46,20 @@ use serde::{Deserialize, Serialize};
 use super::fsutil::{fsync_dir, write_synced, TEMP_SUFFIX};
 use super::journal::{rfc3339, EventLimits};
 pub use crate::config::alarms::Retention;
+use crate::config::bearing::Defect;
+use crate::config::health::HealthSpec;
+use crate::config::{
+    AveragingMode, BandEdges, BandSpec, ChannelSpec, Detrend, Measure, SpectrumKind, WindowKind,
+};
 use crate::frame::bwf1::{encode_into, Header};
 use crate::frame::{SampleFormat, SampleSlice};
+use crate::units::Unit;
 
 /// Samples per BWF1 frame in a capture file.
 pub const FRAME_SAMPLES: usize = 8192;
+
+/// Version of the `<id>.json` this build writes.
+pub const META_VERSION: u32 = 2;
 
 /// Longest capture id accepted.
 pub const MAX_ID_LEN: usize = 200;
@@ -175,7 +184,281 @@ pub struct SpectrumAtTrip {
     pub averages: u32,
     /// Stream index of the newest block in the average.
     pub first_sample: u64,
+    /// Stream index of the oldest block's first sample: the average covers
+    /// samples `oldest_first_sample .. end_sample`. Absent in captures
+    /// written before it was recorded.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub oldest_first_sample: Option<u64>,
+    /// One past the newest block's last sample.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub end_sample: Option<u64>,
     pub values: Vec<f32>,
+}
+
+/// The channel settings a capture was taken with: everything `bandwatch
+/// replay` needs to recompute the spectrum and band values stored with it
+/// without the config (README, "Captures"). Values are those the channel
+/// ran with (validated config), in the config's vocabulary.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct CaptureSettings {
+    pub block: usize,
+    pub nfft: usize,
+    /// Samples between the starts of consecutive blocks.
+    pub hop: usize,
+    pub overlap: f64,
+    pub window: WindowKind,
+    pub detrend: Detrend,
+    pub averaging: AveragingMode,
+    pub average_count: u32,
+    pub integration_low_cut_hz: f64,
+    /// Envelope band-pass `[lo_hz, hi_hz]`, if the channel has one.
+    pub envelope: Option<[f64; 2]>,
+    /// The machine whose speed the order bands follow.
+    pub machine: Option<String>,
+    /// Running speed used for the order bands at the trip, Hz (None: no
+    /// machine, or its speed was unknown).
+    pub speed_hz: Option<f64>,
+    pub bands: Vec<BandSettings>,
+}
+
+/// One band of [`CaptureSettings`].
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct BandSettings {
+    pub name: String,
+    /// Fixed edges `[lo_hz, hi_hz]`, or
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub hz: Option<[f64; 2]>,
+    /// windows in orders of running speed (several for bearing harmonics).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub orders: Vec<[f64; 2]>,
+    pub measure: Measure,
+    /// Unit of the band's value.
+    pub unit: String,
+    pub spectrum: SpectrumKind,
+    /// Bearing bands: which bearing and defect (shown, not computed).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub bearing: Option<String>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub defect: Option<Defect>,
+}
+
+/// Why stored [`CaptureSettings`] cannot describe a channel.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+#[error("capture settings field {field}: {message}")]
+pub struct SettingsError {
+    /// e.g. `settings.block`, `settings.bands[2].unit`.
+    pub field: String,
+    pub message: String,
+}
+
+/// Blocks whose samples a capture keeps before the trip so that the
+/// averaged spectrum at the trip can be recomputed from them (README,
+/// "Captures"): `none` 1, `linear` and `peak-hold` `count`; exponential
+/// averaging never forgets, so the history covers the K newest blocks
+/// with (1 − 1/count)^K < 2⁻²⁴ (f32 rounding): whatever came before weighs
+/// less than the last bit of an f32 in the average.
+pub fn history_blocks(mode: AveragingMode, count: u32) -> usize {
+    let count = count.max(1);
+    match mode {
+        AveragingMode::None => 1,
+        AveragingMode::Linear | AveragingMode::PeakHold => count as usize,
+        AveragingMode::Exponential if count == 1 => 1,
+        AveragingMode::Exponential => {
+            let k = (24.0 * std::f64::consts::LN_2) / -(1.0 - 1.0 / f64::from(count)).ln();
+            // The smallest K with w^K < 2⁻²⁴ strictly.
+            (k.floor() as usize + 1).max(count as usize)
+        }
+    }
+}
+
+/// Samples spanned by `blocks` consecutive blocks.
+pub fn span_samples(block: usize, hop: usize, blocks: usize) -> usize {
+    block + blocks.saturating_sub(1) * hop
+}
+
+impl CaptureSettings {
+    /// The settings of `spec` (the speed is filled in at the trip).
+    pub fn of(spec: &ChannelSpec) -> CaptureSettings {
+        CaptureSettings {
+            block: spec.block,
+            nfft: spec.nfft,
+            hop: spec.hop,
+            overlap: spec.overlap,
+            window: spec.window,
+            detrend: spec.detrend,
+            averaging: spec.averaging,
+            average_count: spec.average_count,
+            integration_low_cut_hz: spec.integration_low_cut_hz,
+            envelope: spec.envelope.map(|(lo, hi)| [lo, hi]),
+            machine: spec.machine.clone(),
+            speed_hz: None,
+            bands: spec
+                .bands
+                .iter()
+                .map(|b| {
+                    let (hz, orders) = match &b.edges {
+                        BandEdges::Hz { lo, hi } => (Some([*lo, *hi]), Vec::new()),
+                        BandEdges::Orders { windows } => {
+                            (None, windows.iter().map(|(l, h)| [*l, *h]).collect())
+                        }
+                    };
+                    BandSettings {
+                        name: b.name.clone(),
+                        hz,
+                        orders,
+                        measure: b.measure,
+                        unit: b.unit.symbol.to_string(),
+                        spectrum: b.spectrum,
+                        bearing: b.bearing.as_ref().map(|(n, _)| n.clone()),
+                        defect: b.bearing.as_ref().map(|(_, d)| *d),
+                    }
+                })
+                .collect(),
+        }
+    }
+
+    /// A channel spec with these settings: channel `name` at index 0 of
+    /// source `source`, samples already in `unit` (scale 1, offset 0), no
+    /// alarms, default health. Checks what the config checks would have
+    /// checked for these values, so a damaged file cannot make the DSP
+    /// misbehave.
+    ///
+    /// # Errors
+    /// [`SettingsError`] naming the first field at fault.
+    pub fn channel_spec(
+        &self,
+        name: &str,
+        source: &str,
+        unit: &str,
+        sample_rate_hz: f64,
+    ) -> Result<ChannelSpec, SettingsError> {
+        let bad = |field: &str, message: String| SettingsError {
+            field: field.to_string(),
+            message,
+        };
+        let unit = Unit::parse(unit)
+            .ok_or_else(|| bad("waveform.unit", format!("unknown unit {unit:?}")))?;
+        if !(sample_rate_hz.is_finite() && sample_rate_hz > 0.0) {
+            return Err(bad(
+                "waveform.sample_rate_hz",
+                format!("{sample_rate_hz} is not a positive rate"),
+            ));
+        }
+        if !(16..=1 << 20).contains(&self.block) {
+            return Err(bad(
+                "settings.block",
+                format!("{} is out of range 16 to 1048576", self.block),
+            ));
+        }
+        if self.nfft < self.block || self.nfft > 4 << 20 || !self.nfft.is_multiple_of(2) {
+            return Err(bad(
+                "settings.nfft",
+                format!(
+                    "{} must be even, >= block {} and <= {}",
+                    self.nfft,
+                    self.block,
+                    4 << 20
+                ),
+            ));
+        }
+        if !(1..=self.block).contains(&self.hop) {
+            return Err(bad(
+                "settings.hop",
+                format!("{} is out of range 1 to block {}", self.hop, self.block),
+            ));
+        }
+        if !(1..=100_000).contains(&self.average_count) {
+            return Err(bad(
+                "settings.average_count",
+                format!("{} is out of range 1 to 100000", self.average_count),
+            ));
+        }
+        let nyquist = sample_rate_hz / 2.0;
+        let in_range = |lo: f64, hi: f64| lo.is_finite() && hi.is_finite() && 0.0 <= lo && lo < hi;
+        if let Some([lo, hi]) = self.envelope {
+            if !(in_range(lo, hi) && hi <= nyquist) {
+                return Err(bad(
+                    "settings.envelope",
+                    format!("[{lo}, {hi}] is not a band below Nyquist {nyquist} Hz"),
+                ));
+            }
+        }
+        if !(self.integration_low_cut_hz.is_finite() && self.integration_low_cut_hz >= 0.0) {
+            return Err(bad(
+                "settings.integration_low_cut_hz",
+                format!("{} is not a frequency", self.integration_low_cut_hz),
+            ));
+        }
+        let mut bands = Vec::with_capacity(self.bands.len());
+        for (i, b) in self.bands.iter().enumerate() {
+            let field = |k: &str| format!("settings.bands[{i}].{k}");
+            let band_unit = Unit::parse(&b.unit)
+                .ok_or_else(|| bad(&field("unit"), format!("unknown unit {:?}", b.unit)))?;
+            if !crate::units::convertible(unit, band_unit) {
+                return Err(bad(
+                    &field("unit"),
+                    format!("{} cannot be computed from {}", b.unit, unit.symbol),
+                ));
+            }
+            let edges = match (b.hz, b.orders.is_empty()) {
+                (Some([lo, hi]), true) if in_range(lo, hi) => BandEdges::Hz { lo, hi },
+                (None, false) if b.orders.iter().all(|[l, h]| in_range(*l, *h)) => {
+                    BandEdges::Orders {
+                        windows: b.orders.iter().map(|[l, h]| (*l, *h)).collect(),
+                    }
+                }
+                _ => {
+                    return Err(bad(
+                        &field("hz"),
+                        "give either hz [lo, hi] or orders [[lo, hi], ...], with 0 <= lo < hi"
+                            .to_string(),
+                    ))
+                }
+            };
+            if b.spectrum == SpectrumKind::Envelope && self.envelope.is_none() {
+                return Err(bad(
+                    &field("spectrum"),
+                    "reads the envelope spectrum, but settings.envelope is missing".to_string(),
+                ));
+            }
+            bands.push(BandSpec {
+                name: b.name.clone(),
+                edges,
+                measure: b.measure,
+                unit: band_unit,
+                spectrum: b.spectrum,
+                bearing: b.bearing.clone().zip(b.defect),
+            });
+        }
+        Ok(ChannelSpec {
+            name: name.to_string(),
+            source: source.to_string(),
+            index: 0,
+            unit,
+            scale: 1.0,
+            offset: 0.0,
+            sample_rate_hz,
+            block: self.block,
+            nfft: self.nfft,
+            hop: self.hop,
+            overlap: self.overlap,
+            window: self.window,
+            detrend: self.detrend,
+            averaging: self.averaging,
+            average_count: self.average_count,
+            integration_low_cut_hz: self.integration_low_cut_hz,
+            machine: self.machine.clone(),
+            envelope: self.envelope.map(|[lo, hi]| (lo, hi)),
+            bands,
+            health: HealthSpec::default(),
+            alarms: Vec::new(),
+        })
+    }
+
+    /// Whether a band follows the running speed.
+    pub fn has_order_bands(&self) -> bool {
+        self.bands.iter().any(|b| !b.orders.is_empty())
+    }
 }
 
 /// One band's value at the trip.
@@ -229,7 +512,8 @@ pub struct WaveformInfo {
 /// `<id>.json`.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct CaptureMeta {
-    /// Format version of this file, 1.
+    /// Format version of this file: [`META_VERSION`] (2: with `settings`
+    /// and the spectrum's sample range); 1 before.
     pub version: u32,
     pub id: String,
     pub trip: TripInfo,
@@ -238,6 +522,10 @@ pub struct CaptureMeta {
     pub spectrum: Option<SpectrumAtTrip>,
     #[serde(default)]
     pub bands: Vec<BandAtTrip>,
+    /// The channel settings at the trip (version 2 on; absent in older
+    /// captures).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub settings: Option<CaptureSettings>,
     /// All post-trigger samples were collected.
     pub complete: bool,
     /// "complete", "gap" (a discontinuity ended it) or "shutdown".
@@ -274,6 +562,7 @@ pub struct Capture {
     pub samples: Vec<f32>,
     pub spectrum: Option<SpectrumAtTrip>,
     pub bands: Vec<BandAtTrip>,
+    pub settings: Option<CaptureSettings>,
     pub end: EndReason,
 }
 
@@ -337,6 +626,7 @@ impl CaptureBuilder {
             samples,
             spectrum,
             bands,
+            settings: None,
             end: EndReason::Complete,
         };
         CaptureBuilder {
@@ -350,6 +640,12 @@ impl CaptureBuilder {
                 None
             },
         }
+    }
+
+    /// Records the channel settings the capture was taken with.
+    pub fn with_settings(mut self, settings: CaptureSettings) -> CaptureBuilder {
+        self.cap.settings = Some(settings);
+        self
     }
 
     pub fn id(&self) -> &str {
@@ -567,7 +863,7 @@ impl CaptureStore {
             frames += 1;
         }
         let meta = CaptureMeta {
-            version: 1,
+            version: META_VERSION,
             id: cap.id.clone(),
             trip: cap.trip.clone(),
             waveform: WaveformInfo {
@@ -585,6 +881,7 @@ impl CaptureStore {
             },
             spectrum: cap.spectrum.clone(),
             bands: cap.bands.clone(),
+            settings: cap.settings.clone(),
             complete: cap.end == EndReason::Complete,
             end_reason: cap.end.as_str().to_string(),
         };

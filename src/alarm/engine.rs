@@ -21,15 +21,15 @@ use std::time::Instant;
 
 use crate::alarm::baseline::{Baseline, Learner};
 use crate::alarm::capture::{
-    capture_id, trip_time, BandAtTrip, CaptureBuilder, EndReason, HistoryRing, SpectrumAtTrip,
-    TripInfo,
+    capture_id, history_blocks, span_samples, trip_time, BandAtTrip, CaptureBuilder,
+    CaptureSettings, EndReason, HistoryRing, SpectrumAtTrip, TripInfo,
 };
 use crate::alarm::health::{HealthDetector, Reasons};
 use crate::alarm::io::{Message, Outbox};
 use crate::alarm::journal::{Event, EventLimits};
 use crate::alarm::state::{AckError, AlarmMachine, AlarmMemory, AlarmState, Cause, Input};
 use crate::clock::unix_now_ns;
-use crate::config::{AlarmTarget, ChannelAlarm, ChannelSpec};
+use crate::config::{AlarmTarget, AveragingMode, ChannelAlarm, ChannelSpec};
 use crate::dsp::bands::BandValue;
 use crate::dsp::stats::Overall;
 
@@ -187,6 +187,16 @@ pub struct ChannelAlarms {
     history: Option<HistoryRing>,
     pre_samples: usize,
     post_samples: usize,
+    /// Samples before the trip a capture must hold so that the averaged
+    /// spectrum at the trip can be recomputed from it (see
+    /// [`history_blocks`]); the history ring holds at least this many.
+    average_span: usize,
+    /// The channel's settings, stored with each capture.
+    settings: Box<CaptureSettings>,
+    /// Stream index of the first sample after the latest discontinuity,
+    /// and of the sample after the newest one seen.
+    run_start: Option<u64>,
+    run_next: u64,
     builders: Vec<CaptureBuilder>,
     outbox: Option<Outbox>,
     commands: Receiver<AlarmCommand>,
@@ -237,6 +247,11 @@ impl ChannelAlarms {
             )
         });
         let n = spec.alarms.len();
+        let average_span = span_samples(
+            spec.block,
+            spec.hop,
+            history_blocks(spec.averaging, spec.average_count),
+        );
         ChannelAlarms {
             channel: spec.name.clone(),
             unit: spec.unit.symbol,
@@ -244,9 +259,13 @@ impl ChannelAlarms {
             machines,
             learners,
             health: HealthDetector::new(spec.health, fs, now),
-            history: captures.map(|_| HistoryRing::new(pre.max(1), fs)),
+            history: captures.map(|_| HistoryRing::new(pre.max(average_span).max(1), fs)),
             pre_samples: pre,
             post_samples: post,
+            average_span,
+            settings: Box::new(CaptureSettings::of(spec)),
+            run_start: None,
+            run_next: 0,
             builders: Vec::new(),
             outbox,
             commands,
@@ -272,6 +291,12 @@ impl ChannelAlarms {
     pub fn on_samples(&mut self, first_sample: u64, timestamp_ns: u64, samples: &[f32], fs: f64) {
         let end_s = timestamp_ns as f64 * 1e-9 + samples.len() as f64 / fs;
         let now = self.clock.saw(end_s);
+        if !samples.is_empty() {
+            if self.run_start.is_none() || first_sample != self.run_next {
+                self.run_start = Some(first_sample);
+            }
+            self.run_next = first_sample + samples.len() as u64;
+        }
         if let Some(c) = self.health.feed(now, samples) {
             self.health_changed(&c);
         }
@@ -298,6 +323,7 @@ impl ChannelAlarms {
         if let Some(h) = &mut self.history {
             h.clear();
         }
+        self.run_start = None;
         for b in &mut self.builders {
             b.gap();
         }
@@ -328,7 +354,7 @@ impl ChannelAlarms {
             // never come on a dead channel).
             for i in 0..self.machines.len() {
                 if let Some(t) = self.machines[i].evaluate(now, Input::Inhibited) {
-                    self.transitioned(i, &t, None, &[]);
+                    self.transitioned(i, &t, None, &[], None);
                 }
             }
         }
@@ -409,7 +435,10 @@ impl ChannelAlarms {
         }
     }
 
-    /// Evaluates every alarm against a published spectrum.
+    /// Evaluates every alarm against a published spectrum: `averages`
+    /// blocks, the newest starting at stream index `first_sample`, order
+    /// bands at running speed `speed_hz`.
+    #[allow(clippy::too_many_arguments)] // one published result, field by field
     pub fn evaluate(
         &mut self,
         spec: &ChannelSpec,
@@ -418,6 +447,7 @@ impl ChannelAlarms {
         power: &[f32],
         averages: u32,
         first_sample: u64,
+        speed_hz: Option<f64>,
     ) {
         let now = self.clock.now();
         let healthy = self.health.is_ok();
@@ -469,6 +499,18 @@ impl ChannelAlarms {
                 }
             }
             if let Some(t) = self.machines[i].evaluate(now, input) {
+                let end_sample = first_sample + spec.block as u64;
+                let oldest_first_sample = match spec.averaging {
+                    // Every block since the averages last started over.
+                    AveragingMode::Exponential => self
+                        .run_start
+                        .filter(|s| *s <= first_sample)
+                        .map_or(first_sample, |s| {
+                            first_sample - (first_sample - s) / spec.hop as u64 * spec.hop as u64
+                        }),
+                    _ => first_sample
+                        .saturating_sub(u64::from(averages.max(1) - 1) * spec.hop as u64),
+                };
                 let trip_spectrum = (t.cause == Cause::Trip).then(|| SpectrumAtTrip {
                     scaling: "power".to_string(),
                     unit: self.unit.to_string(),
@@ -478,7 +520,13 @@ impl ChannelAlarms {
                     nfft: spec.nfft,
                     averages,
                     first_sample,
+                    oldest_first_sample: Some(oldest_first_sample),
+                    end_sample: Some(end_sample),
                     values: power.to_vec(),
+                });
+                let settings = (t.cause == Cause::Trip).then(|| CaptureSettings {
+                    speed_hz: self.settings.machine.as_ref().and(speed_hz),
+                    ..(*self.settings).clone()
                 });
                 let band_vals: Vec<BandAtTrip> = if t.cause == Cause::Trip {
                     spec.bands
@@ -494,7 +542,7 @@ impl ChannelAlarms {
                 } else {
                     Vec::new()
                 };
-                self.transitioned(i, &t, trip_spectrum, &band_vals);
+                self.transitioned(i, &t, trip_spectrum, &band_vals, settings);
             }
         }
     }
@@ -505,6 +553,7 @@ impl ChannelAlarms {
         t: &crate::alarm::state::Transition,
         spectrum: Option<SpectrumAtTrip>,
         bands: &[BandAtTrip],
+        settings: Option<CaptureSettings>,
     ) {
         let unix = unix_now_ns();
         self.since_ns[i] = unix;
@@ -533,15 +582,26 @@ impl ChannelAlarms {
                     limits,
                     at_sample: ring.next_sample(),
                 };
-                let b = CaptureBuilder::start(
+                // The capture holds every sample of the blocks averaged
+                // into the trip's spectrum, beyond `pre_s` if need be.
+                let need = spectrum
+                    .as_ref()
+                    .and_then(|s| s.oldest_first_sample)
+                    .map_or(0, |oldest| {
+                        (ring.next_sample().saturating_sub(oldest) as usize).min(self.average_span)
+                    });
+                let mut b = CaptureBuilder::start(
                     id.clone(),
                     trip,
                     ring,
-                    self.pre_samples,
+                    self.pre_samples.max(need),
                     self.post_samples,
                     spectrum,
                     bands.to_vec(),
                 );
+                if let Some(s) = settings {
+                    b = b.with_settings(s);
+                }
                 if b.is_done() {
                     self.send(Message::Capture(Box::new(b.finish(EndReason::Complete))));
                 } else {

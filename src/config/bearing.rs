@@ -27,7 +27,7 @@ pub struct BearingGeometry {
 }
 
 /// Which defect frequency a bearing band follows.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Deserialize, serde::Serialize)]
 #[serde(rename_all = "kebab-case")]
 pub enum Defect {
     Bpfo,

@@ -3,7 +3,7 @@
 //! averaging mode, band measure, band spectrum, serial line settings and
 //! what a second TCP connection does.
 
-use serde::Deserialize;
+use serde::{Deserialize, Serialize};
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Default)]
 #[serde(rename_all = "kebab-case")]
@@ -37,7 +37,7 @@ pub enum FlowControl {
     Hardware,
 }
 /// Analysis window (formulas in `dsp::window`).
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Deserialize, Serialize)]
 #[serde(rename_all = "kebab-case")]
 pub enum WindowKind {
     Rectangular,
@@ -71,7 +71,7 @@ impl WindowKind {
 }
 
 /// What is removed from each block before the window.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Default)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize, Default)]
 #[serde(rename_all = "kebab-case")]
 pub enum Detrend {
     /// Nothing: the DC line shows the sensor's offset.
@@ -81,7 +81,7 @@ pub enum Detrend {
     Mean,
 }
 
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize)]
 #[serde(rename_all = "kebab-case")]
 pub enum AveragingMode {
     /// Every block is published as it is.
@@ -94,7 +94,7 @@ pub enum AveragingMode {
     PeakHold,
 }
 
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize)]
 #[serde(rename_all = "kebab-case")]
 pub enum Measure {
     /// Root of the power in the band (energy), noise-bandwidth corrected.
@@ -113,7 +113,7 @@ impl Measure {
 }
 
 /// Which spectrum a band reads.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Default)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize, Default)]
 #[serde(rename_all = "kebab-case")]
 pub enum SpectrumKind {
     #[default]

@@ -668,6 +668,7 @@ impl ChannelDsp {
                 &snap.power,
                 snap.averages,
                 snap.first_sample,
+                snap.speed_hz,
             );
         }
         self.spare = self.shared.snapshot.swap(Some(arc));

@@ -79,6 +79,9 @@ pub struct FrameSink {
     sample_rate_hz: f64,
     seq: Sequencer,
     pub logs: LogLimiter,
+    /// The first rejection of each reason, with its detail (what `replay`
+    /// reports when it accepted nothing).
+    first_rejections: Vec<(&'static str, String)>,
 }
 
 impl FrameSink {
@@ -91,6 +94,7 @@ impl FrameSink {
             sample_rate_hz,
             seq: Sequencer::new(&SequenceSpec::DEFAULT, sample_rate_hz),
             logs: LogLimiter::default(),
+            first_rejections: Vec::new(),
         }
     }
 
@@ -171,9 +175,17 @@ impl FrameSink {
     /// Counts and logs a rejected frame or connection.
     pub fn reject(&mut self, reason: &'static str, detail: &dyn std::fmt::Display) {
         self.state.add_rejected(reason, 1);
+        if !self.first_rejections.iter().any(|(r, _)| *r == reason) {
+            self.first_rejections.push((reason, detail.to_string()));
+        }
         if let Some(suppressed) = self.logs.allow(reason) {
             tracing::warn!(source = %self.state.name, reason, suppressed, "rejected: {detail}");
         }
+    }
+
+    /// The first rejection of each reason so far, with its detail.
+    pub fn first_rejections(&self) -> &[(&'static str, String)] {
+        &self.first_rejections
     }
 
     /// Counts a decoder error.
