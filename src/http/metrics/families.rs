@@ -31,6 +31,7 @@ pub(crate) enum Fixed {
     SourceMissingSamples,
     SourceLateFrames,
     SourceRejected,
+    SourceRestarts,
     BandInService,
     MachineSpeed,
     MachineSpeedKnown,
@@ -47,7 +48,7 @@ pub(crate) enum Fixed {
     AlarmLimitDimensionless,
 }
 
-pub(crate) const FIXED: [(Fixed, &str, &str, MetricType, &[&str]); 35] = [
+pub(crate) const FIXED: [(Fixed, &str, &str, MetricType, &[&str]); 36] = [
     (
         Fixed::BandPeakFrequency,
         "bandwatch_band_peak_frequency_hertz",
@@ -192,6 +193,13 @@ pub(crate) const FIXED: [(Fixed, &str, &str, MetricType, &[&str]); 35] = [
         Fixed::SourceRejected,
         "bandwatch_source_rejected_total",
         "Frames or connections the source rejected, by reason.",
+        MetricType::COUNTER,
+        &["source", "reason"],
+    ),
+    (
+        Fixed::SourceRestarts,
+        "bandwatch_source_restarts_total",
+        "Times the source's sample index started over, by how it was detected.",
         MetricType::COUNTER,
         &["source", "reason"],
     ),

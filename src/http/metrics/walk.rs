@@ -395,6 +395,13 @@ pub(crate) fn walk<S: Sink>(app: &AppState, layout: &Layout, now_ns: u64, sink: 
         for (reason, n) in rejected {
             sink.counter(F(Fixed::SourceRejected), Labels::Rejected(k, reason), n);
         }
+        for r in crate::counters::RestartReason::ALL {
+            sink.counter(
+                F(Fixed::SourceRestarts),
+                Labels::Rejected(k, r.as_str()),
+                s.restarts(r),
+            );
+        }
         let last = s.last_frame_unix_ns.load(Relaxed);
         if last != 0 {
             sink.gauge(

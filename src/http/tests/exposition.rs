@@ -16,10 +16,18 @@ async fn metrics_are_si_and_complete() {
     st.sources[0].bytes.store(300, Ordering::Relaxed);
     st.sources[0].crc_errors.store(2, Ordering::Relaxed);
     st.sources[0].add_rejected("crc_mismatch", 2);
+    st.sources[0].add_restart(crate::counters::RestartReason::IndexWrap);
     let r = get(&st, "/metrics").await;
     assert_eq!(r.status, StatusCode::OK);
     assert_eq!(r.content_type, "text/plain; version=0.0.4");
     let t = &r.body;
+    assert_eq!(
+        sample(
+            t,
+            r#"bandwatch_source_restarts_total{source="sim",reason="index_wrap"}"#
+        ),
+        Some(1.0)
+    );
     // 12.5 mm/s = 0.0125 m/s (SI prefix milli = 1e-3).
     let v = sample(
         t,
