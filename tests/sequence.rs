@@ -9,6 +9,8 @@ use std::time::{Duration, Instant};
 
 mod common;
 
+use common::{free_tcp_port, free_udp_port, wait_for};
+
 use bandwatch::config::fixture::{Channel, Fixture};
 use bandwatch::counters::{ChannelCounters, GapReason, RestartReason, SourceCounters};
 use bandwatch::frame::bwf1::{encode, Header};
@@ -19,16 +21,6 @@ use bandwatch::Pipeline;
 
 const S: u64 = 256;
 const RATE: f64 = 25_600.0;
-
-fn free_udp_port() -> u16 {
-    let s = std::net::UdpSocket::bind("127.0.0.1:0").expect("bind");
-    s.local_addr().expect("addr").port()
-}
-
-fn free_tcp_port() -> u16 {
-    let s = std::net::TcpListener::bind("127.0.0.1:0").expect("bind");
-    s.local_addr().expect("addr").port()
-}
 
 /// Two P2 channels on one network source (4 channels, 25 600 Hz).
 fn config_with(source: &str) -> bandwatch::config::Config {
@@ -53,14 +45,6 @@ fn udp_source(port: u16, extra: &str) -> String {
 
 fn tcp_source(port: u16) -> String {
     format!("[[source]]\nname = \"daq\"\nkind = \"tcp-listen\"\nlisten = \"127.0.0.1:{port}\"\nchannels = 4\nsample_rate_hz = 25600\n")
-}
-
-async fn wait_for(what: &str, secs: u64, mut ok: impl FnMut() -> bool) {
-    let deadline = Instant::now() + Duration::from_secs(secs);
-    while !ok() {
-        assert!(Instant::now() < deadline, "timed out waiting for {what}");
-        tokio::time::sleep(Duration::from_millis(20)).await;
-    }
 }
 
 fn get(c: &std::sync::atomic::AtomicU64) -> u64 {

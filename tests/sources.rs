@@ -3,9 +3,11 @@
 
 use std::sync::atomic::Ordering;
 use std::sync::Arc;
-use std::time::{Duration, Instant};
+use std::time::Duration;
 
 mod common;
+
+use common::{free_tcp_port, free_udp_port, wait_for};
 
 use bandwatch::config::fixture::{Channel, Fixture};
 use bandwatch::counters::SourceCounters;
@@ -17,16 +19,6 @@ use bandwatch::tools::Endpoint;
 use bandwatch::Pipeline;
 
 const S: u64 = 256;
-
-fn free_udp_port() -> u16 {
-    let s = std::net::UdpSocket::bind("127.0.0.1:0").expect("bind");
-    s.local_addr().expect("addr").port()
-}
-
-fn free_tcp_port() -> u16 {
-    let s = std::net::TcpListener::bind("127.0.0.1:0").expect("bind");
-    s.local_addr().expect("addr").port()
-}
 
 /// The P2 channels on one network source, samples in g (f32 BWF1).
 fn config_with(source: &str) -> bandwatch::config::Config {
@@ -47,14 +39,6 @@ fn config_with(source: &str) -> bandwatch::config::Config {
 
 fn udp_source(port: u16) -> String {
     format!("[[source]]\nname = \"daq\"\nkind = \"udp\"\nlisten = \"127.0.0.1:{port}\"\nchannels = 4\nsample_rate_hz = 25600\n")
-}
-
-async fn wait_for(what: &str, secs: u64, mut ok: impl FnMut() -> bool) {
-    let deadline = Instant::now() + Duration::from_secs(secs);
-    while !ok() {
-        assert!(Instant::now() < deadline, "timed out waiting for {what}");
-        tokio::time::sleep(Duration::from_millis(20)).await;
-    }
 }
 
 fn get(c: &std::sync::atomic::AtomicU64) -> u64 {

@@ -9,6 +9,8 @@ use std::time::{Duration, Instant};
 
 mod common;
 
+use common::{free_tcp_port, wait_for};
+
 use bandwatch::config::fixture::{Channel, Fixture};
 use bandwatch::counters::SourceCounters;
 use bandwatch::frame::bwf1::{encode, Header};
@@ -18,11 +20,6 @@ use tokio::io::{AsyncReadExt, AsyncWriteExt};
 use tokio::net::TcpStream;
 
 const S: u64 = 256;
-
-fn free_tcp_port() -> u16 {
-    let s = std::net::TcpListener::bind("127.0.0.1:0").expect("bind");
-    s.local_addr().expect("addr").port()
-}
 
 fn config(source: &str) -> bandwatch::config::Config {
     common::config(
@@ -41,14 +38,6 @@ fn listen_source(port: u16, extra: &str) -> String {
     format!(
         "[[source]]\nname = \"daq\"\nkind = \"tcp-listen\"\nlisten = \"127.0.0.1:{port}\"\nchannels = 1\nsample_rate_hz = 25600\n{extra}"
     )
-}
-
-async fn wait_for(what: &str, secs: u64, mut ok: impl FnMut() -> bool) {
-    let deadline = Instant::now() + Duration::from_secs(secs);
-    while !ok() {
-        assert!(Instant::now() < deadline, "timed out waiting for {what}");
-        tokio::time::sleep(Duration::from_millis(20)).await;
-    }
 }
 
 fn rejected(s: &SourceCounters, reason: &str) -> u64 {

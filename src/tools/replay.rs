@@ -447,14 +447,15 @@ fn capture_channel(
 ) -> Result<(ChannelSpec, Option<f64>), ReplayError> {
     let name = &meta.trip.channel;
     let w = &meta.waveform;
-    if let Some(s) = &meta.settings {
-        let spec = s
-            .channel_spec(name, source, &w.unit, w.sample_rate_hz)
+    let spec_of = |s: &CaptureSettings| {
+        s.channel_spec(name, source, &w.unit, w.sample_rate_hz)
             .map_err(|e| ReplayError::CaptureSettings {
                 path: path.to_string(),
                 source: e,
-            })?;
-        return Ok((spec, s.speed_hz));
+            })
+    };
+    if let Some(s) = &meta.settings {
+        return Ok((spec_of(s)?, s.speed_hz));
     }
     let Some(config) = config else {
         return Err(ReplayError::CaptureIncomplete {
@@ -473,12 +474,7 @@ fn capture_channel(
     // The config's settings, re-expressed as a capture's (so that they
     // are checked the same way), with the samples already in units.
     let s = CaptureSettings::of(c);
-    let spec = s
-        .channel_spec(name, source, &w.unit, w.sample_rate_hz)
-        .map_err(|e| ReplayError::CaptureSettings {
-            path: path.to_string(),
-            source: e,
-        })?;
+    let spec = spec_of(&s)?;
     // The speed: only a fixed machine speed is known without the capture.
     let speed = c.machine.as_ref().and_then(|m| {
         config

@@ -157,3 +157,28 @@ fn parses_length_and_chunked_replies() {
     assert_eq!(r.body, b"Wikipedia ");
     assert!(parse(b"garbage").is_err());
 }
+
+/// A port on 127.0.0.1 free for UDP a moment ago (bound, then released).
+pub fn free_udp_port() -> u16 {
+    let s = std::net::UdpSocket::bind("127.0.0.1:0").expect("bind");
+    s.local_addr().expect("addr").port()
+}
+
+/// A port on 127.0.0.1 free for TCP a moment ago (bound, then released).
+pub fn free_tcp_port() -> u16 {
+    let s = std::net::TcpListener::bind("127.0.0.1:0").expect("bind");
+    s.local_addr().expect("addr").port()
+}
+
+/// Waits until `ok()` holds, polling every 20 ms; fails the test after
+/// `secs` seconds.
+pub async fn wait_for(what: &str, secs: u64, mut ok: impl FnMut() -> bool) {
+    let deadline = std::time::Instant::now() + Duration::from_secs(secs);
+    while !ok() {
+        assert!(
+            std::time::Instant::now() < deadline,
+            "timed out waiting for {what}"
+        );
+        tokio::time::sleep(Duration::from_millis(20)).await;
+    }
+}
