@@ -1,9 +1,12 @@
 //! The daemon: the pipeline and its HTTP server, run until shut down.
 
 use std::future::Future;
+use std::net::SocketAddr;
+use std::sync::Arc;
 
 use tokio::net::TcpListener;
 
+use crate::config::web::WebConfig;
 use crate::config::{Config, HttpLimits};
 use crate::http;
 use crate::pipeline::{Pipeline, RunError};
@@ -15,13 +18,46 @@ where
     F: Future<Output = ()> + Send + 'static,
 {
     let limits = fit_to_open_file_limit(config.http, config.sources.len());
+    if let Ok(addr) = listener.local_addr() {
+        warn_if_open(addr, config.web.as_ref());
+    }
     let pipeline = Pipeline::start(&config)?;
-    let (app, connections) = http::app(pipeline.state.clone());
-    let result = http::server::serve(listener, app, limits, connections, shutdown)
+    let (mut app, connections) = http::app(pipeline.state.clone());
+    let web = config.web.as_ref();
+    if let Some(w) = web.filter(|w| !w.users.is_empty()) {
+        let auth = http::auth::BasicAuth::new(
+            w.users.clone(),
+            pipeline.state.token.clone(),
+            connections.auth_failures.clone(),
+        );
+        app = http::auth::require(app, Arc::new(auth));
+    }
+    let tls = web.and_then(|w| w.tls.as_ref()).map(|t| t.server.clone());
+    let result = http::server::serve(listener, app, limits, connections, tls, shutdown)
         .await
         .map_err(RunError::Http);
     pipeline.stop().await;
     result
+}
+
+/// Logs a warning when `addr` is reachable from other hosts (not loopback)
+/// and TLS or basic auth is off (README, "Serving over the network").
+pub fn warn_if_open(addr: SocketAddr, web: Option<&WebConfig>) {
+    if addr.ip().is_loopback() {
+        return;
+    }
+    let tls = web.is_some_and(|w| w.tls.is_some());
+    let auth = web.is_some_and(|w| !w.users.is_empty());
+    if !(tls && auth) {
+        tracing::warn!(
+            %addr,
+            tls,
+            basic_auth = auth,
+            "HTTP listens on a non-loopback address without TLS and basic auth: anyone on \
+             the network can read (and, with the token, act on) this daemon; set \
+             [server] web_config (README, \"Serving over the network\")"
+        );
+    }
 }
 
 /// File descriptors kept out of the HTTP server's reach, for the journal,
