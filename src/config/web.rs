@@ -381,3 +381,175 @@ fn pem_certs(pem: &[u8]) -> Result<Vec<CertificateDer<'static>>, String> {
     }
     Ok(certs)
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A scratch directory, removed on drop.
+    struct Dir(PathBuf);
+
+    impl Dir {
+        fn new(tag: &str) -> Dir {
+            use std::sync::atomic::{AtomicU32, Ordering};
+            static N: AtomicU32 = AtomicU32::new(0);
+            let p = std::env::temp_dir().join(format!(
+                "bandwatch-web-{tag}-{}-{}",
+                std::process::id(),
+                N.fetch_add(1, Ordering::Relaxed)
+            ));
+            let _ = std::fs::remove_dir_all(&p);
+            std::fs::create_dir_all(&p).expect("temp dir");
+            Dir(p)
+        }
+
+        fn write(&self, name: &str, text: &str) -> PathBuf {
+            let p = self.0.join(name);
+            std::fs::write(&p, text).expect("write");
+            p
+        }
+    }
+
+    impl Drop for Dir {
+        fn drop(&mut self) {
+            let _ = std::fs::remove_dir_all(&self.0);
+        }
+    }
+
+    /// A self-signed certificate for localhost and its key, as PEM.
+    fn cert() -> (String, String) {
+        let c = rcgen::generate_simple_self_signed(vec!["localhost".to_string()]).expect("rcgen");
+        (c.cert.pem(), c.signing_key.serialize_pem())
+    }
+
+    /// `dir` with server.crt/server.key and the web config `yaml`, loaded.
+    fn load(dir: &Dir, yaml: &str) -> Result<WebConfig, WebConfigError> {
+        let (crt, key) = cert();
+        dir.write("server.crt", &crt);
+        dir.write("server.key", &key);
+        load_web_config(&dir.write("web.yml", yaml))
+    }
+
+    fn message(r: Result<WebConfig, WebConfigError>) -> String {
+        match r {
+            Ok(w) => panic!("accepted: {w:?}"),
+            Err(e) => e.to_string(),
+        }
+    }
+
+    /// A bcrypt hash of "test", made now (cost 4, the lowest, for speed).
+    fn hash() -> String {
+        bcrypt::hash("test", 4).expect("bcrypt")
+    }
+
+    #[test]
+    fn a_full_file_loads_with_paths_beside_it() {
+        let d = Dir::new("full");
+        let w = load(
+            &d,
+            &format!(
+                "tls_server_config:\n  cert_file: server.crt\n  key_file: server.key\n  \
+                 min_version: TLS13\nbasic_auth_users:\n  scraper: {}\n",
+                hash()
+            ),
+        )
+        .expect("valid");
+        let t = w.tls.expect("tls");
+        assert_eq!(t.cert_file, d.0.join("server.crt"));
+        assert_eq!(t.min_version, TlsVersion::Tls13);
+        assert_eq!(t.max_version, TlsVersion::Tls13);
+        assert_eq!(t.client_auth, ClientAuth::NoClientCert);
+        assert_eq!(t.server.alpn_protocols, vec![b"http/1.1".to_vec()]);
+        assert!(bcrypt::verify("test", &w.users["scraper"]).expect("verify"));
+    }
+
+    #[test]
+    fn users_alone_and_an_empty_file_load() {
+        let d = Dir::new("users");
+        let w = load(&d, &format!("basic_auth_users:\n  a: {}\n", hash())).expect("valid");
+        assert!(w.tls.is_none());
+        assert_eq!(w.users.len(), 1);
+        let w = load(&d, "").expect("empty file");
+        assert!(w.tls.is_none() && w.users.is_empty());
+    }
+
+    #[test]
+    fn unknown_keys_are_named() {
+        let d = Dir::new("unknown");
+        let m = message(load(&d, "tls_server_config:\n  cert_file: server.crt\n  key_file: server.key\n  cipher_suites: [TLS_AES_128_GCM_SHA256]\n"));
+        assert!(m.contains("cipher_suites"), "{m}");
+        let m = message(load(&d, "basic_auth_user:\n  a: b\n"));
+        assert!(m.contains("basic_auth_user"), "{m}");
+    }
+
+    #[test]
+    fn bad_values_are_named_by_field() {
+        let d = Dir::new("values");
+        let tls = "tls_server_config:\n  cert_file: server.crt\n  key_file: server.key\n";
+        let cases = [
+            ("basic_auth_users:\n  scraper: plaintext\n".to_string(), "basic_auth_users.scraper"),
+            ("basic_auth_users:\n  scraper: $2b$99$01234567890123456789012345678901234567890123456789012\n".to_string(), "basic_auth_users.scraper"),
+            (format!("basic_auth_users:\n  \"a:b\": {}\n", hash()), "basic_auth_users.a:b"),
+            (format!("{tls}  min_version: TLS10\n"), "tls_server_config.min_version"),
+            (format!("{tls}  min_version: TLS13\n  max_version: TLS12\n"), "tls_server_config.min_version"),
+            (format!("{tls}  client_auth_type: RequireAndVerifyClientCert\n"), "tls_server_config.client_ca_file"),
+            (format!("{tls}  client_auth_type: RequireAnyClientCert\n  client_ca_file: server.crt\n"), "tls_server_config.client_auth_type"),
+            (format!("{tls}  client_ca_file: server.crt\n"), "tls_server_config.client_ca_file"),
+            ("tls_server_config:\n  key_file: server.key\n".to_string(), "tls_server_config.cert_file"),
+            ("tls_server_config:\n  cert_file: missing.crt\n  key_file: server.key\n".to_string(), "tls_server_config.cert_file"),
+            ("tls_server_config:\n  cert_file: server.key\n  key_file: server.key\n".to_string(), "tls_server_config.cert_file"),
+            ("tls_server_config:\n  cert_file: server.crt\n  key_file: server.crt\n".to_string(), "tls_server_config.key_file"),
+        ];
+        for (yaml, field) in cases {
+            let m = message(load(&d, &yaml));
+            assert!(m.contains(&format!("{field}:")), "{yaml}\n-> {m}");
+        }
+    }
+
+    #[test]
+    fn a_key_of_another_certificate_is_refused() {
+        let d = Dir::new("mismatch");
+        let (crt, _) = cert();
+        let (_, other_key) = cert();
+        dir_write_pair(&d, &crt, &other_key);
+        let m = message(load_web_config(&d.write(
+            "web.yml",
+            "tls_server_config:\n  cert_file: a.crt\n  key_file: a.key\n",
+        )));
+        assert!(m.contains("tls_server_config.key_file:") && m.contains("does not belong"), "{m}");
+        // The matching pair is accepted (the check is not always-failing).
+        let (crt, key) = cert();
+        dir_write_pair(&d, &crt, &key);
+        load_web_config(&d.0.join("web.yml")).expect("matching pair");
+    }
+
+    fn dir_write_pair(d: &Dir, crt: &str, key: &str) {
+        d.write("a.crt", crt);
+        d.write("a.key", key);
+    }
+
+    #[test]
+    fn client_certificates_verified_against_the_ca_file() {
+        let d = Dir::new("mtls");
+        let (ca, _) = cert();
+        d.write("ca.crt", &ca);
+        for mode in ["RequireAndVerifyClientCert", "VerifyClientCertIfGiven"] {
+            let w = load(
+                &d,
+                &format!(
+                    "tls_server_config:\n  cert_file: server.crt\n  key_file: server.key\n  \
+                     client_auth_type: {mode}\n  client_ca_file: ca.crt\n"
+                ),
+            )
+            .expect("valid");
+            let t = w.tls.expect("tls");
+            assert_eq!(t.client_ca_file, Some(d.0.join("ca.crt")));
+            let want = if mode == "RequireAndVerifyClientCert" {
+                ClientAuth::RequireAndVerifyClientCert
+            } else {
+                ClientAuth::VerifyClientCertIfGiven
+            };
+            assert_eq!(t.client_auth, want);
+        }
+    }
+}
