@@ -66,11 +66,9 @@ struct Daemon {
 /// scratch directory; `server_extra` goes into `[server]`.
 async fn daemon(tag: &str, server_extra: &str) -> Daemon {
     let dir = Dir::new(tag);
-    let cert = rcgen::generate_simple_self_signed(vec![
-        "localhost".to_string(),
-        "127.0.0.1".to_string(),
-    ])
-    .unwrap();
+    let cert =
+        rcgen::generate_simple_self_signed(vec!["localhost".to_string(), "127.0.0.1".to_string()])
+            .unwrap();
     std::fs::write(dir.0.join("server.crt"), cert.cert.pem()).unwrap();
     std::fs::write(dir.0.join("server.key"), cert.signing_key.serialize_pem()).unwrap();
     let hash = bcrypt::hash(PASSWORD, 4).unwrap();
@@ -235,7 +233,10 @@ async fn only_the_right_credentials_get_in() {
         ("no credentials", None),
         ("a wrong password", Some(basic(USER, "wrong"))),
         ("an unknown user", Some(basic("intruder", PASSWORD))),
-        ("a wrong bearer token", Some("Bearer not-the-operator-token".to_string())),
+        (
+            "a wrong bearer token",
+            Some("Bearer not-the-operator-token".to_string()),
+        ),
     ] {
         let r = tls_request(&d, "GET", "/healthz", auth.as_deref()).await;
         assert_eq!(r.status, 401, "{what}: {}", r.text());
@@ -268,7 +269,11 @@ async fn plain_http_to_the_tls_port_is_refused_and_counted() {
     );
     // The server still serves TLS clients, and counted the failure.
     let m = metrics(&d).await;
-    assert_eq!(series(&m, "bandwatch_http_tls_handshake_errors_total"), 1.0, "{m}");
+    assert_eq!(
+        series(&m, "bandwatch_http_tls_handshake_errors_total"),
+        1.0,
+        "{m}"
+    );
     stop(d).await;
 }
 
@@ -297,7 +302,11 @@ async fn a_stalled_handshake_is_closed_at_the_header_timeout() {
         "{m}"
     );
     assert_eq!(series(&m, "bandwatch_http_tls_handshake_errors_total"), 0.0);
-    assert_eq!(series(&m, "bandwatch_http_connections_open"), 1.0, "only the scrape");
+    assert_eq!(
+        series(&m, "bandwatch_http_connections_open"),
+        1.0,
+        "only the scrape"
+    );
     stop(d).await;
 }
 

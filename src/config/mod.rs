@@ -27,11 +27,11 @@ pub mod bearing;
 mod check;
 pub mod fixture;
 pub mod health;
-pub mod web;
 mod issue;
 mod kinds;
 mod raw;
 mod spec;
+pub mod web;
 pub mod zones;
 
 pub use check::validate;

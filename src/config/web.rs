@@ -279,10 +279,7 @@ fn check_tls(raw: RawTls, path: &Path, dir: &Path) -> Result<TlsSettings, WebCon
     let min_version = version("min_version", raw.min_version.as_deref(), TlsVersion::Tls12)?;
     let max_version = version("max_version", raw.max_version.as_deref(), TlsVersion::Tls13)?;
     if min_version > max_version {
-        return Err(invalid(
-            "min_version",
-            "is above max_version".to_string(),
-        ));
+        return Err(invalid("min_version", "is above max_version".to_string()));
     }
 
     let read = |field: &str, file: &Path| {
@@ -330,14 +327,17 @@ fn check_tls(raw: RawTls, path: &Path, dir: &Path) -> Result<TlsSettings, WebCon
         .with_protocol_versions(&versions)
         .map_err(|e| invalid("min_version", e.to_string()))?;
     let builder = match (&client_ca_file, client_auth) {
-        (Some(ca), ClientAuth::VerifyClientCertIfGiven | ClientAuth::RequireAndVerifyClientCert) => {
+        (
+            Some(ca),
+            ClientAuth::VerifyClientCertIfGiven | ClientAuth::RequireAndVerifyClientCert,
+        ) => {
             let mut roots = rustls::RootCertStore::empty();
             let cas = pem_certs(&read("client_ca_file", ca)?)
                 .map_err(|m| invalid("client_ca_file", format!("{}: {m}", ca.display())))?;
             for c in cas {
-                roots.add(c).map_err(|e| {
-                    invalid("client_ca_file", format!("{}: {e}", ca.display()))
-                })?;
+                roots
+                    .add(c)
+                    .map_err(|e| invalid("client_ca_file", format!("{}: {e}", ca.display())))?;
             }
             let verifier = rustls::server::WebPkiClientVerifier::builder_with_provider(
                 Arc::new(roots),
@@ -516,7 +516,10 @@ mod tests {
             "web.yml",
             "tls_server_config:\n  cert_file: a.crt\n  key_file: a.key\n",
         )));
-        assert!(m.contains("tls_server_config.key_file:") && m.contains("does not belong"), "{m}");
+        assert!(
+            m.contains("tls_server_config.key_file:") && m.contains("does not belong"),
+            "{m}"
+        );
         // The matching pair is accepted (the check is not always-failing).
         let (crt, key) = cert();
         dir_write_pair(&d, &crt, &key);

@@ -157,8 +157,10 @@ async fn gate(State(auth): State<Arc<BasicAuth>>, req: Request, next: Next) -> R
     }
     auth.failures.inc();
     let mut r = ApiError::Unauthorized.into_response();
-    r.headers_mut()
-        .insert(header::WWW_AUTHENTICATE, HeaderValue::from_static(CHALLENGE));
+    r.headers_mut().insert(
+        header::WWW_AUTHENTICATE,
+        HeaderValue::from_static(CHALLENGE),
+    );
     r
 }
 
@@ -175,7 +177,10 @@ mod tests {
         );
         // The password may hold colons; the user ends at the first one.
         // base64("u:a:b") = "dTphOmI=" (python3 base64.b64encode, checked).
-        assert_eq!(parse_basic("basic dTphOmI="), Some(("u".into(), "a:b".into())));
+        assert_eq!(
+            parse_basic("basic dTphOmI="),
+            Some(("u".into(), "a:b".into()))
+        );
         assert_eq!(parse_basic("Bearer QWxhZGRpbjpvcGVuIHNlc2FtZQ=="), None);
         assert_eq!(parse_basic("Basic !!!!"), None);
         assert_eq!(parse_basic("Basic QQ="), None); // not a multiple of 4
