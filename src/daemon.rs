@@ -43,12 +43,7 @@ where
 /// Logs a warning when `addr` is reachable from other hosts (not loopback)
 /// and TLS or basic auth is off (README, "Serving over the network").
 pub fn warn_if_open(addr: SocketAddr, web: Option<&WebConfig>) {
-    if addr.ip().is_loopback() {
-        return;
-    }
-    let tls = web.is_some_and(|w| w.tls.is_some());
-    let auth = web.is_some_and(|w| !w.users.is_empty());
-    if !(tls && auth) {
+    if let Some((tls, auth)) = exposed(addr, web) {
         tracing::warn!(
             %addr,
             tls,
@@ -58,6 +53,14 @@ pub fn warn_if_open(addr: SocketAddr, web: Option<&WebConfig>) {
              [server] web_config (README, \"Serving over the network\")"
         );
     }
+}
+
+/// `Some((tls on, basic auth on))` when `addr` is not loopback and either
+/// is off: the case [`warn_if_open`] warns about.
+pub fn exposed(addr: SocketAddr, web: Option<&WebConfig>) -> Option<(bool, bool)> {
+    let tls = web.is_some_and(|w| w.tls.is_some());
+    let auth = web.is_some_and(|w| !w.users.is_empty());
+    (!addr.ip().is_loopback() && !(tls && auth)).then_some((tls, auth))
 }
 
 /// File descriptors kept out of the HTTP server's reach, for the journal,
@@ -96,4 +99,28 @@ pub fn fit_to_open_file_limit(mut limits: HttpLimits, sources: usize) -> HttpLim
         tracing::debug!(open_file_limit = soft, "open-file limit");
     }
     limits
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn warns_only_off_loopback_without_both() {
+        let users = std::collections::BTreeMap::from([("u".to_string(), "h".to_string())]);
+        let auth_only = WebConfig {
+            path: "web.yml".into(),
+            tls: None,
+            users,
+        };
+        let lan: SocketAddr = "192.0.2.10:9750".parse().expect("addr");
+        let any: SocketAddr = "0.0.0.0:9750".parse().expect("addr");
+        let v6: SocketAddr = "[::1]:9750".parse().expect("addr");
+        let lo: SocketAddr = "127.0.0.1:9750".parse().expect("addr");
+        assert_eq!(exposed(lan, None), Some((false, false)));
+        assert_eq!(exposed(any, None), Some((false, false)));
+        assert_eq!(exposed(any, Some(&auth_only)), Some((false, true)));
+        assert_eq!(exposed(lo, None), None);
+        assert_eq!(exposed(v6, None), None);
+    }
 }
