@@ -60,7 +60,8 @@ pub fn warn_if_open(addr: SocketAddr, web: Option<&WebConfig>) {
 pub fn exposed(addr: SocketAddr, web: Option<&WebConfig>) -> Option<(bool, bool)> {
     let tls = web.is_some_and(|w| w.tls.is_some());
     let auth = web.is_some_and(|w| !w.users.is_empty());
-    (!addr.ip().is_loopback() && !(tls && auth)).then_some((tls, auth))
+    let safe = addr.ip().is_loopback() || (tls && auth);
+    (!safe).then_some((tls, auth))
 }
 
 /// File descriptors kept out of the HTTP server's reach, for the journal,
