@@ -34,6 +34,7 @@ use serde::{Deserialize, Serialize};
 use crate::clock::unix_now_ns;
 use crate::frame::bwf1::{self, CRC_BYTES, HEADER_BYTES, MAX_CHANNELS};
 use crate::frame::SampleFormat;
+use crate::pipeline::RingSize;
 
 use super::http::{percentile, read_response};
 use super::input::{channel_text, parse_config, test_signal};
@@ -328,15 +329,23 @@ pub(crate) struct Digest {
     pub(crate) skipped_bytes: u64,
     pub(crate) rejected: BTreeMap<String, u64>,
     pub(crate) restarts: BTreeMap<String, u64>,
+    /// Journal events, captures and baselines the alarm I/O queue dropped,
+    /// by kind.
+    pub(crate) alarm_records_dropped: BTreeMap<String, u64>,
 }
 
 impl Digest {
-    /// Every loss the daemon counts: channel drops (samples), missing
-    /// instants, late and rejected frames, restarts.
-    pub(crate) fn losses(&self) -> u64 {
-        self.dropped.values().sum::<u64>()
-            + self.missing_instants
+    /// Samples that never reached the DSP, every reason.
+    pub(crate) fn dropped_samples(&self) -> u64 {
+        self.dropped.values().sum()
+    }
+
+    /// Source counters that must stay 0 in a clean run (different units:
+    /// instants, frames, restarts; only compared with 0).
+    pub(crate) fn source_faults(&self) -> u64 {
+        self.missing_instants
             + self.late_frames
+            + self.crc_errors
             + self.rejected.values().sum::<u64>()
             + self.restarts.values().sum::<u64>()
     }
@@ -378,6 +387,10 @@ pub(crate) fn digest(body: &str, fs: f64) -> Digest {
             "bandwatch_source_restarts_total" => {
                 *d.restarts.entry(reason()).or_default() += as_u(s.value)
             }
+            "bandwatch_alarm_records_dropped_total" => {
+                let kind = label(&s, "kind").unwrap_or("").to_string();
+                *d.alarm_records_dropped.entry(kind).or_default() += as_u(s.value)
+            }
             _ => {}
         }
     }
@@ -394,10 +407,11 @@ pub(crate) fn parse_poll(s: &str) -> Result<(String, f64), BenchError> {
     let bad = || BenchError::Usage(format!("--plant-poll {s:?}: expected /PATH@SECONDS"));
     let (path, every) = s.rsplit_once('@').ok_or_else(bad)?;
     let every: f64 = every.parse().map_err(|_| bad())?;
-    if !path.starts_with('/') || !(every.is_finite() && every >= 0.1) {
-        return Err(bad());
+    if path.starts_with('/') && every.is_finite() && every >= 0.1 {
+        Ok((path.to_string(), every))
+    } else {
+        Err(bad())
     }
-    Ok((path.to_string(), every))
 }
 
 /// One GET on a fresh connection: status, body, milliseconds.
@@ -604,8 +618,10 @@ pub(crate) struct PlantReport {
     /// Sender CPU over the window, cores (its sends' loopback delivery in
     /// the kernel included).
     pub(crate) sender_cores: f64,
-    /// Daemon CPU over each second of the whole run, cores.
-    pub(crate) daemon_cores_per_s: Vec<f64>,
+    /// Daemon CPU through the run: [seconds since the sender started,
+    /// cores since the previous entry] (about one a second; longer when a
+    /// scrape held the loop).
+    pub(crate) daemon_cores_timeline: Vec<[f64; 2]>,
     pub(crate) rss_start: u64,
     pub(crate) rss_warm: u64,
     pub(crate) rss_end: u64,
@@ -626,7 +642,8 @@ pub(crate) struct PlantReport {
     pub(crate) sender: SenderReport,
     /// The daemon's counters after the sender stopped and it drained.
     pub(crate) end: Digest,
-    /// Samples sent − samples received into the rings.
+    /// Samples sent − received − dropped (every reason): the balance,
+    /// 0 when every lost sample is counted.
     pub(crate) unaccounted_samples: i64,
     pub(crate) daemon_log_warnings: usize,
     pub(crate) daemon_log_first: Vec<String>,
@@ -756,10 +773,16 @@ pub(crate) fn plant_phase(
         None,
     ));
     rows.push(row(
-        &format!("{tag} losses"),
-        "counted",
-        report.end.losses() as f64,
+        &format!("{tag} dropped"),
+        "samples",
+        report.end.dropped_samples() as f64,
         Some("0"),
+    ));
+    rows.push(row(
+        &format!("{tag} received"),
+        "of sent",
+        report.end.received as f64 / report.sender.samples.max(1) as f64,
+        Some("1"),
     ));
     rows.push(row(
         &format!("{tag} unaccounted"),
@@ -849,7 +872,7 @@ pub(crate) fn plant_phase(
         if report.clock_ticks_read { "" } else { " (assumed: getconf failed)" }
     ));
     notes.push(format!(
-        "plant: sent {} samples, daemon received {}, processed {}; dropped by reason {:?}; missing instants {}, late frames {}, rejected {:?}, restarts {:?}, CRC errors {}, skipped bytes {}; sender: {} datagrams, {} send errors, {} sent > 50 ms late",
+        "plant: sent {} samples, daemon received {}, processed {}; dropped by reason {:?}; missing instants {}, late frames {}, rejected {:?}, restarts {:?}, CRC errors {}, skipped bytes {}; alarm I/O records dropped {:?}; sender: {} datagrams, {} send errors, {} sent > 50 ms late",
         report.sender.samples,
         report.end.received,
         report.end.processed,
@@ -860,6 +883,7 @@ pub(crate) fn plant_phase(
         report.end.restarts,
         report.end.crc_errors,
         report.end.skipped_bytes,
+        report.end.alarm_records_dropped,
         report.sender.datagrams,
         report.sender.send_errors,
         report.sender.late_datagrams
@@ -900,8 +924,12 @@ fn run_plant(
     let (http, udp) = free_ports(sources)?;
     let text = plant_config_text(plan, http, &udp, &scratch.join("alarms"));
     let config = parse_config(&text)?;
+    // A gathering worker waits for a whole result, at most half the ring
+    // (`ChannelDsp::set_gather`).
     let gather_s = config.channels.first().map_or(0.0, |c| {
-        (c.block + c.average_count.saturating_sub(1) as usize * c.hop) as f64 / fs
+        let result = c.block + c.average_count.saturating_sub(1) as usize * c.hop;
+        let half_ring = RingSize::FromConfig.capacity(&config, c) / 2;
+        result.min(half_ring) as f64 / fs
     });
     let config_path = scratch.join("plant.toml");
     std::fs::write(&config_path, &text).map_err(io_err("write the plant config"))?;
@@ -993,8 +1021,8 @@ fn run_plant(
     let mut poll_next: Vec<f64> = polls_spec.iter().map(|(_, e)| *e).collect();
     let mut next_scrape = every;
     let mut next_tick = 1.0;
-    let mut last_cpu = cpu_seconds(daemon_pid, ticks).unwrap_or(0.0);
-    let mut daemon_cores_per_s = Vec::new();
+    let mut last_cpu = (0.0, cpu_seconds(daemon_pid, ticks).unwrap_or(0.0));
+    let mut daemon_cores_timeline = Vec::new();
     let mut rss_max = rss_start;
     let mut warm: Option<(f64, f64, f64, u64)> = None; // t, daemon cpu, sender cpu, rss
     let scrape = |rt: &tokio::runtime::Runtime,
@@ -1016,9 +1044,9 @@ fn run_plant(
             lag_max_s,
         });
         eprintln!(
-            "bench: plant: t = {at:.0} s: /metrics {status}, {:.1} MB in {ms:.0} ms; age max {age_max_s:.3} s, lag max {lag_max_s:.3} s, losses {}",
+            "bench: plant: t = {at:.0} s: /metrics {status}, {:.1} MB in {ms:.0} ms; age max {age_max_s:.3} s, lag max {lag_max_s:.3} s, dropped {} samples",
             body.len() as f64 / 1e6,
-            d.losses()
+            d.dropped_samples()
         );
         Ok(d)
     };
@@ -1026,11 +1054,14 @@ fn run_plant(
         let now = t0.elapsed().as_secs_f64();
         if now >= next_tick {
             alive(&mut kids.daemon, "daemon", &log_path)?;
-            let cpu = cpu_seconds(daemon_pid, ticks).unwrap_or(last_cpu);
-            daemon_cores_per_s.push(cpu - last_cpu);
-            last_cpu = cpu;
+            let cpu = cpu_seconds(daemon_pid, ticks).unwrap_or(last_cpu.1);
+            let dt = now - last_cpu.0;
+            if dt > 0.0 {
+                daemon_cores_timeline.push([now, (cpu - last_cpu.1) / dt]);
+            }
+            last_cpu = (now, cpu);
             rss_max = rss_max.max(rss_of(daemon_pid).unwrap_or(0));
-            next_tick += 1.0;
+            next_tick = now.floor() + 1.0;
         }
         if warm.is_none() && now >= warmup {
             warm = Some((
@@ -1129,13 +1160,18 @@ fn run_plant(
     let without = window_digests.last().map_or(plan.channels, |d| {
         plan.channels.saturating_sub(d.ages.len())
     });
-    let unaccounted = sender_rep.samples as i64 - end_digest.received as i64;
+    let dropped = end_digest.dropped_samples();
+    let unaccounted = sender_rep.samples as i64 - end_digest.received as i64 - dropped as i64;
     let stale_s = (3.0 * (plan.n / 4 * AVERAGES as usize) as f64 / fs).max(2.0);
     let age_p99 = percentile(&ages, 99.0);
     let mut verdict = Vec::new();
-    let losses = end_digest.losses();
-    verdict.push(format!("losses counted by the daemon: {losses}"));
-    verdict.push(format!("samples sent - received: {unaccounted}"));
+    let faults = end_digest.source_faults();
+    verdict.push(format!(
+        "samples dropped {dropped} of {} sent ({:.1} % received); source faults {faults}",
+        sender_rep.samples,
+        100.0 * end_digest.received as f64 / (sender_rep.samples.max(1)) as f64
+    ));
+    verdict.push(format!("sent - received - dropped: {unaccounted}"));
     verdict.push(format!(
         "spectrum age p99 {age_p99:.3} s (stale after {stale_s:.2} s), {without} channel(s) without a spectrum"
     ));
@@ -1143,8 +1179,9 @@ fn run_plant(
         "sender at most {:.3} s behind real time",
         sender_rep.behind_max_s
     ));
-    let held = losses == 0
-        && unaccounted == 0
+    let held = dropped == 0
+        && faults == 0
+        && end_digest.received == sender_rep.samples
         && sender_rep.send_errors == 0
         && without == 0
         && age_p99 < stale_s
@@ -1168,7 +1205,7 @@ fn run_plant(
         clock_ticks_read: ticks_read,
         daemon_cores: if window_s > 0.0 { (de - dw) / window_s } else { f64::NAN },
         sender_cores: if window_s > 0.0 { (se - sw) / window_s } else { f64::NAN },
-        daemon_cores_per_s,
+        daemon_cores_timeline,
         rss_start,
         rss_warm,
         rss_end,
@@ -1291,14 +1328,17 @@ mod tests {
             bandwatch_channel_samples_dropped_total{channel=\"ch0001\",reason=\"ring_overflow\"} 3\n\
             bandwatch_source_missing_samples_total{source=\"daq000\"} 256\n\
             bandwatch_source_rejected_total{source=\"daq000\",reason=\"bad_crc\"} 2\n\
-            bandwatch_source_restarts_total{source=\"daq000\",reason=\"backward_jump\"} 1\n";
+            bandwatch_source_restarts_total{source=\"daq000\",reason=\"backward_jump\"} 1\n\
+            bandwatch_alarm_records_dropped_total{kind=\"event\"} 4\n";
         let d = digest(body, 25_600.0);
         assert_eq!(d.ages, vec![0.25, 1.5]);
         assert_eq!((d.received, d.processed), (51_300, 25_700));
         assert_eq!(d.lags, vec![1.0, 0.0]);
         assert_eq!(d.dropped.get("ring_overflow"), Some(&10));
         assert_eq!(d.missing_instants, 256);
-        assert_eq!(d.losses(), 10 + 256 + 2 + 1);
+        assert_eq!(d.dropped_samples(), 10);
+        assert_eq!(d.source_faults(), 256 + 2 + 1);
+        assert_eq!(d.alarm_records_dropped.get("event"), Some(&4));
         let s = parse_prom_line(r#"m{a="x\"y\\z",b="q"} 1e3 17"#).expect("line");
         assert_eq!(s.name, "m");
         assert_eq!(
