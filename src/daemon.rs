@@ -1,9 +1,12 @@
 //! The daemon: the pipeline and its HTTP server, run until shut down.
 
 use std::future::Future;
+use std::net::SocketAddr;
+use std::sync::Arc;
 
 use tokio::net::TcpListener;
 
+use crate::config::web::WebConfig;
 use crate::config::{Config, HttpLimits};
 use crate::http;
 use crate::pipeline::{Pipeline, RunError};
@@ -15,13 +18,50 @@ where
     F: Future<Output = ()> + Send + 'static,
 {
     let limits = fit_to_open_file_limit(config.http, config.sources.len());
+    if let Ok(addr) = listener.local_addr() {
+        warn_if_open(addr, config.web.as_ref());
+    }
     let pipeline = Pipeline::start(&config)?;
-    let (app, connections) = http::app(pipeline.state.clone());
-    let result = http::server::serve(listener, app, limits, connections, shutdown)
+    let (mut app, connections) = http::app(pipeline.state.clone());
+    let web = config.web.as_ref();
+    if let Some(w) = web.filter(|w| !w.users.is_empty()) {
+        let auth = http::auth::BasicAuth::new(
+            w.users.clone(),
+            pipeline.state.token.clone(),
+            connections.auth_failures.clone(),
+        );
+        app = http::auth::require(app, Arc::new(auth));
+    }
+    let tls = web.and_then(|w| w.tls.as_ref()).map(|t| t.server.clone());
+    let result = http::server::serve(listener, app, limits, connections, tls, shutdown)
         .await
         .map_err(RunError::Http);
     pipeline.stop().await;
     result
+}
+
+/// Logs a warning when `addr` is reachable from other hosts (not loopback)
+/// and TLS or basic auth is off (README, "Serving over the network").
+pub fn warn_if_open(addr: SocketAddr, web: Option<&WebConfig>) {
+    if let Some((tls, auth)) = exposed(addr, web) {
+        tracing::warn!(
+            %addr,
+            tls,
+            basic_auth = auth,
+            "HTTP listens on a non-loopback address without TLS and basic auth: anyone on \
+             the network can read (and, with the token, act on) this daemon; set \
+             [server] web_config (README, \"Serving over the network\")"
+        );
+    }
+}
+
+/// `Some((tls on, basic auth on))` when `addr` is not loopback and either
+/// is off: the case [`warn_if_open`] warns about.
+pub fn exposed(addr: SocketAddr, web: Option<&WebConfig>) -> Option<(bool, bool)> {
+    let tls = web.is_some_and(|w| w.tls.is_some());
+    let auth = web.is_some_and(|w| !w.users.is_empty());
+    let safe = addr.ip().is_loopback() || (tls && auth);
+    (!safe).then_some((tls, auth))
 }
 
 /// File descriptors kept out of the HTTP server's reach, for the journal,
@@ -60,4 +100,28 @@ pub fn fit_to_open_file_limit(mut limits: HttpLimits, sources: usize) -> HttpLim
         tracing::debug!(open_file_limit = soft, "open-file limit");
     }
     limits
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn warns_only_off_loopback_without_both() {
+        let users = std::collections::BTreeMap::from([("u".to_string(), "h".to_string())]);
+        let auth_only = WebConfig {
+            path: "web.yml".into(),
+            tls: None,
+            users,
+        };
+        let lan: SocketAddr = "192.0.2.10:9750".parse().expect("addr");
+        let any: SocketAddr = "0.0.0.0:9750".parse().expect("addr");
+        let v6: SocketAddr = "[::1]:9750".parse().expect("addr");
+        let lo: SocketAddr = "127.0.0.1:9750".parse().expect("addr");
+        assert_eq!(exposed(lan, None), Some((false, false)));
+        assert_eq!(exposed(any, None), Some((false, false)));
+        assert_eq!(exposed(any, Some(&auth_only)), Some((false, true)));
+        assert_eq!(exposed(lo, None), None);
+        assert_eq!(exposed(v6, None), None);
+    }
 }

@@ -153,6 +153,14 @@ fn main() -> ExitCode {
                     c.channels.len(),
                     c.channels.iter().map(|c| c.bands.len()).sum::<usize>()
                 );
+                if let Some(w) = &c.web {
+                    println!(
+                        "{}: ok (TLS {}, {} basic-auth user(s))",
+                        w.path.display(),
+                        if w.tls.is_some() { "on" } else { "off" },
+                        w.users.len()
+                    );
+                }
                 ExitCode::SUCCESS
             }
             Err(e) => {
@@ -352,7 +360,12 @@ async fn run(cfg: bandwatch::config::Config) -> ExitCode {
         }
     };
     let addr = listener.local_addr().map_or(cfg.listen, |a| a);
-    tracing::info!(%addr, channels = cfg.channels.len(), "bandwatch listening on http://{addr}/");
+    let scheme = if cfg.web.as_ref().is_some_and(|w| w.tls.is_some()) {
+        "https"
+    } else {
+        "http"
+    };
+    tracing::info!(%addr, channels = cfg.channels.len(), "bandwatch listening on {scheme}://{addr}/");
     match bandwatch::serve(cfg, listener, shutdown_signal()).await {
         Ok(()) => {
             tracing::info!("stopped");

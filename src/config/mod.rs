@@ -14,6 +14,7 @@
 //! | `health` | a channel's `health` table and its specs |
 //! | `bearing` | bearing geometry and defect orders |
 //! | `zones` | ISO 20816-3 zone presets (guidance) |
+//! | `web` | the `[server] web_config` file (TLS, basic auth), checked down to the rustls server config |
 //! | `fixture` | config text for tests and tools, built in code |
 //!
 //! The config layer sits at the bottom: it imports only `crate::units`,
@@ -30,6 +31,7 @@ mod issue;
 mod kinds;
 mod raw;
 mod spec;
+pub mod web;
 pub mod zones;
 
 pub use check::validate;

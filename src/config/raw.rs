@@ -135,6 +135,11 @@ pub struct RawServer {
     /// Longest one request may take to be answered (503 after).
     #[serde(default = "default_request_timeout_s")]
     pub request_timeout_s: f64,
+    /// Web-config file (YAML, the Prometheus exporters' keys) turning on
+    /// TLS and basic auth; relative to the working directory, like
+    /// `[alarms] token_file`.
+    #[serde(default)]
+    pub web_config: Option<std::path::PathBuf>,
 }
 
 fn default_max_connections() -> usize {

@@ -30,6 +30,9 @@ pub struct Config {
     pub listen: SocketAddr,
     /// Limits of the HTTP server (`[server]`).
     pub http: HttpLimits,
+    /// TLS and basic auth (`[server] web_config`), checked; `None`: plain
+    /// HTTP for everyone.
+    pub web: Option<super::web::WebConfig>,
     pub workers: usize,
     pub ring_seconds: f64,
     pub sources: Vec<SourceSpec>,

@@ -7,9 +7,12 @@
 //! - `metrics`: the Prometheus registry and the scrape-time collector
 //! - `error`: `ApiError`, the JSON error every failure is answered with
 //! - `gate`: the bound on request-time DSP (blocking threads, N at once)
+//! - `auth`: basic auth for every route (`[server] web_config` users)
+//! - `server`: the accept loop with its limits, and TLS
 
 pub mod alarms;
 pub mod api;
+pub mod auth;
 pub mod error;
 pub mod gate;
 pub mod metrics;

@@ -17,6 +17,14 @@
 //! - **Request timeout** (`server.request_timeout_s`): a request not
 //!   answered in time gets 503.
 //!
+//! - **TLS** (`server.web_config` with `tls_server_config`): the handshake
+//!   runs in the connection's slot and must finish within the header
+//!   timeout (a stalled one is closed as `header_timeout`); a failed one
+//!   (plain HTTP to the TLS port, a refused client certificate) is counted
+//!   in `bandwatch_http_tls_handshake_errors_total` and the connection
+//!   closed. The idle timeout counts bytes on the socket, so it holds for
+//!   TLS connections as for plain ones.
+//!
 //! Each closing for a limit is counted by reason in
 //! `bandwatch_http_connections_closed_total`.
 
@@ -38,6 +46,7 @@ use hyper_util::service::TowerToHyperService;
 use tokio::io::{AsyncRead, AsyncWrite, ReadBuf};
 use tokio::net::{TcpListener, TcpStream};
 use tokio::sync::{watch, Semaphore};
+use tokio_rustls::TlsAcceptor;
 use tower::ServiceExt as _;
 
 use crate::config::HttpLimits;
@@ -66,7 +75,8 @@ impl CloseReason {
 
 /// Serves `app` on `listener` with `limits` until `shutdown` resolves;
 /// then stops accepting, lets the requests in flight finish (each bounded
-/// by the request timeout) and returns.
+/// by the request timeout) and returns. With `tls`, every connection
+/// starts with a TLS handshake (see the module docs).
 ///
 /// # Errors
 /// None today: accept errors (e.g. out of file descriptors) are logged and
@@ -76,6 +86,7 @@ pub async fn serve<F>(
     app: Router,
     limits: HttpLimits,
     stats: ConnectionMetrics,
+    tls: Option<Arc<rustls::ServerConfig>>,
     shutdown: F,
 ) -> io::Result<()>
 where
@@ -85,6 +96,7 @@ where
     let app = app.layer(middleware::from_fn(move |req: Request, next: Next| {
         answer_within(request_timeout, req, next)
     }));
+    let tls = tls.map(TlsAcceptor::from);
     let slots = Arc::new(Semaphore::new(limits.max_connections.max(1)));
     // Connection tasks hold a receiver; shutdown waits until all are gone.
     let (stop_tx, stop_rx) = watch::channel(false);
@@ -114,9 +126,10 @@ where
         let app = app.clone();
         let stats = stats.clone();
         let mut stop = stop_rx.clone();
+        let tls = tls.clone();
         tokio::spawn(async move {
             stats.open.inc();
-            let reason = serve_connection(stream, app, limits, &mut stop).await;
+            let reason = serve_stream(stream, tls, app, limits, &stats, &mut stop).await;
             if let Some(r) = reason {
                 stats.closed(r);
             }
@@ -131,21 +144,58 @@ where
     Ok(())
 }
 
-/// Serves one connection; returns why the server closed it, if it did so
-/// for a limit.
-async fn serve_connection(
+/// Serves one accepted connection, after its TLS handshake if `tls`;
+/// returns why the server closed it, if it did so for a limit.
+async fn serve_stream(
     stream: TcpStream,
+    tls: Option<TlsAcceptor>,
     app: Router,
     limits: HttpLimits,
+    stats: &ConnectionMetrics,
     stop: &mut watch::Receiver<bool>,
 ) -> Option<CloseReason> {
     let started = Instant::now();
     let activity = Arc::new(AtomicU64::new(0));
-    let io = TokioIo::new(Watched {
+    let watched = Watched {
         inner: stream,
         started,
         last: activity.clone(),
-    });
+    };
+    let Some(acceptor) = tls else {
+        return serve_connection(watched, started, activity, app, limits, stop).await;
+    };
+    let handshake = tokio::time::timeout(limits.header_timeout, acceptor.accept(watched));
+    tokio::select! {
+        r = handshake => match r {
+            Err(_) => Some(CloseReason::HeaderTimeout),
+            Ok(Err(e)) => {
+                stats.tls_handshake_errors.inc();
+                tracing::debug!(error = %e, "TLS handshake failed");
+                None
+            }
+            Ok(Ok(s)) => serve_connection(s, started, activity, app, limits, stop).await,
+        },
+        // Shutdown: a connection still in its handshake has no request
+        // in flight; close it.
+        _ = stop.changed() => None,
+    }
+}
+
+/// Serves HTTP/1.1 on `io` (plain or TLS); `activity` is updated by the
+/// socket under it (ms since `started`). Returns why the server closed the
+/// connection, if it did so for a limit.
+async fn serve_connection<I>(
+    io: I,
+    started: Instant,
+    activity: Arc<AtomicU64>,
+    app: Router,
+    limits: HttpLimits,
+    stop: &mut watch::Receiver<bool>,
+) -> Option<CloseReason>
+where
+    I: AsyncRead + AsyncWrite + Unpin + Send + 'static,
+{
+    let io = TokioIo::new(io);
     let service = TowerToHyperService::new(
         app.map_request(|req: Request<Incoming>| req.map(axum::body::Body::new)),
     );

@@ -531,6 +531,7 @@ fn capture_config(spec: ChannelSpec, speed_hz: Option<f64>) -> Config {
         alarms: None,
         listen: std::net::SocketAddr::from(([127, 0, 0, 1], 0)),
         http: crate::config::HttpLimits::default(),
+        web: None,
         workers: 1,
         ring_seconds: 2.0,
         sources: vec![source],

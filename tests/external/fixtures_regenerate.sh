@@ -3,7 +3,8 @@
 # committed ones, byte for byte.
 #
 # - makes a fresh virtual environment in a temporary directory,
-# - pip installs tests/reference/requirements.txt (numpy and scipy, pinned),
+# - pip installs tests/reference/requirements.txt (numpy and scipy, pinned;
+#   bcrypt there is for tests/external/prometheus_tls.sh),
 # - runs tests/reference/make_fixtures.py into another temporary directory,
 # - compares with tests/reference/fixtures: exit 0 if identical, 1 with a
 #   summary of the differences otherwise, 2 if a step failed or timed out.

@@ -22,12 +22,14 @@ use crate::config::alarms::{AlarmsSpec, RawAlarms};
 use crate::config::issue::{ConfigIssue, Issues};
 use crate::config::raw::{RawConfig, RawDsp, RawServer};
 use crate::config::spec::{ChannelSpec, Config, HttpLimits};
+use crate::config::web::{load_web_config, WebConfig};
 
 /// Checks every rule and returns the typed config, or every problem found.
 pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
     let mut issues = Issues::default();
     let listen = check_server(&mut issues, &raw.server);
     let http = check_http_limits(&mut issues, &raw.server);
+    let web = check_web_config(&mut issues, &raw.server);
     let workers = check_dsp(&mut issues, &raw.dsp);
     let sources = sources::check_sources(&mut issues, &raw.sources);
     let channels = channels::check_channels(&mut issues, raw, &sources);
@@ -39,6 +41,7 @@ pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
             alarms,
             listen,
             http,
+            web,
             workers,
             ring_seconds: raw.dsp.ring_seconds,
             sources,
@@ -83,6 +86,19 @@ fn check_http_limits(issues: &mut Issues, raw: &RawServer) -> HttpLimits {
         header_timeout: seconds("header_timeout_s", raw.header_timeout_s),
         idle_timeout: seconds("idle_timeout_s", raw.idle_timeout_s),
         request_timeout: seconds("request_timeout_s", raw.request_timeout_s),
+    }
+}
+
+/// `[server] web_config`: the file is read and checked whole (TLS files,
+/// key against certificate, bcrypt hashes); its error names its own field.
+fn check_web_config(issues: &mut Issues, raw: &RawServer) -> Option<WebConfig> {
+    let path = raw.web_config.as_ref()?;
+    match load_web_config(path) {
+        Ok(w) => Some(w),
+        Err(e) => {
+            issues.add("server.web_config", e.to_string());
+            None
+        }
     }
 }
 

@@ -241,6 +241,11 @@ pub struct ConnectionMetrics {
     pub open: IntGauge,
     pub refused: IntCounter,
     pub accept_errors: IntCounter,
+    /// TLS handshakes that failed (not TLS, a bad or missing client
+    /// certificate, a protocol error); a stalled one is a header timeout.
+    pub tls_handshake_errors: IntCounter,
+    /// Requests refused 401 by the basic-auth gate (`http::auth`).
+    pub auth_failures: IntCounter,
     closed: IntCounterVec,
 }
 
@@ -265,6 +270,16 @@ impl ConnectionMetrics {
                 "Failed accepts of HTTP connections (e.g. no file descriptor left).",
             )
             .unwrap_or_else(|e| unregistered(e, |n, h| IntCounter::new(n, h))),
+            tls_handshake_errors: IntCounter::new(
+                "bandwatch_http_tls_handshake_errors_total",
+                "TLS handshakes on the HTTP port that failed (e.g. plain HTTP, a refused client certificate).",
+            )
+            .unwrap_or_else(|e| unregistered(e, |n, h| IntCounter::new(n, h))),
+            auth_failures: IntCounter::new(
+                "bandwatch_http_auth_failures_total",
+                "HTTP requests refused 401 for missing or wrong credentials (basic auth or bearer token).",
+            )
+            .unwrap_or_else(|e| unregistered(e, |n, h| IntCounter::new(n, h))),
             closed: IntCounterVec::new(
                 Opts::new(
                     "bandwatch_http_connections_closed_total",
@@ -282,6 +297,8 @@ impl ConnectionMetrics {
         register(registry, Box::new(m.open.clone()));
         register(registry, Box::new(m.refused.clone()));
         register(registry, Box::new(m.accept_errors.clone()));
+        register(registry, Box::new(m.tls_handshake_errors.clone()));
+        register(registry, Box::new(m.auth_failures.clone()));
         register(registry, Box::new(m.closed.clone()));
         m
     }
