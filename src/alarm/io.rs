@@ -185,14 +185,21 @@ impl Ledger {
 
 /// Why a capture that a previous run's event names is not on disk, when
 /// nothing recorded its fate.
-fn stopped_reason(unfinished: bool) -> String {
+fn stopped_reason(unfinished: bool, records_kept: bool) -> String {
     if unfinished {
         "the daemon stopped while the capture was being written; \
          its unfinished files were removed at start"
             .to_string()
-    } else {
+    } else if records_kept {
         "the daemon stopped before the capture was written (killed or crashed \
          during its post-trigger window, or before the alarm I/O thread wrote it)"
+            .to_string()
+    } else {
+        // A journal without any capture record may come from a version
+        // that did not journal retention's removals.
+        "the daemon stopped before the capture was written (killed or crashed \
+         during its post-trigger window, or before the alarm I/O thread wrote it), \
+         or retention removed it before removals were journaled"
             .to_string()
     }
 }
@@ -209,6 +216,7 @@ pub fn reconcile_captures(
 ) -> (Ledger, Vec<Event>) {
     let mut ledger = Ledger::default();
     let mut new = Vec::new();
+    let records_kept = events.iter().any(|e| e.kind == EventKind::Capture);
     for e in events.iter().filter(|e| e.kind == EventKind::Capture) {
         let Some(id) = &e.capture else { continue };
         match e.cause.as_deref() {
@@ -231,7 +239,7 @@ pub fn reconcile_captures(
         if ledger.accounted(id) || capture_files::exists(dir, id) {
             continue;
         }
-        let reason = stopped_reason(report.unfinished.contains(id));
+        let reason = stopped_reason(report.unfinished.contains(id), records_kept);
         ledger.set_lost(id, &reason);
         new.push(Event::capture_record(
             &e.channel,
