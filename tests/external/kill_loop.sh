@@ -304,8 +304,8 @@ for i in $(seq 1 "$kills"); do
             -H "Authorization: Bearer $token" "$bw/api/v1/alarms/pump-nde/overall-rms/ack" || true)"
         [ "$code" = 200 ] && acked=1
     fi
-    # Live 0.3 to 3.0 s: trips, captures being collected and written.
-    sleep "$(python3 -c 'import random; print(round(random.uniform(0.3, 3.0), 2))')"
+    # Live 0.3 to 2.0 s: trips, captures being collected and written.
+    sleep "$(python3 -c 'import random; print(round(random.uniform(0.3, 2.0), 2))')"
     kill -KILL "$bw_pid" 2>/dev/null || fail "run $i: daemon died before its kill"
     wait "$bw_pid" 2>/dev/null || true
     bw_pid=""
