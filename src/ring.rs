@@ -41,15 +41,52 @@ const MARK_CAPACITY: usize = 4096;
 /// Samples between two time anchors when nothing else marks the stream.
 const ANCHOR_EVERY: u64 = 1 << 16;
 
+/// A ring whose memory could not be allocated.
+#[derive(Debug, thiserror::Error)]
+#[error("cannot allocate a ring of {samples} samples ({bytes} bytes): {source}")]
+pub struct RingAllocError {
+    pub samples: usize,
+    pub bytes: u64,
+    #[source]
+    pub source: std::collections::TryReserveError,
+}
+
 /// Creates the two ends of a channel's ring.
+///
+/// # Panics
+/// If the memory cannot be allocated; the pipeline uses
+/// [`try_channel_ring`], which returns that as an error.
 pub fn channel_ring(
     capacity: usize,
     sample_rate_hz: f64,
     counters: Arc<ChannelCounters>,
 ) -> (RingWriter, RingReader) {
-    let (prod, cons) = HeapRb::<f32>::new(capacity.max(1)).split();
+    match try_channel_ring(capacity, sample_rate_hz, counters) {
+        Ok(ends) => ends,
+        Err(e) => panic!("{e}"),
+    }
+}
+
+/// [`channel_ring`], with an allocation failure returned as an error
+/// instead of aborting the process (the allocation is fallible:
+/// `try_reserve_exact` underneath).
+///
+/// # Errors
+/// [`RingAllocError`] naming the samples and bytes asked for.
+pub fn try_channel_ring(
+    capacity: usize,
+    sample_rate_hz: f64,
+    counters: Arc<ChannelCounters>,
+) -> Result<(RingWriter, RingReader), RingAllocError> {
+    let samples = capacity.max(1);
+    let rb = HeapRb::<f32>::try_new(samples).map_err(|source| RingAllocError {
+        samples,
+        bytes: (samples as u64).saturating_mul(std::mem::size_of::<f32>() as u64),
+        source,
+    })?;
+    let (prod, cons) = rb.split();
     let (mprod, mcons) = HeapRb::<Mark>::new(MARK_CAPACITY).split();
-    (
+    Ok((
         RingWriter {
             prod: prod.freeze(),
             marks: mprod,
@@ -65,7 +102,7 @@ pub fn channel_ring(
             marks: mcons,
             popped: 0,
         },
-    )
+    ))
 }
 
 /// The source's end of the ring.

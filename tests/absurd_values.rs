@@ -82,3 +82,75 @@ fn a_band_whose_power_overflows_is_out_of_range_not_ok() {
     assert_eq!(s.bands[0].status, BandStatus::Ok);
     assert!((s.bands[0].value - 2f64.sqrt().recip()).abs() < 1e-3);
 }
+
+/// The channel's health as the API shows it (`board_json`, the `health`
+/// object of `/api/v1/channels/{name}`) after `samples`, on a channel with
+/// the 50–150 Hz band or with no band at all.
+fn health_after(samples: &[f32], with_band: bool) -> serde_json::Value {
+    let mut ch = Channel::new("c", "daq", 0).block(1024).no_averaging();
+    if with_band {
+        ch = ch.band("tone", 50.0, 150.0);
+    }
+    let config = common::config(
+        &Fixture::new()
+            .source(
+                Source::new("daq", "tcp-listen")
+                    .set("listen", quoted("127.0.0.1:0"))
+                    .stream(1, FS as u32),
+            )
+            .channel(ch),
+    );
+    let mut p = Builder::new(&config)
+        .ring(RingSize::Headroom(samples.len()))
+        .alarms(AlarmMode::InMemory)
+        .gather(false)
+        .assemble()
+        .expect("assemble")
+        .inline();
+    let mut w = p.take_inputs().remove(0).writer;
+    assert_eq!(w.write(0, 0, samples), samples.len());
+    p.drain();
+    let (health, _) = bandwatch::http::alarms::board_json(&p.state.channels[0]);
+    health
+}
+
+fn reasons(h: &serde_json::Value) -> Vec<String> {
+    h["reasons"]
+        .as_array()
+        .expect("reasons")
+        .iter()
+        .map(|r| r.as_str().expect("reason").to_string())
+        .collect()
+}
+
+#[test]
+fn an_absurd_valued_channel_is_not_ok_with_reason_out_of_range() {
+    let tone = |amp: f64| -> Vec<f32> {
+        (0..4096)
+            .map(|i| (amp * (2.0 * std::f64::consts::PI * 100.0 * i as f64 / FS).sin()) as f32)
+            .collect()
+    };
+    // A 1e20 g tone: the band's power passes f32::MAX (out_of_range band)
+    // and the excursions' squares pass it too (the overall f64 pass).
+    for with_band in [true, false] {
+        let h = health_after(&tone(1e20), with_band);
+        assert_eq!(h["ok"], false, "band {with_band}: {h}");
+        assert!(
+            reasons(&h).iter().any(|r| r == "out_of_range"),
+            "band {with_band}: {h}"
+        );
+        // Control: the same tone at 1 g is never out of range.
+        let h = health_after(&tone(1.0), with_band);
+        assert!(
+            !reasons(&h).iter().any(|r| r == "out_of_range"),
+            "band {with_band}: {h}"
+        );
+    }
+    // ±3e38 (the square wave above): measured by the f64 pass only.
+    let x: Vec<f32> = (0..4096)
+        .map(|i| if i % 2 == 0 { 3e38 } else { -3e38 })
+        .collect();
+    let h = health_after(&x, false);
+    assert_eq!(h["ok"], false, "{h}");
+    assert!(reasons(&h).iter().any(|r| r == "out_of_range"), "{h}");
+}

@@ -142,3 +142,113 @@ fn a_full_queue_drops_and_counts_without_blocking() {
         sent
     );
 }
+
+/// Issue 13: "a kill during a capture's post-trigger window leaves a
+/// journal event pointing at a capture id that never reaches the disk".
+/// A run that journaled trips and stopped before writing their captures
+/// (what SIGKILL leaves: the event on disk, the capture never queued, or
+/// its write cut off) is accounted for at the next start: each such
+/// capture is lost with the reason, journaled once; a capture retention
+/// removed is pruned, never lost.
+#[test]
+fn captures_that_never_reached_the_disk_are_reported_lost_at_start() {
+    use bandwatch::alarm::capture::exists;
+    use bandwatch::alarm::io::CaptureFate;
+    use bandwatch::alarm::journal::EventKind;
+
+    let dir = TempDir::new("io-lost");
+    let ret = Retention {
+        max_count: 1,
+        max_bytes: 1 << 30,
+    };
+    let jdir = dir.path().join("journal");
+    let cdir = dir.path().join("captures");
+    let open = || {
+        let (journal, replayed) = Journal::open(&jdir, JournalLimits::default()).unwrap();
+        let (store, _) = CaptureStore::open(&cdir, ret).unwrap();
+        AlarmIo::start(journal, store, dir.path().join("b"), &replayed.events, 64).unwrap()
+    };
+    let ids: Vec<String> = (0..4)
+        .map(|k| capture_id(T0 + k, "pump-de", "bpfo", "alert"))
+        .collect();
+    let named = |k: usize| {
+        let mut e = event(k as u64);
+        e.capture = Some(ids[k].clone());
+        e
+    };
+    let capture = |k: usize| {
+        let mut ring = HistoryRing::new(1000, 25_600.0);
+        ring.push(0, T0, &[0.5; 1000]);
+        let mut trip = TripInfo {
+            unix_ns: T0 + k as u64,
+            time: String::new(),
+            channel: "pump-de".into(),
+            band: "bpfo".into(),
+            unit: "g".into(),
+            from: "normal".into(),
+            to: "alert".into(),
+            value: Some(1.0),
+            limits: EventLimits::default(),
+            at_sample: 1000,
+        };
+        trip.time = String::new();
+        CaptureBuilder::start(ids[k].clone(), trip, &ring, 1000, 0, None, vec![])
+            .finish(EndReason::Complete)
+    };
+
+    // Run 1: captures 0 and 1 written (retention keeps one: 0 is pruned);
+    // 2 and 3 journaled but never written; 3 left a `.tmp` behind.
+    let (io, outbox) = open();
+    for k in 0..4 {
+        assert!(outbox.send(Message::Event(Box::new(named(k)))));
+    }
+    assert!(outbox.send(Message::Capture(Box::new(capture(0)))));
+    assert!(outbox.send(Message::Capture(Box::new(capture(1)))));
+    let shared = io.shared().clone();
+    io.stop();
+    assert_eq!(shared.capture_fate(&cdir, &ids[0]), CaptureFate::Pruned);
+    assert_eq!(shared.capture_fate(&cdir, &ids[1]), CaptureFate::Stored);
+    // Still being collected, as far as this run knows.
+    assert_eq!(shared.capture_fate(&cdir, &ids[2]), CaptureFate::Pending);
+    std::fs::write(cdir.join(format!("{}.bwf1.tmp", ids[3])), b"torn").unwrap();
+
+    // Run 2: the start accounts for them.
+    let (io, _outbox) = open();
+    let s = io.shared().clone();
+    assert_eq!(s.capture_fate(&cdir, &ids[0]), CaptureFate::Pruned);
+    assert_eq!(s.capture_fate(&cdir, &ids[1]), CaptureFate::Stored);
+    match s.capture_fate(&cdir, &ids[2]) {
+        CaptureFate::Lost(r) => assert!(r.contains("post-trigger window"), "{r}"),
+        other => panic!("{other:?}"),
+    }
+    match s.capture_fate(&cdir, &ids[3]) {
+        CaptureFate::Lost(r) => assert!(r.contains("while the capture was being written"), "{r}"),
+        other => panic!("{other:?}"),
+    }
+    assert!(!exists(&cdir, &ids[3]));
+    assert_eq!(s.lost_captures().len(), 2);
+    io.stop();
+
+    // Run 3: the records are read back, not written again.
+    let (io, _outbox) = open();
+    match io.shared().capture_fate(&cdir, &ids[2]) {
+        CaptureFate::Lost(r) => assert!(r.contains("post-trigger window"), "{r}"),
+        other => panic!("{other:?}"),
+    }
+    io.stop();
+    let r = replay(&jdir);
+    let records: Vec<(String, String)> = r
+        .events
+        .iter()
+        .filter(|e| e.kind == EventKind::Capture)
+        .map(|e| (e.capture.clone().unwrap(), e.cause.clone().unwrap()))
+        .collect();
+    assert_eq!(
+        records,
+        vec![
+            (ids[0].clone(), "pruned".to_string()),
+            (ids[2].clone(), "lost".to_string()),
+            (ids[3].clone(), "lost".to_string()),
+        ]
+    );
+}

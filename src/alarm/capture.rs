@@ -766,6 +766,28 @@ pub struct CaptureInfo {
 pub struct CaptureStore {
     dir: PathBuf,
     retention: Retention,
+    /// What [`CaptureStore::open`] found, by capture id.
+    opened: OpenReport,
+}
+
+/// What opening the store did to particular captures, for the start-up
+/// accounting of journal events whose capture is not on disk
+/// ([`crate::alarm::io::reconcile_captures`]).
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct OpenReport {
+    /// Ids whose unfinished files (`.tmp`, a waveform without metadata)
+    /// were removed: a write the daemon's stop interrupted.
+    pub unfinished: std::collections::BTreeSet<String>,
+    /// Captures removed by retention at open.
+    pub pruned: Vec<CaptureInfo>,
+}
+
+/// The capture id of a file name in the capture directory.
+fn id_of_file(name: &str) -> &str {
+    let base = name.strip_suffix(TEMP_SUFFIX).unwrap_or(name);
+    base.strip_suffix(".bwf1")
+        .or_else(|| base.strip_suffix(".json"))
+        .unwrap_or(base)
 }
 
 fn io_err(path: &Path) -> impl FnOnce(io::Error) -> CaptureError + '_ {
@@ -791,15 +813,18 @@ impl CaptureStore {
                 names.push(n.to_string());
             }
         }
+        let mut opened = OpenReport::default();
         for n in &names {
             let path = dir.join(n);
             if n.ends_with(TEMP_SUFFIX) {
                 fs::remove_file(&path).map_err(io_err(&path))?;
                 clean.temp_files += 1;
+                opened.unfinished.insert(id_of_file(n).to_string());
             } else if let Some(id) = n.strip_suffix(".bwf1") {
                 if !names.iter().any(|m| m == &format!("{id}.json")) {
                     fs::remove_file(&path).map_err(io_err(&path))?;
                     clean.orphans += 1;
+                    opened.unfinished.insert(id.to_string());
                 }
             }
         }
@@ -812,17 +837,33 @@ impl CaptureStore {
                 "removed unfinished capture files left by a crash"
             );
         }
-        let store = CaptureStore {
+        let mut store = CaptureStore {
             dir: dir.to_path_buf(),
             retention,
+            opened: OpenReport::default(),
         };
         // A crash between a write and its pruning can leave one too many.
-        store.prune()?;
+        opened.pruned = store.prune_infos()?;
+        store.opened = opened;
         Ok((store, clean))
     }
 
     pub fn dir(&self) -> &Path {
         &self.dir
+    }
+
+    /// What [`CaptureStore::open`] removed, by capture id.
+    pub fn open_report(&self) -> &OpenReport {
+        &self.opened
+    }
+
+    /// Creates the directory again if it has gone (removed under a
+    /// running daemon): done before a retried write.
+    ///
+    /// # Errors
+    /// [`CaptureError::Io`].
+    pub fn ensure_dir(&self) -> Result<(), CaptureError> {
+        fs::create_dir_all(&self.dir).map_err(io_err(&self.dir))
     }
 
     /// Writes a capture atomically (see the module docs), then prunes.
@@ -833,6 +874,18 @@ impl CaptureStore {
     /// [`CaptureError::Io`]. A failed write leaves at most `.tmp` files,
     /// removed at the next start.
     pub fn write(&self, cap: &Capture) -> Result<(CaptureMeta, usize), CaptureError> {
+        self.write_pruning(cap).map(|(m, p)| (m, p.len()))
+    }
+
+    /// [`CaptureStore::write`], returning the captures retention removed.
+    ///
+    /// # Errors
+    /// As [`CaptureStore::write`]. A write that fails removes the `.tmp`
+    /// files it made (best effort), so a retry starts clean.
+    pub fn write_pruning(
+        &self,
+        cap: &Capture,
+    ) -> Result<(CaptureMeta, Vec<CaptureInfo>), CaptureError> {
         validate_id(&cap.id)?;
         let wave_name = format!("{}.bwf1", cap.id);
         let meta_name = format!("{}.json", cap.id);
@@ -890,13 +943,21 @@ impl CaptureStore {
 
         let wave_tmp = self.dir.join(format!("{wave_name}{TEMP_SUFFIX}"));
         let meta_tmp = self.dir.join(format!("{meta_name}{TEMP_SUFFIX}"));
-        write_synced(&wave_tmp, &bytes).map_err(io_err(&wave_tmp))?;
-        write_synced(&meta_tmp, &json).map_err(io_err(&meta_tmp))?;
-        fs::rename(&wave_tmp, &wave_path).map_err(io_err(&wave_tmp))?;
         let meta_path = self.dir.join(&meta_name);
-        fs::rename(&meta_tmp, &meta_path).map_err(io_err(&meta_tmp))?;
-        fsync_dir(&self.dir).map_err(io_err(&self.dir))?;
-        let removed = self.prune()?;
+        let stored = (|| {
+            write_synced(&wave_tmp, &bytes).map_err(io_err(&wave_tmp))?;
+            write_synced(&meta_tmp, &json).map_err(io_err(&meta_tmp))?;
+            fs::rename(&wave_tmp, &wave_path).map_err(io_err(&wave_tmp))?;
+            fs::rename(&meta_tmp, &meta_path).map_err(io_err(&meta_tmp))?;
+            fsync_dir(&self.dir).map_err(io_err(&self.dir))
+        })();
+        if let Err(e) = stored {
+            for p in [&wave_tmp, &meta_tmp] {
+                let _ = fs::remove_file(p);
+            }
+            return Err(e);
+        }
+        let removed = self.prune_infos()?;
         Ok((meta, removed))
     }
 
@@ -906,9 +967,17 @@ impl CaptureStore {
     /// # Errors
     /// [`CaptureError::Io`].
     pub fn prune(&self) -> Result<usize, CaptureError> {
+        self.prune_infos().map(|r| r.len())
+    }
+
+    /// [`CaptureStore::prune`], returning the captures removed.
+    ///
+    /// # Errors
+    /// [`CaptureError::Io`].
+    pub fn prune_infos(&self) -> Result<Vec<CaptureInfo>, CaptureError> {
         let mut all = list(&self.dir)?;
         let mut total: u64 = all.iter().map(|c| c.bytes).sum();
-        let mut removed = 0;
+        let mut removed = Vec::new();
         // `list` is oldest first.
         while all.len() > 1
             && (all.len() > self.retention.max_count || total > self.retention.max_bytes)
@@ -925,9 +994,9 @@ impl CaptureStore {
                 }
             }
             total = total.saturating_sub(old.bytes);
-            removed += 1;
+            removed.push(old);
         }
-        if removed > 0 {
+        if !removed.is_empty() {
             fsync_dir(&self.dir).map_err(io_err(&self.dir))?;
         }
         Ok(removed)
@@ -979,6 +1048,12 @@ pub fn list(dir: &Path) -> Result<Vec<CaptureInfo>, CaptureError> {
     }
     out.sort_by(|a, b| a.id.cmp(&b.id));
     Ok(out)
+}
+
+/// Whether capture `id` is stored in `dir` (its metadata exists: a capture
+/// exists only when its `.json` does).
+pub fn exists(dir: &Path, id: &str) -> bool {
+    validate_id(id).is_ok() && dir.join(format!("{id}.json")).is_file()
 }
 
 /// The metadata of capture `id`.

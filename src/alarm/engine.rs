@@ -30,7 +30,7 @@ use crate::alarm::journal::{Event, EventLimits};
 use crate::alarm::state::{AckError, AlarmMachine, AlarmMemory, AlarmState, Cause, Input};
 use crate::clock::unix_now_ns;
 use crate::config::{AlarmTarget, AveragingMode, ChannelAlarm, ChannelSpec};
-use crate::dsp::bands::BandValue;
+use crate::dsp::bands::{BandStatus, BandValue};
 use crate::dsp::stats::Overall;
 
 /// What an operator asks of an alarm, with where to send the answer.
@@ -450,6 +450,11 @@ impl ChannelAlarms {
         speed_hz: Option<f64>,
     ) {
         let now = self.clock.now();
+        let out_of_range = crate::dsp::stats::out_of_range(overall)
+            || bands.iter().any(|b| b.status == BandStatus::OutOfRange);
+        if let Some(c) = self.health.results(now, out_of_range) {
+            self.health_changed(&c);
+        }
         let healthy = self.health.is_ok();
         for i in 0..self.machines.len() {
             let a = &self.specs[i];

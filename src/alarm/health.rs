@@ -17,7 +17,13 @@
 //!   common practice: roughly 2 to 20 V on a 24 V supply);
 //! - **stale**: no samples for `after_s` seconds (checked by [`tick`]);
 //! - **gaps**: more than `max` discontinuities within `window_s` seconds;
-//! - **no data**: nothing received yet since start.
+//! - **no data**: nothing received yet since start;
+//! - **out of range**: the newest result of the channel could not be
+//!   measured: a band's power passed the f32 range
+//!   (`BandStatus::OutOfRange`) or the samples' excursions did
+//!   ([`crate::dsp::stats::out_of_range`]): an absurd value from the sensor
+//!   or its scaling, never a level to trust. Set and cleared per published
+//!   result by [`HealthDetector::results`].
 //!
 //! Any fault makes the channel not OK at once. It is OK again only after no
 //! fault has been present for `recover_s` seconds (a delay before
@@ -53,16 +59,18 @@ pub enum Reason {
     Bias,
     Stale,
     Gaps,
+    OutOfRange,
 }
 
 impl Reason {
-    pub const ALL: [Reason; 6] = [
+    pub const ALL: [Reason; 7] = [
         Reason::NoData,
         Reason::Flatline,
         Reason::Clipping,
         Reason::Bias,
         Reason::Stale,
         Reason::Gaps,
+        Reason::OutOfRange,
     ];
 
     pub fn as_str(self) -> &'static str {
@@ -73,6 +81,7 @@ impl Reason {
             Reason::Bias => "bias",
             Reason::Stale => "stale",
             Reason::Gaps => "gaps",
+            Reason::OutOfRange => "out_of_range",
         }
     }
 
@@ -347,6 +356,14 @@ impl HealthDetector {
             }
             self.gap_times.push_back(now);
         }
+        self.update(now)
+    }
+
+    /// A result was published at `now`: `out_of_range` says whether any
+    /// of its values (overall levels, bands) could not be measured. Sets or
+    /// clears the `out_of_range` fault.
+    pub fn results(&mut self, now: f64, out_of_range: bool) -> Option<HealthChange> {
+        self.faults.set(Reason::OutOfRange, out_of_range);
         self.update(now)
     }
 

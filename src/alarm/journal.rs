@@ -52,6 +52,10 @@ pub enum EventKind {
     Baseline,
     /// A latch carried over into a new journal file at rotation.
     State,
+    /// What became of a capture an earlier event named, when it is not on
+    /// disk: `cause` "lost" (never written; `detail` says why) or "pruned"
+    /// (removed by retention).
+    Capture,
 }
 
 /// Limits in force at the event, in the band's unit.
@@ -186,6 +190,23 @@ impl Event {
                 .map(str::to_string)
                 .collect(),
         );
+        e
+    }
+
+    /// A capture that is not on disk: `cause` "lost" (with the reason in
+    /// `detail`) or "pruned" (retention removed it).
+    pub fn capture_record(
+        channel: &str,
+        band: &str,
+        id: &str,
+        cause: &str,
+        detail: Option<String>,
+        unix_ns: u64,
+    ) -> Event {
+        let mut e = Event::blank(EventKind::Capture, channel, Some(band), unix_ns);
+        e.capture = Some(id.to_string());
+        e.cause = Some(cause.to_string());
+        e.detail = detail;
         e
     }
 
@@ -422,6 +443,34 @@ impl Journal {
         Ok(())
     }
 
+    /// Gets the journal writable again after a failed [`Journal::append`],
+    /// before a retry: cuts whatever part of a line the failed write left
+    /// (so the retry cannot leave a torn line before its own), creates the
+    /// directory again if it has gone, and reopens the active file. A
+    /// rotation the failure interrupted is finished: an active file that
+    /// starts empty gets the latches carried over, as at rotation.
+    ///
+    /// # Errors
+    /// [`JournalError::Io`] if the directory or file cannot be made.
+    pub fn recover(&mut self, unix_ns: u64) -> Result<(), JournalError> {
+        let _ = self.file.set_len(self.size);
+        let dir = self.dir.clone();
+        let active = dir.join(ACTIVE);
+        let err = |p: PathBuf| move |source| JournalError::Io { path: p, source };
+        fs::create_dir_all(&dir).map_err(err(dir.clone()))?;
+        self.file = OpenOptions::new()
+            .create(true)
+            .append(true)
+            .open(&active)
+            .map_err(err(active.clone()))?;
+        fsync_dir(&dir).map_err(err(dir.clone()))?;
+        self.size = self.file.metadata().map_err(err(active))?.len();
+        if self.size == 0 {
+            self.carry_latches(unix_ns)?;
+        }
+        Ok(())
+    }
+
     fn rotate(&mut self, unix_ns: u64) -> Result<(), JournalError> {
         let dir = self.dir.clone();
         let err = |p: PathBuf| move |source| JournalError::Io { path: p, source };
@@ -440,6 +489,7 @@ impl Journal {
         }
         let active = dir.join(ACTIVE);
         fs::rename(&active, dir.join(rotated_name(1))).map_err(err(active.clone()))?;
+        self.rotations += 1;
         self.file = OpenOptions::new()
             .create(true)
             .append(true)
@@ -447,7 +497,12 @@ impl Journal {
             .map_err(err(active.clone()))?;
         fsync_dir(&dir).map_err(err(dir.clone()))?;
         self.size = 0;
-        self.rotations += 1;
+        self.carry_latches(unix_ns)
+    }
+
+    /// Writes one `state` event per latched alarm at the start of a new
+    /// active file.
+    fn carry_latches(&mut self, unix_ns: u64) -> Result<(), JournalError> {
         // Carry the latches over, so that they outlive the old files.
         let carried: Vec<((String, String), AlarmMemory)> = self
             .memories

@@ -34,7 +34,7 @@ mod spec;
 pub mod web;
 pub mod zones;
 
-pub use check::validate;
+pub use check::{ring_bytes, validate, MAX_RING_BYTES_PER_CHANNEL, MAX_RING_BYTES_TOTAL};
 pub use issue::ConfigIssue;
 pub use kinds::{
     AveragingMode, Detrend, FlowControl, Measure, Parity, SecondConnection, SpectrumKind,

@@ -84,6 +84,20 @@ pub fn overall_about(x: &[f32], m: f64) -> Overall {
     }
 }
 
+/// Largest excursion from the mean that the f32 path measures: its square
+/// is `f32::MAX` (≈ 1.8e19). Past it the power spectrum, kept in f32,
+/// overflows and the overall RMS needs the f64 pass of [`overall_about`].
+pub const F32_SQUARE_LIMIT: f64 = 1.844_674_3e19;
+
+/// Whether overall levels come from samples beyond what the f32 path
+/// measures (an excursion whose square passes `f32::MAX`: the f64 fallback
+/// of [`overall_about`]), or are not finite: an absurd input, whose health
+/// reason is `out_of_range` (README, "Channel health").
+pub fn out_of_range(o: &Overall) -> bool {
+    let fields = [o.mean, o.rms, o.peak, o.peak_to_peak, o.crest_factor];
+    fields.iter().any(|v| !v.is_finite()) || o.peak >= F32_SQUARE_LIMIT
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

@@ -200,14 +200,60 @@ pub async fn events(State(st): State<HttpState>) -> Result<Json<Value>, ApiError
             }
         },
     };
-    Ok(Json(json!({ "events": events, "captures": captures })))
+    let io = st.app.alarm_io.as_ref();
+    let mut lost = Vec::new();
+    let mut listed = Vec::with_capacity(events.len());
+    for e in &events {
+        let mut v = serde_json::to_value(e).map_err(|_| ApiError::Internal)?;
+        if let (Some(id), Some(io), Some(dir), Value::Object(m)) =
+            (&e.capture, io, &st.app.captures_dir, &mut v)
+        {
+            let fate = io.capture_fate(dir, id);
+            m.insert("capture_status".into(), fate.as_str().into());
+            if let Some(r) = fate.reason() {
+                m.insert("capture_lost_reason".into(), r.into());
+            }
+        }
+        listed.push(v);
+    }
+    if let Some(io) = io {
+        for (id, reason) in io.lost_captures() {
+            lost.push(json!({ "id": id, "reason": reason }));
+        }
+    }
+    Ok(Json(json!({
+        "events": listed,
+        "captures": captures,
+        "lost_captures": lost,
+    })))
 }
 
-fn capture_error(e: capture::CaptureError) -> ApiError {
+/// A capture that cannot be read: one an event names but that is not on
+/// disk says what became of it ([`crate::alarm::io::CaptureFate`]).
+fn capture_error(st: &HttpState, e: capture::CaptureError) -> ApiError {
     match e {
-        capture::CaptureError::BadId(id) | capture::CaptureError::NotFound(id) => {
-            ApiError::UnknownCapture(id)
-        }
+        capture::CaptureError::NotFound(id) => match (&st.app.alarm_io, &st.app.captures_dir) {
+            (Some(io), Some(dir)) => {
+                let known = io
+                    .recent_events()
+                    .iter()
+                    .any(|e| e.capture.as_deref() == Some(id.as_str()));
+                let fate = io.capture_fate(dir, &id);
+                let recorded = !matches!(fate, crate::alarm::io::CaptureFate::Stored)
+                    && (known || io.lost_captures().contains_key(&id));
+                if recorded {
+                    ApiError::CaptureUnavailable {
+                        status: fate.as_str(),
+                        reason: fate.reason().map(str::to_string),
+                        id,
+                    }
+                } else {
+                    ApiError::UnknownCapture(id)
+                }
+            }
+            _ => ApiError::UnknownCapture(id),
+        },
+        capture::CaptureError::BadId(id) => ApiError::UnknownCapture(id),
         other => {
             tracing::error!(error = %other, "capture read failed");
             ApiError::Internal
@@ -226,7 +272,7 @@ pub async fn event(
         .captures_dir
         .as_ref()
         .ok_or_else(|| ApiError::UnknownCapture(id.clone()))?;
-    let meta = capture::read_meta(dir, &id).map_err(capture_error)?;
+    let meta = capture::read_meta(dir, &id).map_err(|e| capture_error(&st, e))?;
     let mut body = serde_json::to_value(&meta).map_err(|_| ApiError::Internal)?;
     if let Value::Object(m) = &mut body {
         m.insert(
@@ -246,7 +292,7 @@ pub async fn event_waveform(
         .captures_dir
         .as_ref()
         .ok_or_else(|| ApiError::UnknownCapture(id.clone()))?;
-    let bytes = capture::read_waveform(dir, &id).map_err(capture_error)?;
+    let bytes = capture::read_waveform(dir, &id).map_err(|e| capture_error(&st, e))?;
     Ok((
         [
             (header::CONTENT_TYPE, "application/octet-stream".to_string()),

@@ -35,6 +35,15 @@ pub enum ApiError {
     /// No capture with that id.
     #[error("no capture {0:?}")]
     UnknownCapture(String),
+    /// An event names this capture, but it is not on disk: still being
+    /// collected ("pending"), never written ("lost", with the reason) or
+    /// removed by retention ("pruned").
+    #[error("capture {id:?} is {status}{}", reason.as_ref().map(|r| format!(": {r}")).unwrap_or_default())]
+    CaptureUnavailable {
+        id: String,
+        status: &'static str,
+        reason: Option<String>,
+    },
     /// The action does not apply in the alarm's state (e.g. ack of an
     /// alarm that is not latched).
     #[error("{0}")]
@@ -63,7 +72,8 @@ impl ApiError {
             ApiError::UnknownChannel(_)
             | ApiError::NoRoute
             | ApiError::UnknownAlarm(..)
-            | ApiError::UnknownCapture(_) => StatusCode::NOT_FOUND,
+            | ApiError::UnknownCapture(_)
+            | ApiError::CaptureUnavailable { .. } => StatusCode::NOT_FOUND,
             ApiError::Unauthorized => StatusCode::UNAUTHORIZED,
             ApiError::Conflict(_) => StatusCode::CONFLICT,
             ApiError::BadQuery(_) => StatusCode::BAD_REQUEST,
@@ -83,6 +93,12 @@ impl IntoResponse for ApiError {
         let status = self.status();
         let body = match &self {
             ApiError::Waiting(names) => json!({ "error": self.to_string(), "waiting": names }),
+            ApiError::CaptureUnavailable { id, status, reason } => json!({
+                "error": self.to_string(),
+                "capture": id,
+                "capture_status": status,
+                "capture_lost_reason": reason,
+            }),
             _ => json!({ "error": self.to_string() }),
         };
         (status, Json(body)).into_response()

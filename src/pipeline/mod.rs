@@ -26,7 +26,7 @@ use crate::alarm::engine::{AlarmCommand, AlarmContext, CaptureSetup, ChannelAlar
 use crate::alarm::{self, state::AlarmMemory};
 use crate::config::alarms::AlarmsSpec;
 use crate::config::{ChannelSpec, Config};
-use crate::ring::{channel_ring, RingWriter};
+use crate::ring::{try_channel_ring, RingAllocError, RingWriter};
 use crate::shutdown::ShutdownSignal;
 use crate::source::{self, ChannelInput, SourceOutputs};
 use state::{AppState, ChannelShared};
@@ -42,6 +42,12 @@ pub enum RunError {
     Http(#[source] std::io::Error),
     #[error("no source named {0:?} in the config")]
     UnknownSource(String),
+    #[error("channel {channel:?}: {source}")]
+    Ring {
+        channel: String,
+        #[source]
+        source: RingAllocError,
+    },
 }
 
 /// How many samples each channel's ring holds.
@@ -175,7 +181,11 @@ impl<'a> Builder<'a> {
         for (ch, inbox) in state.channels.iter().zip(inboxes) {
             let spec = &ch.spec;
             let capacity = self.ring.capacity(config, spec);
-            let (w, r) = channel_ring(capacity, spec.sample_rate_hz, ch.counters.clone());
+            let (w, r) = try_channel_ring(capacity, spec.sample_rate_hz, ch.counters.clone())
+                .map_err(|source| RunError::Ring {
+                    channel: spec.name.clone(),
+                    source,
+                })?;
             let mut dsp = ChannelDsp::with_machines(ch.clone(), r, &state.machines);
             dsp.set_gather(self.gather);
             if let Some(n) = self.blocks_per_turn {

@@ -33,6 +33,7 @@ pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
     let workers = check_dsp(&mut issues, &raw.dsp);
     let sources = sources::check_sources(&mut issues, &raw.sources);
     let channels = channels::check_channels(&mut issues, raw, &sources);
+    check_ring_memory(&mut issues, raw.dsp.ring_seconds, &channels);
     let machines = machines::check_machines(&mut issues, &raw.machines, &raw.channels);
     let alarms = check_alarms_table(&mut issues, raw.alarms.as_ref(), &channels);
 
@@ -119,6 +120,59 @@ fn check_dsp(issues: &mut Issues, raw: &RawDsp) -> usize {
         );
     }
     workers
+}
+
+/// Largest ring one channel may have, bytes (1 GiB: 268 435 456 f32
+/// samples, e.g. 26 s of a 10 MHz channel). README, "Config reference".
+pub const MAX_RING_BYTES_PER_CHANNEL: u64 = 1 << 30;
+
+/// Largest sum of all channels' rings, bytes (8 GiB).
+pub const MAX_RING_BYTES_TOTAL: u64 = 8 << 30;
+
+/// Bytes of one channel's sample ring as the pipeline sizes it from
+/// `[dsp] ring_seconds` (`ring_seconds × rate` f32 samples, at least two
+/// blocks).
+pub fn ring_bytes(ring_seconds: f64, spec: &ChannelSpec) -> u64 {
+    let samples = (ring_seconds * spec.sample_rate_hz).ceil();
+    // A float beyond u64 saturates; the bound check below refuses it.
+    let samples = (samples as u64).max(2 * spec.block as u64);
+    samples.saturating_mul(std::mem::size_of::<f32>() as u64)
+}
+
+/// `[dsp] ring_seconds` against the memory the rings would take: each
+/// channel's ring at most [`MAX_RING_BYTES_PER_CHANNEL`], all of them
+/// together at most [`MAX_RING_BYTES_TOTAL`]. Refused here, a ring that
+/// cannot be allocated never reaches the allocator (which would abort).
+fn check_ring_memory(issues: &mut Issues, ring_seconds: f64, channels: &[ChannelSpec]) {
+    if !(ring_seconds.is_finite() && ring_seconds > 0.0) {
+        return; // check_dsp has said so
+    }
+    let mut total: u64 = 0;
+    for c in channels {
+        let bytes = ring_bytes(ring_seconds, c);
+        total = total.saturating_add(bytes);
+        if bytes > MAX_RING_BYTES_PER_CHANNEL {
+            issues.add(
+                "dsp.ring_seconds",
+                format!(
+                    "{ring_seconds} s of channel {:?} at {} Hz needs a ring of {bytes} bytes, \
+                     more than the {MAX_RING_BYTES_PER_CHANNEL} bytes a channel may have; \
+                     lower ring_seconds",
+                    c.name, c.sample_rate_hz
+                ),
+            );
+        }
+    }
+    if total > MAX_RING_BYTES_TOTAL {
+        issues.add(
+            "dsp.ring_seconds",
+            format!(
+                "{ring_seconds} s of all {} channels needs rings of {total} bytes in all, \
+                 more than the {MAX_RING_BYTES_TOTAL} bytes allowed; lower ring_seconds",
+                channels.len()
+            ),
+        );
+    }
 }
 
 /// `[alarms]`: required as soon as any channel has an alarm.

@@ -46,9 +46,12 @@ pub(crate) enum Fixed {
     AlarmWriteErrors,
     AlarmCapturesPruned,
     AlarmLimitDimensionless,
+    StorageWriteErrors,
+    StorageWriteRetries,
+    StorageRecordsLost,
 }
 
-pub(crate) const FIXED: [(Fixed, &str, &str, MetricType, &[&str]); 36] = [
+pub(crate) const FIXED: [(Fixed, &str, &str, MetricType, &[&str]); 39] = [
     (
         Fixed::BandPeakFrequency,
         "bandwatch_band_peak_frequency_hertz",
@@ -300,6 +303,27 @@ pub(crate) const FIXED: [(Fixed, &str, &str, MetricType, &[&str]); 36] = [
         "Limit of an alarm on a dimensionless value (crest factor), by level.",
         MetricType::GAUGE,
         &["channel", "band", "level"],
+    ),
+    (
+        Fixed::StorageWriteErrors,
+        "bandwatch_storage_write_errors_total",
+        "Failed write attempts of journal events, captures or baselines, retried or not (see the log).",
+        MetricType::COUNTER,
+        &["kind"],
+    ),
+    (
+        Fixed::StorageWriteRetries,
+        "bandwatch_storage_write_retries_total",
+        "Writes tried again after a failure that can pass (too many open files, disk full, I/O error, directory gone).",
+        MetricType::COUNTER,
+        &["kind"],
+    ),
+    (
+        Fixed::StorageRecordsLost,
+        "bandwatch_storage_records_lost_total",
+        "Journal events, captures or baselines given up after their retries; a lost capture is reported with its reason by the event API.",
+        MetricType::COUNTER,
+        &["kind"],
     ),
 ];
 

@@ -359,6 +359,28 @@ pub(crate) fn walk<S: Sink>(app: &AppState, layout: &Layout, now_ns: u64, sink: 
             sink.counter(F(Fixed::AlarmRecordsWritten), Labels::Kind(k), w);
             sink.counter(F(Fixed::AlarmRecordsDropped), Labels::Kind(k), d);
         }
+        // `RECORD_KINDS` order; the I/O thread's index is `KINDS`'.
+        for (k, name) in RECORD_KINDS.iter().enumerate() {
+            let i = crate::alarm::io::KINDS
+                .iter()
+                .position(|n| n == name)
+                .unwrap_or(k);
+            sink.counter(
+                F(Fixed::StorageWriteErrors),
+                Labels::Kind(k),
+                io.write_failures(i),
+            );
+            sink.counter(
+                F(Fixed::StorageWriteRetries),
+                Labels::Kind(k),
+                io.write_retries(i),
+            );
+            sink.counter(
+                F(Fixed::StorageRecordsLost),
+                Labels::Kind(k),
+                io.records_lost(i),
+            );
+        }
         sink.counter(
             F(Fixed::AlarmWriteErrors),
             Labels::None,
