@@ -128,7 +128,7 @@ mod tests {
             tcp: "127.0.0.1:3".parse().unwrap(),
         };
         let text = toml(&ports, Path::new("/tmp/soak-storage"));
-        let c = crate::config::parse_str(&text).unwrap_or_else(|e| panic!("{e}\n{text}"));
+        let c = crate::config::parse_str(&text).unwrap_or_else(|e| panic!("{e:?}\n{text}"));
         assert_eq!(c.sources.len(), 2);
         assert_eq!(c.channels.len(), 2 * CHANNELS);
     }
