@@ -94,6 +94,9 @@ pub struct Tally {
     pub sessions: u64,
     pub intruders: u64,
     pub intruders_closed: u64,
+    /// Peers that connected and sent nothing (each accepted: the slot was
+    /// free); the last may be closed by the box itself when the soak ends.
+    pub idle_peers: u64,
     pub idle_replaced: u64,
     pub idle_timed_out: u64,
     /// Seconds the idle peers left to time out were held, longest.
@@ -153,7 +156,10 @@ impl Feeder {
     }
 
     fn write(&mut self, bytes: &[u8], what: &str) -> Io<()> {
-        let link = self.link.as_mut().ok_or_else(|| format!("{what}: no link"))?;
+        let link = self
+            .link
+            .as_mut()
+            .ok_or_else(|| format!("{what}: no link"))?;
         link.send(bytes).map_err(|e| format!("{what}: {e}"))?;
         self.tally.bytes += match link {
             Link::Udp(_) => bytes.len().min(MAX_DATAGRAM + 1) as u64,
@@ -328,7 +334,8 @@ pub fn udp(to: SocketAddr, stop: Arc<AtomicBool>) -> Tally {
 
 fn udp_cycles(f: &mut Feeder, to: SocketAddr) -> Io<()> {
     let s = UdpSocket::bind("127.0.0.1:0").map_err(|e| format!("udp bind: {e}"))?;
-    s.connect(to).map_err(|e| format!("udp connect {to}: {e}"))?;
+    s.connect(to)
+        .map_err(|e| format!("udp connect {to}: {e}"))?;
     f.link = Some(Link::Udp(s));
     while !f.stopping() {
         f.tally.cycles += 1;
@@ -463,6 +470,7 @@ fn tcp_cycles(
         }
         // A peer that connects and sends nothing: closed at the idle timeout.
         let mut quiet = connect(to)?;
+        f.tally.idle_peers += 1;
         let limit = Duration::from_secs_f64(IDLE_TIMEOUT_S + 5.0);
         match wait_closed(&mut quiet, limit) {
             Some(held) => {
@@ -480,6 +488,7 @@ fn tcp_cycles(
         // Another one takes the free slot; the box comes back after
         // `replace_after_silent_s` (and well before the idle timeout).
         idle = Some(connect(to)?);
+        f.tally.idle_peers += 1;
         std::thread::sleep(Duration::from_secs_f64(
             (REPLACE_AFTER_SILENT_S + IDLE_TIMEOUT_S) / 2.0,
         ));

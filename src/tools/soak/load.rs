@@ -237,6 +237,8 @@ mod tests {
         .unwrap();
         assert_eq!((r.status, r.body.as_slice()), (503, b"abcde".as_slice()));
         assert!(parse_reply(b"SSH-2.0\r\n\r\n").is_err());
-        assert!(parse_reply(b"HTTP/1.1 200 OK\r\nTransfer-Encoding: chunked\r\n\r\nzz\r\n").is_err());
+        assert!(
+            parse_reply(b"HTTP/1.1 200 OK\r\nTransfer-Encoding: chunked\r\n\r\nzz\r\n").is_err()
+        );
     }
 }

@@ -29,7 +29,9 @@ use std::time::{Duration, Instant};
 use crate::tools::soak::config::{Ports, CAPTURE_MAX_COUNT, CHANNELS, HEADER_TIMEOUT_S};
 use crate::tools::soak::feed::Tally;
 use crate::tools::soak::load::{Crowd, Probe};
-use crate::tools::soak::report::{quantile, Captures, Daemon, Latency, Memory, Report, SourceFigures};
+use crate::tools::soak::report::{
+    quantile, Captures, Daemon, Latency, Memory, Report, SourceFigures,
+};
 use crate::tools::soak::scrape::{Exposition, Monotonic};
 
 /// `/healthz` p99 bound, ms.
@@ -183,7 +185,8 @@ pub fn run(args: &SoakArgs) -> Result<Report, SoakError> {
     std::fs::write(&cfg_path, config::toml(&ports, &storage))
         .map_err(io(format!("write {}", cfg_path.display())))?;
     let log_path = dir.join("daemon.log");
-    let log = std::fs::File::create(&log_path).map_err(io(format!("create {}", log_path.display())))?;
+    let log =
+        std::fs::File::create(&log_path).map_err(io(format!("create {}", log_path.display())))?;
     let exe = std::env::current_exe().map_err(io("find this executable"))?;
     let mut child = Command::new(&exe)
         .arg("run")
@@ -199,7 +202,8 @@ pub fn run(args: &SoakArgs) -> Result<Report, SoakError> {
     let mut report = Report {
         seconds: seconds as f64,
         dir: dir.display().to_string(),
-        reload: "not sent: the daemon has no reload yet (--reload-every-s is refused until it does)",
+        reload:
+            "not sent: the daemon has no reload yet (--reload-every-s is refused until it does)",
         ..Report::default()
     };
     if let Err(e) = wait_up(ports.http, &mut child, &log_path) {
@@ -328,7 +332,10 @@ pub fn run(args: &SoakArgs) -> Result<Report, SoakError> {
     report.check(
         "no panic",
         report.daemon.panics == 0,
-        format!("{} \"panicked\" in the daemon's stderr", report.daemon.panics),
+        format!(
+            "{} \"panicked\" in the daemon's stderr",
+            report.daemon.panics
+        ),
     );
     report.check(
         "SIGTERM exit",
@@ -341,7 +348,10 @@ pub fn run(args: &SoakArgs) -> Result<Report, SoakError> {
         ),
     );
 
-    let s = scrapes.lock().map(|mut s| std::mem::take(&mut *s)).unwrap_or_default();
+    let s = scrapes
+        .lock()
+        .map(|mut s| std::mem::take(&mut *s))
+        .unwrap_or_default();
     report.scrapes = s.monotonic.scrapes;
     report.monotonic_series = s.monotonic.series;
     report.violations = s.monotonic.violations.clone();
@@ -352,7 +362,10 @@ pub fn run(args: &SoakArgs) -> Result<Report, SoakError> {
             "{} scrapes of /metrics, {} failed{}",
             s.monotonic.scrapes,
             s.failures.len(),
-            s.failures.first().map(|f| format!(" (first: {f})")).unwrap_or_default()
+            s.failures
+                .first()
+                .map(|f| format!(" (first: {f})"))
+                .unwrap_or_default()
         ),
     );
     report.check(
@@ -383,7 +396,9 @@ pub fn run(args: &SoakArgs) -> Result<Report, SoakError> {
             .as_ref()
             .map(|e| source_counters(e, &name))
             .unwrap_or_default();
-        report.sources.insert(name, SourceFigures { sent: t, counters });
+        report
+            .sources
+            .insert(name, SourceFigures { sent: t, counters });
     }
 
     report.memory = memory(&s.rss, seconds);
@@ -397,7 +412,12 @@ pub fn run(args: &SoakArgs) -> Result<Report, SoakError> {
         ),
     );
 
-    report.healthz = latency(&probe.lock().map(|mut p| std::mem::take(&mut *p)).unwrap_or_default());
+    report.healthz = latency(
+        &probe
+            .lock()
+            .map(|mut p| std::mem::take(&mut *p))
+            .unwrap_or_default(),
+    );
     let h = &report.healthz;
     report.check(
         "/healthz p99",
@@ -407,7 +427,10 @@ pub fn run(args: &SoakArgs) -> Result<Report, SoakError> {
             h.p99_ms,
             h.requests,
             h.failures,
-            h.first_failure.as_ref().map(|f| format!("; first failure: {f}")).unwrap_or_default()
+            h.first_failure
+                .as_ref()
+                .map(|f| format!("; first failure: {f}"))
+                .unwrap_or_default()
         ),
     );
 
@@ -635,7 +658,7 @@ fn account(report: &mut Report, e: &Exposition, tallies: &BTreeMap<String, Tally
         );
         if source == "tcp" {
             let conns = total("connections");
-            let want = t.sessions + t.idle_replaced + t.idle_timed_out;
+            let want = t.sessions + t.idle_peers;
             let (second, idle) = (
                 reason("rejected", "second_connection"),
                 reason("rejected", "idle_timeout"),
@@ -645,10 +668,11 @@ fn account(report: &mut Report, e: &Exposition, tallies: &BTreeMap<String, Tally
                 eq(conns, want)
                     && eq(second, t.intruders)
                     && t.intruders_closed == t.intruders
-                    && eq(idle, t.idle_timed_out),
+                    && eq(idle, t.idle_timed_out)
+                    && t.idle_replaced + 1 >= t.sessions,
                 format!(
-                    "connections {conns}/{want} ({} sessions + {} idle replaced + {} idle timed out), second_connection {second}/{} intruders, idle_timeout {idle}/{}",
-                    t.sessions, t.idle_replaced, t.idle_timed_out, t.intruders, t.idle_timed_out
+                    "connections {conns}/{want} ({} sessions + {} idle peers: {} replaced by the box, {} timed out), second_connection {second}/{} intruders, idle_timeout {idle}/{}",
+                    t.sessions, t.idle_peers, t.idle_replaced, t.idle_timed_out, t.intruders, t.idle_timed_out
                 ),
             );
         }
@@ -716,7 +740,10 @@ fn captures(storage: &Path, e: Option<&Exposition>) -> Captures {
     let journal: Vec<PathBuf> = std::fs::read_dir(storage.join("journal"))
         .map(|d| d.flatten().map(|e| e.path()).collect())
         .unwrap_or_default();
-    for f in journal.iter().filter(|p| p.extension().is_some_and(|x| x == "jsonl")) {
+    for f in journal
+        .iter()
+        .filter(|p| p.extension().is_some_and(|x| x == "jsonl"))
+    {
         for line in std::fs::read_to_string(f).unwrap_or_default().lines() {
             let Ok(v) = serde_json::from_str::<serde_json::Value>(line) else {
                 continue;
@@ -739,7 +766,11 @@ fn captures(storage: &Path, e: Option<&Exposition>) -> Captures {
         .collect();
     // Ids sort by time (docs/alarms.md): retention removes the oldest.
     let oldest_kept = present.first().map(|s| s.as_str());
-    out.missing = ids.iter().filter(|id| !exists(id, "json")).cloned().collect();
+    out.missing = ids
+        .iter()
+        .filter(|id| !exists(id, "json"))
+        .cloned()
+        .collect();
     out.missing_pruned_oldest_first = out
         .missing
         .iter()
@@ -749,7 +780,7 @@ fn captures(storage: &Path, e: Option<&Exposition>) -> Captures {
         out.pruned_total = e.sum("bandwatch_alarm_captures_pruned_total", &[]);
         out.dropped_total = e.sum(
             "bandwatch_alarm_records_dropped_total",
-            &[("kind", "capture")],
+            &[("kind", "captures")],
         );
         out.write_errors_total = e.sum("bandwatch_alarm_write_errors_total", &[]);
     }

@@ -118,7 +118,11 @@ impl Report {
     pub fn table(&self) -> String {
         let mut t = String::new();
         let w = self.checks.iter().map(|c| c.name.len()).max().unwrap_or(0);
-        let _ = writeln!(t, "bandwatch soak: {:.0} s of faults, files in {}", self.seconds, self.dir);
+        let _ = writeln!(
+            t,
+            "bandwatch soak: {:.0} s of faults, files in {}",
+            self.seconds, self.dir
+        );
         for c in &self.checks {
             let mark = if c.pass { "ok  " } else { "FAIL" };
             let _ = writeln!(t, "  {mark} {:<w$}  {}", c.name, c.figure);

@@ -163,8 +163,7 @@ impl Exposition {
         self.samples
             .iter()
             .filter(|s| s.name == name && with.iter().all(|(k, v)| s.label(k) == Some(v)))
-            .map(|s| s.value)
-            .sum()
+            .fold(0.0, |a, s| a + s.value)
     }
 
     /// Values of label `by` over the series of `name` matching `with`.
@@ -325,7 +324,10 @@ bandwatch_build_info{version="0.1.0"} 1
             e.samples[1].key(),
             r#"bandwatch_source_rejected_total{reason="too_large",source="udp"}"#
         );
-        assert_eq!(e.sum("bandwatch_source_rejected_total", &[("source", "udp")]), 5.0);
+        assert_eq!(
+            e.sum("bandwatch_source_rejected_total", &[("source", "udp")]),
+            5.0
+        );
         let by = e.by_label("bandwatch_source_rejected_total", &[], "reason");
         assert_eq!(by.get("crc_mismatch"), Some(&3.0));
         assert_eq!(e.types.get("lat").map(String::as_str), Some("histogram"));
