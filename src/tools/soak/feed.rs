@@ -233,8 +233,8 @@ impl Feeder {
             f.reorder_every,
         ]
         .iter()
-        .all(|&e| e == 0 || n % e != 0);
-        let special = faulty && untouched && n % SPECIAL_EVERY == 0;
+        .all(|&e| e == 0 || !n.is_multiple_of(e));
+        let special = faulty && untouched && n.is_multiple_of(SPECIAL_EVERY);
         let bytes = self.make(first, special)?;
         self.index = self.index.wrapping_add(FRAME);
         self.tally.made_instants += FRAME;

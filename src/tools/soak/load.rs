@@ -201,6 +201,7 @@ pub fn slowloris(addr: SocketAddr, n: usize, stop: Arc<AtomicBool>) -> Slowloris
                 Err(e) if e.kind() == std::io::ErrorKind::WouldBlock => {
                     let b = LINE.get(*sent).copied().unwrap_or(b'x');
                     match s.write(&[b]) {
+                        Ok(0) => true,
                         Ok(_) => {
                             *sent += 1;
                             false
