@@ -37,11 +37,15 @@ pub struct Memory {
     pub samples_after_warmup: usize,
     /// Median of the first ten samples after the warm-up.
     pub baseline_kib: u64,
+    /// Median of the last ten samples.
+    pub end_kib: u64,
     pub min_kib: u64,
     pub max_kib: u64,
     pub last_kib: u64,
-    /// (max − baseline) / baseline, %.
+    /// (end − baseline) / baseline, %: the figure checked.
     pub growth_pct: f64,
+    /// (max − baseline) / baseline, %.
+    pub peak_pct: f64,
 }
 
 /// Captures named by the journal against the files on disk.
@@ -166,8 +170,8 @@ impl Report {
         let m = &self.memory;
         let _ = writeln!(
             t,
-            "  RSS after {:.0} s warm-up: baseline {} KiB, min {}, max {}, last {} ({} samples)",
-            m.warmup_s, m.baseline_kib, m.min_kib, m.max_kib, m.last_kib, m.samples_after_warmup
+            "  RSS after {:.0} s warm-up: start {} KiB, end {} (medians of 10), min {}, max {}, last {} ({} samples)",
+            m.warmup_s, m.baseline_kib, m.end_kib, m.min_kib, m.max_kib, m.last_kib, m.samples_after_warmup
         );
         let h = &self.healthz;
         let _ = writeln!(
