@@ -71,7 +71,7 @@ pub(crate) struct HttpProbe {
 
 /// Reads one HTTP/1.1 response with a Content-Length; returns the status
 /// and the body length.
-async fn read_response(
+pub(crate) async fn read_response(
     sock: &mut tokio::net::TcpStream,
     buf: &mut Vec<u8>,
 ) -> std::io::Result<(u16, usize)> {
@@ -233,7 +233,7 @@ async fn http_closed_loop(
     })
 }
 
-fn percentile(v: &[f64], p: f64) -> f64 {
+pub(crate) fn percentile(v: &[f64], p: f64) -> f64 {
     if v.is_empty() {
         return f64::NAN;
     }

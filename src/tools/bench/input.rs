@@ -27,6 +27,28 @@ pub(crate) fn config_text(
     let mut t = format!(
         "[server]\nlisten = \"127.0.0.1:0\"\n[dsp]\nworkers = 2\n[alarms]\nstorage_dir = {storage:?}\n\n[[source]]\nname = \"bench\"\n{source}\nchannels = {channels}\nsample_rate_hz = {fs:?}\n"
     );
+    for c in 0..channels {
+        t.push('\n');
+        t.push_str(&channel_text(c, "bench", c, n, fs, averages, scale));
+    }
+    t
+}
+
+/// One `[[channel]]` table: channel `ch{number:04}` at `index` of
+/// `source`, block `n`, the demo's motor-de bands (velocity bands
+/// integrate, one band stays in g), its sensor checks and alarms: a zone
+/// preset on the overall velocity, fixed limits on the high-frequency band
+/// and on the overall RMS. The channels of every rig but `http` are made
+/// here.
+pub(crate) fn channel_text(
+    number: usize,
+    source: &str,
+    index: usize,
+    n: usize,
+    fs: f64,
+    averages: u32,
+    scale: f64,
+) -> String {
     // Bands scale with the sample rate so that, at any rate, they hold the
     // same lines (the ingest phase raises the rate instead of the channels).
     let k = fs / FS;
@@ -54,14 +76,11 @@ pub(crate) fn config_text(
     // The demo's sensor checks (flatline, clipping) and overall alarm.
     let checks = "health = { flatline = { std_below = 0.0001, for_s = 2.0 }, clipping = { full_scale = 50.0 } }\n\
                   overall_alarm = { rms = { alert = { limit = 5.0 }, danger = { limit = 10.0 }, on_delay_s = 2.0 } }\n";
-    for c in 0..channels {
-        t.push_str(&format!(
-            "\n[[channel]]\nname = \"ch{c:04}\"\nsource = \"bench\"\nindex = {c}\nunit = \"g\"\n\
-             scale = {scale:?}\nblock = {n}\nwindow = \"hann\"\noverlap = {OVERLAP:?}\n\
-             averaging = {{ mode = \"linear\", count = {averages} }}\nintegration_low_cut_hz = 5.0\n{checks}{bands}"
-        ));
-    }
-    t
+    format!(
+        "[[channel]]\nname = \"ch{number:04}\"\nsource = \"{source}\"\nindex = {index}\nunit = \"g\"\n\
+         scale = {scale:?}\nblock = {n}\nwindow = \"hann\"\noverlap = {OVERLAP:?}\n\
+         averaging = {{ mode = \"linear\", count = {averages} }}\nintegration_low_cut_hz = 5.0\n{checks}{bands}"
+    )
 }
 
 /// The config of `channels` channels of the converter's counts, 4 averages.

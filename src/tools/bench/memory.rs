@@ -25,14 +25,19 @@ pub(crate) struct MemoryProbe {
 pub(crate) fn rss_bytes() -> u64 {
     std::fs::read_to_string("/proc/self/status")
         .ok()
-        .and_then(|t| {
-            t.lines().find(|l| l.starts_with("VmRSS:")).and_then(|l| {
-                l.split_whitespace()
-                    .nth(1)
-                    .and_then(|v| v.parse::<u64>().ok())
-            })
-        })
-        .map_or(0, |kb| kb * 1024)
+        .and_then(|t| vm_rss_bytes(&t))
+        .unwrap_or(0)
+}
+
+/// The `VmRSS` line of a `/proc/PID/status` text, in bytes (the kernel
+/// gives kB: proc(5)).
+pub(crate) fn vm_rss_bytes(status: &str) -> Option<u64> {
+    status
+        .lines()
+        .find(|l| l.starts_with("VmRSS:"))
+        .and_then(|l| l.split_whitespace().nth(1))
+        .and_then(|v| v.parse::<u64>().ok())
+        .map(|kb| kb * 1024)
 }
 
 /// Builds `channels` channels with the default ring size, pushes enough
@@ -118,5 +123,13 @@ mod tests {
     #[test]
     fn rss_is_read() {
         assert!(rss_bytes() > 0);
+    }
+
+    #[test]
+    fn vm_rss_line_is_parsed_in_kb() {
+        // Layout of /proc/PID/status as proc(5) gives it.
+        let t = "Name:\tbandwatch\nVmPeak:\t  900 kB\nVmRSS:\t  123456 kB\nRssAnon:\t 1 kB\n";
+        assert_eq!(vm_rss_bytes(t), Some(123_456 * 1024));
+        assert_eq!(vm_rss_bytes("Name:\tx\n"), None);
     }
 }

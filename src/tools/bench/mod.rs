@@ -18,6 +18,10 @@
 //! - `http`: `/metrics` render time and body size, and `/metrics` and
 //!   spectrum latency at fixed request rates while the DSP runs flat out,
 //!   paced to real time, or not at all, and what that load costs the DSP.
+//! - `plant`: not a phase of the default run (`--only plant`): the real
+//!   daemon as a child process, fed live over UDP by a separate sender
+//!   process at plant scale (4096 channels × 25.6 kHz by default), scraped
+//!   like Prometheus; its CPU, losses, spectrum age, DSP lag and RSS.
 //! - `welch`: not a phase of the default run; the mode
 //!   `bench/compare_scipy.py` drives (`--signal FILE`).
 //!
@@ -28,7 +32,7 @@
 //! Every rig is assembled by `pipeline::Builder`, as the daemon's pipeline
 //! is, and driven by hand on one thread. One file per phase:
 //! [`fft`] (and the side-by-side timing), [`dsp`], [`path`], [`memory`],
-//! [`ingest`], [`http`], [`welch`]; [`input`] holds the config text and
+//! [`ingest`], [`http`], [`plant`], [`welch`]; [`input`] holds the config text and
 //! test signal they share.
 
 mod dsp;
@@ -38,9 +42,11 @@ mod ingest;
 mod input;
 mod memory;
 mod path;
+mod plant;
 mod welch;
 
 use std::io::Write as _;
+use std::net::SocketAddr;
 use std::path::PathBuf;
 use std::sync::Arc;
 
@@ -74,7 +80,7 @@ pub struct BenchArgs {
     #[arg(long, default_value_t = 0.5)]
     pub work_seconds: f64,
     /// Phases to run, comma separated: fft, dsp, path, memory, ingest, http
-    /// (default: all), or welch (with --signal).
+    /// (default: all), plant (only when named), or welch (with --signal).
     #[arg(long, value_delimiter = ',')]
     pub only: Vec<String>,
     /// Also write the results as JSON here.
@@ -96,6 +102,40 @@ pub struct BenchArgs {
     /// http: request rates, requests/s (alternating /metrics and spectrum).
     #[arg(long, value_delimiter = ',', default_value = "200")]
     pub http_rates: Vec<f64>,
+    /// plant: channels of the plant-scale run.
+    #[arg(long, default_value_t = 4096)]
+    pub plant_channels: usize,
+    /// plant: sample rate of every channel, Hz.
+    #[arg(long, default_value_t = 25_600.0)]
+    pub plant_rate_hz: f64,
+    /// plant: seconds measured after the warm-up.
+    #[arg(long, default_value_t = 120.0)]
+    pub plant_seconds: f64,
+    /// plant: seconds of live sending before the measured window.
+    #[arg(long, default_value_t = 15.0)]
+    pub plant_warmup_seconds: f64,
+    /// plant: channels per UDP source (one DAQ box, one BWF1 stream; at most 1024).
+    #[arg(long, default_value_t = 64)]
+    pub plant_per_source: usize,
+    /// plant: instants per datagram (default: the largest power of two up
+    /// to 1024 whose i16 datagram fits in 65 507 bytes; 256 for 64 channels).
+    #[arg(long)]
+    pub plant_frame_samples: Option<usize>,
+    /// plant: seconds between /metrics scrapes (Prometheus's usual 15 s).
+    #[arg(long, default_value_t = 15.0)]
+    pub plant_scrape_every: f64,
+    /// plant: gain on the test signal (default 0.1: about 1.3 mm/s, no
+    /// alarm trips; 1.0: every channel trips to danger at once).
+    #[arg(long, default_value_t = plant::DEFAULT_SIGNAL_GAIN)]
+    pub plant_signal_gain: f64,
+    /// plant: a further periodic GET beside the scrape, PATH@SECONDS
+    /// (repeatable), e.g. what an open page polls.
+    #[arg(long)]
+    pub plant_poll: Vec<String>,
+    /// Internal: be the plant phase's sender process, sending to these UDP
+    /// sources, and print one JSON line.
+    #[arg(long, hide = true, value_delimiter = ',')]
+    pub plant_send_to: Vec<SocketAddr>,
     /// Internal: measure memory for this many channels and print one JSON line.
     #[arg(long, hide = true)]
     pub memory_child: Option<usize>,
@@ -187,6 +227,9 @@ pub(crate) struct Report {
     pub(crate) repeats: usize,
     pub(crate) rows: Vec<Row>,
     pub(crate) notes: Vec<String>,
+    /// The plant phase's figures, when it ran.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub(crate) plant: Option<plant::PlantReport>,
 }
 
 fn machine() -> Machine {
@@ -284,6 +327,11 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
         println!("{}", serde_json::to_string(&p).unwrap_or_default());
         return Ok(());
     }
+    if !args.plant_send_to.is_empty() {
+        let r = plant::sender(args)?;
+        println!("{}", serde_json::to_string(&r).unwrap_or_default());
+        return Ok(());
+    }
     if args.only.iter().any(|p| p == "welch") {
         let w = welch::welch(args)?;
         let text = serde_json::to_string(&w).map_err(|e| BenchError::Lost(e.to_string()))?;
@@ -294,7 +342,7 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
         return Ok(());
     }
     for p in &args.only {
-        if !["fft", "dsp", "path", "memory", "ingest", "http"].contains(&p.as_str()) {
+        if !["fft", "dsp", "path", "memory", "ingest", "http", "plant"].contains(&p.as_str()) {
             return Err(BenchError::Usage(format!("unknown phase {p:?}")));
         }
     }
@@ -347,6 +395,13 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
         http::http_phase(rt, args, &signal, &mut rows, &mut notes)?;
     }
 
+    // Only when named: it runs the daemon at plant scale for minutes.
+    let plant = if args.only.iter().any(|p| p == "plant") {
+        Some(plant::plant_phase(args, &mut rows, &mut notes)?)
+    } else {
+        None
+    };
+
     let report = Report {
         machine: machine(),
         n,
@@ -355,6 +410,7 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
         repeats,
         rows,
         notes,
+        plant,
     };
     print!("{}", table(&report));
     let _ = std::io::stdout().flush();

@@ -26,7 +26,7 @@ const READ_BYTES: usize = 64 * 1024;
 
 /// The channels' `scale` for frames in `format`: float frames carry g,
 /// integer frames the converter's counts (i16: its top 16 bits).
-fn format_scale(format: SampleFormat) -> f64 {
+pub(crate) fn format_scale(format: SampleFormat) -> f64 {
     match format {
         SampleFormat::F32 | SampleFormat::F64 => 1.0,
         SampleFormat::I16 => G_PER_COUNT * 256.0,
