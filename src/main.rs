@@ -114,6 +114,10 @@ enum Command {
     },
     /// Measure stage throughput, ingest, HTTP latency and memory side by side.
     Bench(bandwatch::tools::bench::BenchArgs),
+    /// Run this daemon as a child under faults and HTTP load, then assert
+    /// exact accounting, monotonic counters, flat memory and /healthz
+    /// latency; exits non-zero on any failed check.
+    Soak(bandwatch::tools::soak::SoakArgs),
 }
 
 fn main() -> ExitCode {
@@ -144,6 +148,28 @@ fn main() -> ExitCode {
                 ExitCode::FAILURE
             }
         },
+        Command::Soak(args) => {
+            use std::io::Write as _;
+            match bandwatch::tools::soak::run(&args) {
+                Ok(report) => {
+                    let text = if args.json {
+                        serde_json::to_string_pretty(&report).unwrap_or_default() + "\n"
+                    } else {
+                        report.table()
+                    };
+                    let _ = std::io::stdout().lock().write_all(text.as_bytes());
+                    if report.passed() {
+                        ExitCode::SUCCESS
+                    } else {
+                        ExitCode::FAILURE
+                    }
+                }
+                Err(e) => {
+                    eprintln!("soak: {e}");
+                    ExitCode::FAILURE
+                }
+            }
+        }
         Command::Check { config } => match bandwatch::config::load(&config) {
             Ok(c) => {
                 println!(

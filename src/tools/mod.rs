@@ -2,15 +2,18 @@
 //! `send` (a stand-in DAQ box playing the demo over BWF1 or lines), `record`
 //! (store a raw stream as received), `replay` (run the pipeline over a
 //! recorded stream as fast as the CPU allows), `selftest` (published check
-//! values measured through the real code paths) and `bench` (side-by-side
-//! stage throughput, memory and latency). `replay`, `selftest` and `bench`
-//! build their pipelines with `pipeline::Builder`, as the daemon does.
+//! values measured through the real code paths), `bench` (side-by-side
+//! stage throughput, memory and latency) and `soak` (the real daemon as a
+//! child process under faults and load, its counters balanced exactly at
+//! the end). `replay`, `selftest` and `bench` build their pipelines with
+//! `pipeline::Builder`, as the daemon does.
 
 pub mod bench;
 pub mod record;
 pub mod replay;
 pub mod selftest;
 pub mod send;
+pub mod soak;
 
 /// Where `send` delivers or `record` takes bytes from.
 #[derive(Debug, Clone, PartialEq, Eq)]
