@@ -253,8 +253,20 @@ pub fn reconcile_captures(
     (ledger, new)
 }
 
-/// Default queue capacity, messages.
-pub const QUEUE: usize = 1024;
+/// Smallest queue capacity, messages.
+pub const QUEUE: usize = 4096;
+
+/// Queue slots per channel: room for a start-up burst in which every
+/// channel's alarms and health report at once (a plant-scale run at 4096
+/// channels lost 8 188 events at start with a fixed 4096; see
+/// docs/performance.md, "Plant-scale run"). A record is a boxed event or a
+/// capture the workers have already allocated, so a slot costs a pointer.
+pub const QUEUE_PER_CHANNEL: usize = 8;
+
+/// The queue capacity for a daemon of `channels` channels.
+pub fn queue_capacity(channels: usize) -> usize {
+    channels.saturating_mul(QUEUE_PER_CHANNEL).max(QUEUE)
+}
 
 /// Events kept in memory for the API (newest last).
 pub const RECENT_EVENTS: usize = 1000;

@@ -155,7 +155,7 @@ impl<'a> Builder<'a> {
             }
         }
         let store = match (self.alarms, &config.alarms) {
-            (AlarmMode::FromConfig, Some(a)) => Some(AlarmStore::open(a)?),
+            (AlarmMode::FromConfig, Some(a)) => Some(AlarmStore::open(a, config.channels.len())?),
             _ => None,
         };
         let mut shared = Vec::new();
@@ -444,7 +444,7 @@ struct AlarmStore {
 impl AlarmStore {
     /// Opens the journal (replaying it), the capture store, and starts the
     /// alarm I/O thread.
-    fn open(a: &AlarmsSpec) -> Result<AlarmStore, RunError> {
+    fn open(a: &AlarmsSpec, channels: usize) -> Result<AlarmStore, RunError> {
         let (journal, replay) = alarm::journal::Journal::open(&a.journal_dir(), a.journal)
             .map_err(|e| RunError::Alarms(e.to_string()))?;
         if replay.bad_lines > 0 || replay.torn_tail || replay.unreadable_files > 0 {
@@ -467,7 +467,13 @@ impl AlarmStore {
         }
         let memories = alarm::journal::alarm_memories(&replay.events);
         let (io, outbox) =
-            alarm::io::AlarmIo::start(journal, store, a.baselines_dir(), &replay.events, 4096)
+            alarm::io::AlarmIo::start(
+                journal,
+                store,
+                a.baselines_dir(),
+                &replay.events,
+                alarm::io::queue_capacity(channels),
+            )
                 .map_err(|e| RunError::Alarms(e.to_string()))?;
         Ok(AlarmStore {
             io,
