@@ -466,15 +466,14 @@ impl AlarmStore {
             );
         }
         let memories = alarm::journal::alarm_memories(&replay.events);
-        let (io, outbox) =
-            alarm::io::AlarmIo::start(
-                journal,
-                store,
-                a.baselines_dir(),
-                &replay.events,
-                alarm::io::queue_capacity(channels),
-            )
-                .map_err(|e| RunError::Alarms(e.to_string()))?;
+        let (io, outbox) = alarm::io::AlarmIo::start(
+            journal,
+            store,
+            a.baselines_dir(),
+            &replay.events,
+            alarm::io::queue_capacity(channels),
+        )
+        .map_err(|e| RunError::Alarms(e.to_string()))?;
         Ok(AlarmStore {
             io,
             outbox,
