@@ -30,10 +30,13 @@ pub struct Latency {
     pub worst_window_p99_ms: f64,
 }
 
-/// Resident memory of the daemon (VmRSS), KiB.
+/// Resident memory of the daemon, KiB: the anonymous part (RssAnon) is
+/// checked; VmRSS is shown.
 #[derive(Debug, Clone, Default, serde::Serialize)]
 pub struct Memory {
     pub warmup_s: f64,
+    /// Samples (one a second) in each median.
+    pub window: usize,
     pub samples_after_warmup: usize,
     /// Median of the first ten samples after the warm-up.
     pub baseline_kib: u64,
@@ -46,6 +49,9 @@ pub struct Memory {
     pub growth_pct: f64,
     /// (max − baseline) / baseline, %.
     pub peak_pct: f64,
+    /// VmRSS (anonymous and file-backed) at the first and the last sample.
+    pub vm_rss_first_kib: u64,
+    pub vm_rss_last_kib: u64,
 }
 
 /// Captures named by the journal against the files on disk.
@@ -170,8 +176,8 @@ impl Report {
         let m = &self.memory;
         let _ = writeln!(
             t,
-            "  RSS after {:.0} s warm-up: start {} KiB, end {} (medians of 10), min {}, max {}, last {} ({} samples)",
-            m.warmup_s, m.baseline_kib, m.end_kib, m.min_kib, m.max_kib, m.last_kib, m.samples_after_warmup
+            "  anonymous RSS after {:.0} s warm-up: start {} KiB, end {} (medians of {}), min {}, max {}, last {} ({} samples); VmRSS {} KiB at the start, {} at the end",
+            m.warmup_s, m.baseline_kib, m.end_kib, m.window, m.min_kib, m.max_kib, m.last_kib, m.samples_after_warmup, m.vm_rss_first_kib, m.vm_rss_last_kib
         );
         let h = &self.healthz;
         let _ = writeln!(
