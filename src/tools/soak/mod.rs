@@ -44,9 +44,10 @@ pub const RSS_GROWTH_PCT: f64 = 5.0;
 /// while the daemon's list of the last 1000 events fills and the
 /// `/api/v1/events` answers built from it grow (a heap profile found no
 /// leak: docs/reliability.md, "Where the memory went"). A short run can
-/// therefore only bound the growth coarsely: 25 % of about 12 MB in 60 s
-/// is what 20 000 requests leaking 150 bytes each would add.
-pub const RSS_GROWTH_SHORT_PCT: f64 = 25.0;
+/// therefore only bound the growth coarsely: in a 90 s run the anonymous
+/// RSS went from 8.2 to 9.7 MB (+19 %) after the warm-up; 40 % of 8 MB in
+/// 60 s is what 20 000 requests leaking 160 bytes each would add.
+pub const RSS_GROWTH_SHORT_PCT: f64 = 40.0;
 
 /// The RSS growth bound for a run of `seconds`.
 pub fn rss_bound_pct(seconds: u64) -> f64 {
@@ -931,7 +932,7 @@ mod tests {
         assert_eq!(m.peak_pct, 25.0);
         // A leak of 120 KiB/s (20 000 requests in 90 s leaking ~500 bytes
         // each) fails the short run's bound; 30 KiB/s fails a long run's.
-        let leak = series(90, &|t| 16_000 + t * 120);
+        let leak = series(90, &|t| 8_000 + t * 120);
         let m = memory(&leak, 90, None);
         assert!(m.growth_pct > rss_bound_pct(90), "{m:?}");
         let slow = series(1800, &|t| 16_000 + t * 30);
