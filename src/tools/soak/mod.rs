@@ -152,20 +152,26 @@ fn rss_kib(pid: u32) -> Option<(u64, u64)> {
     Some((field("RssAnon:")?, field("VmRSS:")?))
 }
 
+/// The daemon's journal files (`.jsonl`) under `storage`.
+fn journal_files(storage: &Path) -> Vec<PathBuf> {
+    std::fs::read_dir(storage.join("journal"))
+        .map(|d| d.flatten().map(|e| e.path()).collect::<Vec<_>>())
+        .unwrap_or_default()
+        .into_iter()
+        .filter(|p| p.extension().is_some_and(|x| x == "jsonl"))
+        .collect()
+}
+
 /// Journal events written so far (lines of the journal files).
 fn journal_lines(storage: &Path) -> usize {
-    std::fs::read_dir(storage.join("journal"))
-        .map(|d| {
-            d.flatten()
-                .filter(|e| e.path().extension().is_some_and(|x| x == "jsonl"))
-                .map(|e| {
-                    std::fs::read(e.path())
-                        .map(|b| b.iter().filter(|&&c| c == b'\n').count())
-                        .unwrap_or(0)
-                })
-                .sum()
+    journal_files(storage)
+        .iter()
+        .map(|f| {
+            std::fs::read(f)
+                .map(|b| b.iter().filter(|&&c| c == b'\n').count())
+                .unwrap_or(0)
         })
-        .unwrap_or(0)
+        .sum()
 }
 
 /// What the scraper thread collects.
@@ -767,7 +773,7 @@ fn account(report: &mut Report, e: &Exposition, tallies: &BTreeMap<String, Tally
 /// events is full (`events_full_at`; 1000 events, about 11 minutes at the
 /// soak's trip rate), at least 60 s: until then the list and the
 /// `/api/v1/events` answers built from it grow by design
-/// (docs/reliability.md, "The soak"). A long run in which it never fills
+/// (docs/reliability.md, "Where the memory went"). A long run in which it never fills
 /// cannot tell that growth from a leak and fails.
 fn memory(rss: &[(f64, u64, u64)], seconds: u64, events_full_at: Option<f64>) -> Memory {
     let long = seconds > 180;
@@ -777,12 +783,11 @@ fn memory(rss: &[(f64, u64, u64)], seconds: u64, events_full_at: Option<f64>) ->
         (true, None) => f64::INFINITY,
     };
     let window = if long { 60 } else { 10 };
-    let after: Vec<(u64, u64)> = rss
+    let anon: Vec<u64> = rss
         .iter()
         .filter(|(t, _, _)| *t >= warmup_s)
-        .map(|(_, a, v)| (*a, *v))
+        .map(|(_, a, _)| *a)
         .collect();
-    let anon: Vec<u64> = after.iter().map(|(a, _)| *a).collect();
     let median = |v: &[u64]| {
         let mut v = v.to_vec();
         v.sort_unstable();
@@ -843,14 +848,8 @@ fn latency(p: &Probe) -> Latency {
 fn captures(storage: &Path, e: Option<&Exposition>) -> Captures {
     let mut out = Captures::default();
     let mut ids = std::collections::BTreeSet::new();
-    let journal: Vec<PathBuf> = std::fs::read_dir(storage.join("journal"))
-        .map(|d| d.flatten().map(|e| e.path()).collect())
-        .unwrap_or_default();
-    for f in journal
-        .iter()
-        .filter(|p| p.extension().is_some_and(|x| x == "jsonl"))
-    {
-        for line in std::fs::read_to_string(f).unwrap_or_default().lines() {
+    for f in journal_files(storage) {
+        for line in std::fs::read_to_string(&f).unwrap_or_default().lines() {
             let Ok(v) = serde_json::from_str::<serde_json::Value>(line) else {
                 continue;
             };
