@@ -3,13 +3,15 @@ use std::path::PathBuf;
 use std::process::ExitCode;
 
 use clap::{Parser, Subcommand, ValueEnum};
-use tracing_subscriber::EnvFilter;
 
 /// bandwatch: rolling spectra, band levels and alarms for live DAQ channels.
+///
+/// Exit codes: 0 success; 1 an error, a failed check, an invalid config
+/// or environment; 2 a usage error (bad option or value). README, "Exit codes".
 #[derive(Debug, Parser)]
 #[command(version, about)]
 struct Cli {
-    /// Log format on stderr.
+    /// Log format on stderr (one event per line).
     #[arg(long, value_enum, default_value_t = LogFormat::Text, global = true)]
     log_format: LogFormat,
     #[command(subcommand)]
@@ -18,25 +20,88 @@ struct Cli {
 
 #[derive(Debug, Clone, Copy, ValueEnum)]
 enum LogFormat {
+    /// Human-readable; colour only on a terminal without NO_COLOR.
     Text,
+    /// One JSON object per line, fields as JSON values.
     Json,
 }
 
+/// `send --scenario`.
+#[derive(Debug, Clone, Copy, ValueEnum)]
+enum Scenario {
+    /// The cooling-water pump P2 of config/demo.toml.
+    Demo,
+}
+
+/// `send --framing`.
+#[derive(Debug, Clone, Copy, ValueEnum)]
+enum SendFraming {
+    /// Binary BWF1 frames (header, samples, CRC).
+    Bwf1,
+    /// Text lines, values in g (TCP or serial only).
+    Lines,
+}
+
+/// `send --format`: the BWF1 sample format.
+#[derive(Debug, Clone, Copy, ValueEnum)]
+enum SendFormat {
+    /// 16-bit counts.
+    I16,
+    /// 24-bit counts.
+    I24,
+    /// 32-bit counts.
+    I32,
+    /// 32-bit floats, values in g.
+    F32,
+    /// 64-bit floats, values in g.
+    F64,
+}
+
+impl SendFormat {
+    fn sample_format(self) -> bandwatch::frame::SampleFormat {
+        use bandwatch::frame::SampleFormat as F;
+        match self {
+            SendFormat::I16 => F::I16,
+            SendFormat::I24 => F::I24,
+            SendFormat::I32 => F::I32,
+            SendFormat::F32 => F::F32,
+            SendFormat::F64 => F::F64,
+        }
+    }
+}
+
+// Parsed once at start and moved into its arm: the size of the bench
+// variant costs nothing.
+#[allow(clippy::large_enum_variant)]
 #[derive(Debug, Subcommand)]
 enum Command {
     /// Run the daemon.
     Run {
-        /// Config file (TOML).
+        /// Config file (TOML); relative paths in it resolve against its directory.
         #[arg(long)]
         config: PathBuf,
         /// Listen address for HTTP, overriding `server.listen`.
         #[arg(long)]
         listen: Option<SocketAddr>,
+        /// Directory a relative `[alarms] storage_dir` resolves against
+        /// (default: $STATE_DIRECTORY, its first entry, when systemd sets
+        /// it; else the config file's directory).
+        #[arg(long)]
+        state_dir: Option<PathBuf>,
     },
-    /// Validate a config file and print every problem found.
+    /// Validate a config file and the environment it would run in; print
+    /// every problem found (exit 1 if any).
     Check {
+        /// Config file (TOML) to check.
         #[arg(long)]
         config: PathBuf,
+        /// As `run --state-dir`: where a relative storage_dir resolves.
+        #[arg(long)]
+        state_dir: Option<PathBuf>,
+        /// Check the file only: not the storage directory, token file,
+        /// serial devices or listen addresses.
+        #[arg(long)]
+        no_env: bool,
     },
     /// Act as a DAQ box: stream the demo pump over BWF1 (or lines).
     Send {
@@ -44,24 +109,25 @@ enum Command {
         /// tcp-connect daemon), udp://HOST:PORT, or serial:PATH.
         #[arg(long)]
         to: bandwatch::tools::Endpoint,
-        /// Only "demo" (the P2 pump) exists.
-        #[arg(long, default_value = "demo")]
-        scenario: String,
+        /// Signal to play.
+        #[arg(long, value_enum, default_value_t = Scenario::Demo)]
+        scenario: Scenario,
         /// Play this many times faster than real time.
         #[arg(long, default_value_t = 1.0)]
         rate_x: f64,
         /// Seconds of signal to send (default: until interrupted).
         #[arg(long)]
         seconds: Option<f64>,
-        /// Sample format: f32 (values in g), i24, i32 or i16 (counts), f64.
-        #[arg(long, default_value = "f32")]
-        format: String,
-        /// "bwf1" or "lines" (text, values in g; TCP or serial only).
-        #[arg(long, default_value = "bwf1")]
-        framing: String,
+        /// Sample format of BWF1 frames.
+        #[arg(long, value_enum, default_value_t = SendFormat::F32)]
+        format: SendFormat,
+        /// Wire framing.
+        #[arg(long, value_enum, default_value_t = SendFraming::Bwf1)]
+        framing: SendFraming,
         /// Instants per frame.
         #[arg(long, default_value_t = 256)]
         frame_samples: usize,
+        /// Seed of the simulator's noise (the same seed, the same samples).
         #[arg(long, default_value_t = 2)]
         seed: u64,
         /// Do not send every Nth frame.
@@ -83,6 +149,7 @@ enum Command {
         /// udp://BIND:PORT, or serial:PATH.
         #[arg(long)]
         from: bandwatch::tools::Endpoint,
+        /// File to write the stream into.
         #[arg(long)]
         out: PathBuf,
         /// Stop after this many seconds (default: until the peer closes or ctrl-c).
@@ -120,9 +187,23 @@ enum Command {
     Soak(bandwatch::tools::soak::SoakArgs),
 }
 
+/// The directory a relative storage_dir resolves against: the flag, else
+/// `$STATE_DIRECTORY` (systemd's `StateDirectory=`; the first of a
+/// colon-separated list), else none (the config file's directory).
+fn state_dir(flag: Option<PathBuf>) -> Option<PathBuf> {
+    flag.or_else(|| {
+        let v = std::env::var_os("STATE_DIRECTORY")?;
+        let first = v.to_string_lossy().split(':').next()?.to_string();
+        (!first.is_empty()).then(|| PathBuf::from(first))
+    })
+}
+
 fn main() -> ExitCode {
     let cli = Cli::parse();
-    init_tracing(cli.log_format);
+    bandwatch::daemon::logs::init(match cli.log_format {
+        LogFormat::Text => bandwatch::daemon::logs::Format::Text,
+        LogFormat::Json => bandwatch::daemon::logs::Format::Json,
+    });
     match cli.command {
         Command::Selftest { json } => {
             use bandwatch::tools::selftest;
@@ -143,6 +224,10 @@ fn main() -> ExitCode {
         }
         Command::Bench(args) => match bandwatch::tools::bench::run(&args) {
             Ok(()) => ExitCode::SUCCESS,
+            Err(e @ bandwatch::tools::bench::BenchError::Usage(_)) => {
+                eprintln!("bench: {e}");
+                ExitCode::from(2)
+            }
             Err(e) => {
                 eprintln!("bench: {e}");
                 ExitCode::FAILURE
@@ -170,30 +255,11 @@ fn main() -> ExitCode {
                 }
             }
         }
-        Command::Check { config } => match bandwatch::config::load(&config) {
-            Ok(c) => {
-                println!(
-                    "{}: ok ({} source(s), {} channel(s), {} band(s))",
-                    config.display(),
-                    c.sources.len(),
-                    c.channels.len(),
-                    c.channels.iter().map(|c| c.bands.len()).sum::<usize>()
-                );
-                if let Some(w) = &c.web {
-                    println!(
-                        "{}: ok (TLS {}, {} basic-auth user(s))",
-                        w.path.display(),
-                        if w.tls.is_some() { "on" } else { "off" },
-                        w.users.len()
-                    );
-                }
-                ExitCode::SUCCESS
-            }
-            Err(e) => {
-                eprintln!("{e}");
-                ExitCode::from(2)
-            }
-        },
+        Command::Check {
+            config,
+            state_dir: dir,
+            no_env,
+        } => check(&config, state_dir(dir).as_deref(), no_env),
         Command::Send {
             to,
             scenario,
@@ -208,29 +274,15 @@ fn main() -> ExitCode {
             duplicate_every,
             reorder_every,
         } => {
-            use bandwatch::frame::SampleFormat;
             use bandwatch::tools::send::{send, Faults, SendOptions, WireFormat};
-            if scenario != "demo" {
-                eprintln!("unknown scenario {scenario:?} (known: demo)");
-                return ExitCode::from(2);
-            }
+            let Scenario::Demo = scenario;
             if !(rate_x.is_finite() && rate_x > 0.0) {
                 eprintln!("--rate-x must be a number above 0");
                 return ExitCode::from(2);
             }
-            let wire = match framing.as_str() {
-                "lines" => WireFormat::Lines,
-                "bwf1" => match SampleFormat::ALL.into_iter().find(|f| f.as_str() == format) {
-                    Some(f) => WireFormat::Bwf1(f),
-                    None => {
-                        eprintln!("unknown --format {format:?} (i16, i24, i32, f32, f64)");
-                        return ExitCode::from(2);
-                    }
-                },
-                other => {
-                    eprintln!("unknown --framing {other:?} (bwf1, lines)");
-                    return ExitCode::from(2);
-                }
+            let wire = match framing {
+                SendFraming::Lines => WireFormat::Lines,
+                SendFraming::Bwf1 => WireFormat::Bwf1(format.sample_format()),
             };
             let opts = SendOptions {
                 to,
@@ -280,7 +332,7 @@ fn main() -> ExitCode {
                 Ok(c) => c,
                 Err(e) => {
                     eprintln!("{e}");
-                    return ExitCode::from(2);
+                    return ExitCode::FAILURE;
                 }
             };
             let stdout = std::io::stdout();
@@ -321,11 +373,13 @@ fn main() -> ExitCode {
             };
             match bandwatch::tools::replay::replay(&cfg, &file, source.as_deref(), &mut lock) {
                 Ok(state) => {
-                    let rejected = state.rejected();
+                    // By reason, as a JSON object in the log line.
+                    let rejected: std::collections::BTreeMap<&str, u64> =
+                        state.rejected().into_iter().collect();
                     tracing::info!(
                         frames = bandwatch::counters::SourceCounters::get(&state.frames),
                         missing = bandwatch::counters::SourceCounters::get(&state.samples_missing),
-                        ?rejected,
+                        rejected = %serde_json::to_string(&rejected).unwrap_or_default(),
                         "replay done"
                     );
                     ExitCode::SUCCESS
@@ -336,14 +390,22 @@ fn main() -> ExitCode {
                 }
             }
         }
-        Command::Run { config, listen } => {
-            let mut cfg = match bandwatch::config::load(&config) {
+        Command::Run {
+            config,
+            listen,
+            state_dir: dir,
+        } => {
+            let mut cfg = match bandwatch::config::load_with(&config, state_dir(dir).as_deref()) {
                 Ok(c) => c,
                 Err(e) => {
                     eprintln!("{e}");
-                    return ExitCode::from(2);
+                    return ExitCode::FAILURE;
                 }
             };
+            if let Err(issue) = bandwatch::config::environment::token_file_mode(&cfg) {
+                eprintln!("{}: {issue}", config.display());
+                return ExitCode::FAILURE;
+            }
             if let Some(l) = listen {
                 cfg.listen = l;
             }
@@ -432,13 +494,85 @@ async fn shutdown_signal() {
     }
 }
 
-fn init_tracing(format: LogFormat) {
-    let filter = EnvFilter::try_from_default_env().unwrap_or_else(|_| EnvFilter::new("info"));
-    let builder = tracing_subscriber::fmt()
-        .with_env_filter(filter)
-        .with_writer(std::io::stderr);
-    match format {
-        LogFormat::Text => builder.init(),
-        LogFormat::Json => builder.json().init(),
+/// `bandwatch check`: the file, then (unless `no_env`) the environment.
+fn check(config: &std::path::Path, state_dir: Option<&std::path::Path>, no_env: bool) -> ExitCode {
+    let c = match bandwatch::config::load_with(config, state_dir) {
+        Ok(c) => c,
+        Err(e) => {
+            eprintln!("{e}");
+            return ExitCode::FAILURE;
+        }
+    };
+    println!(
+        "{}: ok ({} source(s), {} channel(s), {} band(s))",
+        config.display(),
+        c.sources.len(),
+        c.channels.len(),
+        c.channels.iter().map(|c| c.bands.len()).sum::<usize>()
+    );
+    if let Some(w) = &c.web {
+        println!(
+            "{}: ok (TLS {}, {} basic-auth user(s))",
+            w.path.display(),
+            if w.tls.is_some() { "on" } else { "off" },
+            w.users.len()
+        );
+    }
+    if no_env {
+        return ExitCode::SUCCESS;
+    }
+    let issues = bandwatch::config::environment::check_environment(&c);
+    if issues.is_empty() {
+        println!("{}: environment ok", config.display());
+        return ExitCode::SUCCESS;
+    }
+    eprintln!(
+        "{}: the environment has {} problem(s):",
+        config.display(),
+        issues.len()
+    );
+    for i in &issues {
+        eprintln!("  - {i}");
+    }
+    ExitCode::FAILURE
+}
+
+#[cfg(test)]
+mod tests {
+    use super::Cli;
+    use clap::CommandFactory as _;
+
+    /// Every subcommand and every option (positional ones too) of the
+    /// whole tree has a help text, and every enumerated value one too.
+    #[test]
+    fn every_option_and_subcommand_has_help() {
+        fn walk(cmd: &clap::Command, path: &str, missing: &mut Vec<String>) {
+            for a in cmd.get_arguments() {
+                let id = a.get_id().as_str();
+                if a.is_hide_set() || id == "help" || id == "version" {
+                    continue;
+                }
+                if a.get_help().is_none() && a.get_long_help().is_none() {
+                    missing.push(format!("{path} --{id}"));
+                }
+                for v in a.get_possible_values() {
+                    if !v.is_hide_set() && v.get_help().is_none() {
+                        missing.push(format!("{path} --{id} {}", v.get_name()));
+                    }
+                }
+            }
+            for sub in cmd.get_subcommands() {
+                let p = format!("{path} {}", sub.get_name());
+                if sub.get_name() != "help" && sub.get_about().is_none() {
+                    missing.push(p.clone());
+                }
+                walk(sub, &p, missing);
+            }
+        }
+        let cmd = Cli::command();
+        cmd.clone().debug_assert();
+        let mut missing = Vec::new();
+        walk(&cmd, "bandwatch", &mut missing);
+        assert!(missing.is_empty(), "no help text: {missing:#?}");
     }
 }

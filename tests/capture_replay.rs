@@ -32,11 +32,11 @@ fn demo_text(dir: &Path, speed: f64) -> String {
     assert!(text.contains("alert = { limit = 0.05 }    # g envelope RMS"));
     text.replace("seed = 2", &format!("seed = 2\nspeed = {speed}"))
         .replace(
-            "storage_dir = \"demo-data\"",
+            "storage_dir = \"../demo-data\"",
             &format!("storage_dir = {:?}", dir.join("data").display().to_string()),
         )
         .replace(
-            "token_file = \"config/demo-token\"",
+            "token_file = \"demo-token\"",
             &format!(
                 "token_file = {:?}",
                 std::fs::canonicalize("config/demo-token")

@@ -25,7 +25,8 @@ const VANE_PASS_HZ: f64 = 7.0 * SHAFT_HZ;
 fn demo_config() -> bandwatch::config::Config {
     let text = DEMO.replacen("seed = 2\n", "seed = 2\nspeed = 4.0\n", 1);
     assert_ne!(text, DEMO, "config/demo.toml no longer has `seed = 2`");
-    match bandwatch::config::parse_str(&text) {
+    // As the file in config/ would resolve its paths.
+    match bandwatch::config::parse_str_in(&text, std::path::Path::new("config"), None) {
         Ok(c) => c,
         Err(e) => panic!("demo config: {e:?}"),
     }

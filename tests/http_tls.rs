@@ -120,11 +120,11 @@ fn demo_text(dir: &Path, server_extra: &str) -> String {
             ),
         )
         .replace(
-            "storage_dir = \"demo-data\"",
+            "storage_dir = \"../demo-data\"",
             &format!("storage_dir = {:?}", dir.join("data").display().to_string()),
         )
         .replace(
-            "token_file = \"config/demo-token\"",
+            "token_file = \"demo-token\"",
             &format!("token_file = {:?}", token.display().to_string()),
         )
 }

@@ -6,7 +6,7 @@ use std::f64::consts::PI;
 use std::sync::Arc;
 
 use bandwatch::config::bearing::{BearingGeometry, Defect};
-use bandwatch::config::{parse_str, BandEdges, Detrend};
+use bandwatch::config::{parse_str_in, BandEdges, Detrend};
 use bandwatch::dsp::bands::{BandPlan, BandStatus};
 use bandwatch::dsp::envelope::EnvelopeEngine;
 use bandwatch::dsp::filter::band_pass;
@@ -71,7 +71,7 @@ fn bearing_frequencies_match_the_worked_examples() {
 
 fn demo() -> bandwatch::config::Config {
     let text = std::fs::read_to_string("config/demo.toml").expect("demo config");
-    match parse_str(&text) {
+    match parse_str_in(&text, std::path::Path::new("config"), None) {
         Ok(c) => c,
         Err(e) => panic!("{e:?}"),
     }
@@ -331,7 +331,7 @@ fn pulses_stopping_make_speed_stale_and_order_bands_out_of_service() {
     let text = std::fs::read_to_string("config/demo.toml")
         .expect("demo")
         .replace("stale_s = 2.0 }", "stale_s = 0.2 }");
-    let cfg = match parse_str(&text) {
+    let cfg = match parse_str_in(&text, std::path::Path::new("config"), None) {
         Ok(c) => c,
         Err(e) => panic!("{e:?}"),
     };

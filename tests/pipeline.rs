@@ -7,7 +7,7 @@ use std::time::{Duration, Instant};
 mod common;
 
 use bandwatch::config::fixture::{quoted, Channel, Fixture, Source};
-use bandwatch::config::parse_str;
+use bandwatch::config::parse_str_in;
 use bandwatch::counters::GapReason;
 use bandwatch::pipeline::state::ChannelShared;
 use bandwatch::pipeline::worker::ChannelDsp;
@@ -109,7 +109,7 @@ async fn demo_scenario_shows_its_lines() {
     let text = std::fs::read_to_string("config/demo.toml")
         .expect("demo config")
         .replace("seed = 2", "seed = 2\nspeed = 4.0");
-    let config = match parse_str(&text) {
+    let config = match parse_str_in(&text, std::path::Path::new("config"), None) {
         Ok(c) => c,
         Err(e) => panic!("{e:?}"),
     };

@@ -338,7 +338,7 @@ impl ChannelAlarms {
         if c.ok {
             tracing::info!(channel = %self.channel, "channel health OK again");
         } else {
-            tracing::warn!(channel = %self.channel, reasons = ?c.reasons.names(), "channel not OK: its alarms are inhibited");
+            tracing::warn!(channel = %self.channel, reasons = %serde_json::to_string(&c.reasons.names()).unwrap_or_default(), "channel not OK: its alarms are inhibited");
         }
         self.journal(Event::health(&self.channel, c, unix_now_ns()));
     }
@@ -616,9 +616,9 @@ impl ChannelAlarms {
             }
         }
         if matches!(t.to, AlarmState::Alert | AlarmState::Danger) {
-            tracing::warn!(channel = %self.channel, alarm = %a.name, from = t.from.as_str(), to = t.to.as_str(), value = ?t.value, "alarm transition");
+            tracing::warn!(channel = %self.channel, alarm = %a.name, from = t.from.as_str(), to = t.to.as_str(), value = t.value, "alarm transition");
         } else {
-            tracing::info!(channel = %self.channel, alarm = %a.name, from = t.from.as_str(), to = t.to.as_str(), value = ?t.value, "alarm transition");
+            tracing::info!(channel = %self.channel, alarm = %a.name, from = t.from.as_str(), to = t.to.as_str(), value = t.value, "alarm transition");
         }
         self.journal(Event::transition(
             &self.channel,

@@ -60,6 +60,10 @@ pub struct RawAlarms {
     pub token_file: Option<PathBuf>,
     /// Environment variable holding the token (instead of `token_file`).
     pub token_env: Option<String>,
+    /// Let `run` use a token file that group or others may read (the
+    /// demo's, checked out 0644). Off: such a file is refused.
+    #[serde(default)]
+    pub token_file_insecure_ok: bool,
     /// Size at which the journal file rotates, bytes.
     #[serde(default = "default_journal_max_bytes")]
     pub journal_max_bytes: u64,
@@ -102,6 +106,9 @@ pub struct AlarmsSpec {
     pub storage_dir: PathBuf,
     /// `None`: no token configured, every operator action is refused.
     pub token: Option<TokenSource>,
+    /// `[alarms] token_file_insecure_ok`: a token file readable by group
+    /// or others is accepted.
+    pub token_file_insecure_ok: bool,
     pub journal: JournalLimits,
     pub capture_pre_s: f64,
     pub capture_post_s: f64,
@@ -200,6 +207,7 @@ impl RawAlarms {
         Ok(AlarmsSpec {
             storage_dir: self.storage_dir.clone(),
             token,
+            token_file_insecure_ok: self.token_file_insecure_ok,
             journal: JournalLimits {
                 max_bytes: self.journal_max_bytes,
                 max_files: self.journal_max_files,

@@ -30,6 +30,7 @@ use crate::ring::{try_channel_ring, RingAllocError, RingWriter};
 use crate::shutdown::ShutdownSignal;
 use crate::source::{self, ChannelInput, SourceOutputs};
 use state::{AppState, ChannelShared};
+pub use worker::Heartbeat;
 use worker::{ChannelDsp, Workers};
 
 #[derive(Debug, thiserror::Error)]
@@ -342,6 +343,13 @@ impl Pipeline {
     /// Must be called inside a tokio runtime.
     pub fn start(config: &Config) -> Result<Pipeline, RunError> {
         Builder::new(config).start()
+    }
+
+    /// One heartbeat per DSP worker thread (see [`Heartbeat`]).
+    pub fn heartbeats(&self) -> Vec<Heartbeat> {
+        self.workers
+            .as_ref()
+            .map_or_else(Vec::new, Workers::heartbeats)
     }
 
     /// Stops the sources, then the workers (which finish their alarms'

@@ -9,7 +9,7 @@
 //! still holds the previous one (`Arc::get_mut`), and a new one is allocated
 //! only when a reader does.
 
-use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
 use std::sync::Arc;
 use std::thread::{self, JoinHandle, Thread};
 use std::time::{Duration, Instant};
@@ -689,6 +689,20 @@ fn stamp(anchor: (u64, u64), fs: f64, sample: u64) -> u64 {
 pub struct Workers {
     stop: Arc<AtomicBool>,
     handles: Vec<JoinHandle<()>>,
+    beats: Vec<Heartbeat>,
+}
+
+/// A worker's loop count, bumped once per turn of its loop (after each
+/// bounded park too), so a count that moves means the thread runs. Read
+/// only outside the worker (the watchdog of `daemon::notify`).
+#[derive(Debug, Clone, Default)]
+pub struct Heartbeat(Arc<AtomicU64>);
+
+impl Heartbeat {
+    /// Turns of the loop so far.
+    pub fn get(&self) -> u64 {
+        self.0.load(Ordering::Relaxed)
+    }
 }
 
 impl Workers {
@@ -710,17 +724,21 @@ impl Workers {
         let mut workers = Workers {
             stop: Arc::new(AtomicBool::new(false)),
             handles: Vec::new(),
+            beats: Vec::new(),
         };
         let mut wakers: Vec<Option<Thread>> = vec![None; count];
         for (w, set) in sets.into_iter().enumerate() {
             let stop = workers.stop.clone();
+            let beat = Heartbeat::default();
+            let counter = beat.0.clone();
             let ids: Vec<usize> = set.iter().map(|(i, _)| *i).collect();
             let handle = thread::Builder::new()
                 .name(format!("bandwatch-dsp-{w}"))
                 .spawn(move || {
                     let mut chans: Vec<ChannelDsp> = set.into_iter().map(|(_, c)| c).collect();
-                    worker_loop(&mut chans, &stop);
+                    worker_loop(&mut chans, &stop, &counter);
                 })?;
+            workers.beats.push(beat);
             for i in ids {
                 wakers[i] = Some(handle.thread().clone());
             }
@@ -731,6 +749,11 @@ impl Workers {
             .map(|t| t.unwrap_or_else(thread::current))
             .collect();
         Ok((workers, wakers))
+    }
+
+    /// One heartbeat per worker thread.
+    pub fn heartbeats(&self) -> Vec<Heartbeat> {
+        self.beats.clone()
     }
 
     /// Asks every worker to stop and waits for them (each finishes its
@@ -756,11 +779,12 @@ impl Drop for Workers {
     }
 }
 
-fn worker_loop(chans: &mut [ChannelDsp], stop: &AtomicBool) {
+fn worker_loop(chans: &mut [ChannelDsp], stop: &AtomicBool, beat: &AtomicU64) {
     for ch in chans.iter() {
         let _ = ch.shared.worker.set(thread::current());
     }
     while !stop.load(Ordering::Relaxed) {
+        beat.fetch_add(1, Ordering::Relaxed);
         let mut worked = false;
         for ch in chans.iter_mut() {
             worked |= ch.poll();

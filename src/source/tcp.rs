@@ -315,14 +315,14 @@ async fn accept(
                 let peer = active.take().map(|a| a.peer);
                 match event {
                     Event::Read(Err(e)) => {
-                        tracing::warn!(source = %sink.state.name, ?peer, error = %e, "connection lost")
+                        tracing::warn!(source = %sink.state.name, peer = peer.map(tracing::field::display), error = %e, "connection lost")
                     }
                     Event::Idle => {
                         let msg = format!("no byte from {peer:?} for {:?}; closed", policy.idle);
                         sink.reject("idle_timeout", &msg);
                     }
                     _ => {
-                        tracing::warn!(source = %sink.state.name, ?peer, "connection closed by the peer")
+                        tracing::warn!(source = %sink.state.name, peer = peer.map(tracing::field::display), "connection closed by the peer")
                     }
                 }
                 sink.set_connected(false);

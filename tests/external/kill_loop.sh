@@ -97,8 +97,8 @@ def sub(old, new):
     global text
     assert old in text, old
     text = text.replace(old, new, 1)
-sub('storage_dir = "demo-data"', 'storage_dir = "%s"' % data)
-sub('token_file = "config/demo-token"', 'token_file = "%s"' % token)
+sub('storage_dir = "../demo-data"', 'storage_dir = "%s"' % data)
+sub('token_file = "demo-token"', 'token_file = "%s"' % token)
 sub("capture_pre_s = 3.0", "capture_pre_s = 1.0")
 sub(
     "overall_alarm = { rms = { alert = { limit = 0.5 }, danger = { limit = 1.0 }, on_delay_s = 2.0 } }",

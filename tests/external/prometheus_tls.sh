@@ -101,8 +101,8 @@ basic_auth_users:
   $user: '$hash'
 EOF
 sed -e "s|^listen = \"127.0.0.1:9750\"|listen = \"127.0.0.1:9750\"\nweb_config = \"$work/web.yml\"|" \
-    -e "s|^storage_dir = \"demo-data\"|storage_dir = \"$work/data\"|" \
-    -e "s|^token_file = \"config/demo-token\"|token_file = \"$root/config/demo-token\"|" \
+    -e "s|^storage_dir = \"../demo-data\"|storage_dir = \"$work/data\"|" \
+    -e "s|^token_file = \"demo-token\"|token_file = \"$root/config/demo-token\"|" \
     config/demo.toml >"$work/bandwatch.toml"
 grep -q "^web_config = " "$work/bandwatch.toml" || fail "could not add web_config to the demo config"
 echo "   $work/web.yml: user $user, hash ${hash:0:7}…"

@@ -27,8 +27,8 @@ const HTTP_GRACE_S: f64 = 2.0;
 pub(crate) const MAX_HTTP_CHANNELS: usize = 8192;
 
 /// How the two DSP threads run while the http phase measures.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub(crate) enum DspLoad {
+#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
+pub enum DspLoad {
     /// As fast as they can: both cores saturated (harsher than a plant).
     Flat,
     /// At the channels' real-time rate (each channel gets 25 600 samples per
@@ -39,14 +39,6 @@ pub(crate) enum DspLoad {
 }
 
 impl DspLoad {
-    fn parse(s: &str) -> Option<DspLoad> {
-        match s {
-            "flat" => Some(DspLoad::Flat),
-            "paced" => Some(DspLoad::Paced),
-            "idle" => Some(DspLoad::Idle),
-            _ => None,
-        }
-    }
     fn as_str(self) -> &'static str {
         match self {
             DspLoad::Flat => "flat",
@@ -510,12 +502,7 @@ pub(crate) fn http_phase(
     notes: &mut Vec<String>,
 ) -> Result<(), BenchError> {
     let repeats = args.repeats.max(1);
-    let mut loads = Vec::new();
-    for l in &args.http_load {
-        loads.push(DspLoad::parse(l).ok_or_else(|| {
-            BenchError::Usage(format!("--http-load {l:?}: expected flat, paced or idle"))
-        })?);
-    }
+    let mut loads = args.http_load.clone();
     if loads.is_empty() {
         loads = vec![DspLoad::Flat, DspLoad::Paced];
     }

@@ -38,6 +38,7 @@
 mod dsp;
 mod fft;
 mod http;
+pub use http::DspLoad;
 mod ingest;
 mod input;
 mod memory;
@@ -81,8 +82,8 @@ pub struct BenchArgs {
     pub work_seconds: f64,
     /// Phases to run, comma separated: fft, dsp, path, memory, ingest, http
     /// (default: all), plant (only when named), or welch (with --signal).
-    #[arg(long, value_delimiter = ',')]
-    pub only: Vec<String>,
+    #[arg(long, value_enum, value_delimiter = ',')]
+    pub only: Vec<Phase>,
     /// Also write the results as JSON here.
     #[arg(long)]
     pub json: Option<PathBuf>,
@@ -97,8 +98,8 @@ pub struct BenchArgs {
     pub http_channels: Vec<usize>,
     /// http: DSP load during the requests, `flat` (flat out), `paced`
     /// (real time: 25.6 kHz per channel) and/or `idle` (no DSP work).
-    #[arg(long, value_delimiter = ',', default_value = "flat,paced")]
-    pub http_load: Vec<String>,
+    #[arg(long, value_enum, value_delimiter = ',', default_value = "flat,paced")]
+    pub http_load: Vec<http::DspLoad>,
     /// http: request rates, requests/s (alternating /metrics and spectrum).
     #[arg(long, value_delimiter = ',', default_value = "200")]
     pub http_rates: Vec<f64>,
@@ -305,8 +306,44 @@ pub(crate) fn table(report: &Report) -> String {
     s
 }
 
+/// `bench --only`: a phase (or mode) of the benchmark.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
+pub enum Phase {
+    /// The FFT alone.
+    Fft,
+    /// A channel's DSP per block.
+    Dsp,
+    /// Ring to published snapshot.
+    Path,
+    /// Memory per channel.
+    Memory,
+    /// Sources over loopback sockets.
+    Ingest,
+    /// HTTP latency under DSP load.
+    Http,
+    /// The plant-scale run (only when named).
+    Plant,
+    /// Welch spectra of --signal as JSON (for bench/compare_scipy.py).
+    Welch,
+}
+
+impl Phase {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Phase::Fft => "fft",
+            Phase::Dsp => "dsp",
+            Phase::Path => "path",
+            Phase::Memory => "memory",
+            Phase::Ingest => "ingest",
+            Phase::Http => "http",
+            Phase::Plant => "plant",
+            Phase::Welch => "welch",
+        }
+    }
+}
+
 pub(crate) fn wants(args: &BenchArgs, phase: &str) -> bool {
-    args.only.is_empty() || args.only.iter().any(|p| p == phase)
+    args.only.is_empty() || args.only.iter().any(|p| p.as_str() == phase)
 }
 
 /// Runs the benchmark as the options say, prints the table (or, in the
@@ -332,7 +369,7 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
         println!("{}", serde_json::to_string(&r).unwrap_or_default());
         return Ok(());
     }
-    if args.only.iter().any(|p| p == "welch") {
+    if args.only.contains(&Phase::Welch) {
         let w = welch::welch(args)?;
         let text = serde_json::to_string(&w).map_err(|e| BenchError::Lost(e.to_string()))?;
         match &args.json {
@@ -340,11 +377,6 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
             None => println!("{text}"),
         }
         return Ok(());
-    }
-    for p in &args.only {
-        if !["fft", "dsp", "path", "memory", "ingest", "http", "plant"].contains(&p.as_str()) {
-            return Err(BenchError::Usage(format!("unknown phase {p:?}")));
-        }
     }
     if args.channels.iter().any(|&c| c == 0 || c > 1024) {
         return Err(BenchError::Usage("--channels must be 1 to 1024".into()));
@@ -396,7 +428,7 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
     }
 
     // Only when named: it runs the daemon at plant scale for minutes.
-    let plant = if args.only.iter().any(|p| p == "plant") {
+    let plant = if args.only.contains(&Phase::Plant) {
         Some(plant::plant_phase(args, &mut rows, &mut notes)?)
     } else {
         None

@@ -1,4 +1,9 @@
-//! The daemon: the pipeline and its HTTP server, run until shut down.
+//! The daemon: the pipeline and its HTTP server, run until shut down;
+//! `notify` speaks systemd's notify protocol, `logs` sets up the log
+//! output (text or JSON lines).
+
+pub mod logs;
+pub mod notify;
 
 use std::future::Future;
 use std::net::SocketAddr;
@@ -12,7 +17,10 @@ use crate::http;
 use crate::pipeline::{Pipeline, RunError};
 
 /// Runs the daemon on an already bound listener until `shutdown` resolves,
-/// then drains HTTP, stops sources and workers.
+/// then drains HTTP, stops sources and workers. Under systemd
+/// (`NOTIFY_SOCKET`), `READY=1` goes out once the sources are spawned (the
+/// listener is bound already), then status and watchdog messages, and
+/// `STOPPING=1` when `shutdown` resolves (see [`notify`]).
 pub async fn serve<F>(config: Config, listener: TcpListener, shutdown: F) -> Result<(), RunError>
 where
     F: Future<Output = ()> + Send + 'static,
@@ -33,9 +41,18 @@ where
         app = http::auth::require(app, Arc::new(auth));
     }
     let tls = web.and_then(|w| w.tls.as_ref()).map(|t| t.server.clone());
+    let notifier = notify::Notifier::from_env();
+    let monitor = notify::start(notifier, pipeline.state.clone(), pipeline.heartbeats());
+    let shutdown = async move {
+        shutdown.await;
+        notifier.stopping();
+    };
     let result = http::server::serve(listener, app, limits, connections, tls, shutdown)
         .await
         .map_err(RunError::Http);
+    if let Some(m) = monitor {
+        m.abort();
+    }
     pipeline.stop().await;
     result
 }
