@@ -555,7 +555,12 @@ mod tests {
                 if a.get_help().is_none() && a.get_long_help().is_none() {
                     missing.push(format!("{path} --{id}"));
                 }
-                for v in a.get_possible_values() {
+                let values = if a.get_action().takes_values() {
+                    a.get_possible_values()
+                } else {
+                    Vec::new() // a flag's true/false
+                };
+                for v in values {
                     if !v.is_hide_set() && v.get_help().is_none() {
                         missing.push(format!("{path} --{id} {}", v.get_name()));
                     }

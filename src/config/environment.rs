@@ -124,7 +124,7 @@ pub fn check_storage(dir: &Path) -> Result<(), String> {
         match fs::metadata(p) {
             Ok(m) if m.is_dir() => break,
             Ok(_) => return Err(format!("{} is not a directory", p.display())),
-            Err(e) if e.kind() == ErrorKind::NotFound => {
+            Err(e) if matches!(e.kind(), ErrorKind::NotFound | ErrorKind::NotADirectory) => {
                 missing.push(p.to_path_buf());
                 match p.parent() {
                     Some(q) if !q.as_os_str().is_empty() => p = q,
