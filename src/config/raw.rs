@@ -136,8 +136,8 @@ pub struct RawServer {
     #[serde(default = "default_request_timeout_s")]
     pub request_timeout_s: f64,
     /// Web-config file (YAML, the Prometheus exporters' keys) turning on
-    /// TLS and basic auth; relative to the working directory, like
-    /// `[alarms] token_file`.
+    /// TLS and basic auth; a relative path is relative to the config
+    /// file's directory (`config::load_with`).
     #[serde(default)]
     pub web_config: Option<std::path::PathBuf>,
 }
