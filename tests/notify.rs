@@ -208,3 +208,30 @@ fn without_notify_socket_nothing_is_sent() {
     assert!(sock.recv(&mut buf).is_err(), "a message arrived");
     let _ = std::fs::remove_dir_all(&dir);
 }
+
+/// The heartbeats the watchdog reads move on every worker, idle or busy
+/// (an idle worker parks at most 20 ms per turn).
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn every_worker_heartbeat_moves() {
+    let text = Fixture::new()
+        .raw("[dsp]\nworkers = 2")
+        .source(Source::new("sim", "sim"))
+        .channel(Channel::new("a", "sim", 0).block(4096))
+        .channel(Channel::new("b", "sim", 1).block(4096))
+        .toml();
+    let cfg = bandwatch::config::parse_str(&text).expect("config");
+    let p = bandwatch::Pipeline::start(&cfg).expect("pipeline");
+    let beats = p.heartbeats();
+    assert_eq!(beats.len(), 2);
+    let before: Vec<u64> = beats.iter().map(|b| b.get()).collect();
+    let deadline = Instant::now() + Duration::from_secs(10);
+    loop {
+        let now: Vec<u64> = beats.iter().map(|b| b.get()).collect();
+        if bandwatch::daemon::notify::should_ping(&before, &now) {
+            break;
+        }
+        assert!(Instant::now() < deadline, "{before:?} -> {now:?}");
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
+    p.stop().await;
+}
