@@ -347,6 +347,16 @@ fn main() -> ExitCode {
             if let Some(l) = listen {
                 cfg.listen = l;
             }
+            // SIGHUP and POST /api/v1/reload re-read the same file, with
+            // the same --listen override.
+            let loader: bandwatch::pipeline::reload::ConfigLoader =
+                std::sync::Arc::new(move || {
+                    let mut c = bandwatch::config::load(&config)?;
+                    if let Some(l) = listen {
+                        c.listen = l;
+                    }
+                    Ok(c)
+                });
             let rt = match tokio::runtime::Builder::new_multi_thread()
                 .worker_threads(2)
                 .enable_all()
@@ -359,7 +369,7 @@ fn main() -> ExitCode {
                     return ExitCode::FAILURE;
                 }
             };
-            rt.block_on(run(cfg))
+            rt.block_on(run(cfg, loader))
         }
     }
 }
@@ -377,7 +387,10 @@ fn block_on<F: std::future::Future<Output = ExitCode>>(f: F) -> ExitCode {
     }
 }
 
-async fn run(cfg: bandwatch::config::Config) -> ExitCode {
+async fn run(
+    cfg: bandwatch::config::Config,
+    loader: bandwatch::pipeline::reload::ConfigLoader,
+) -> ExitCode {
     let listener = match tokio::net::TcpListener::bind(cfg.listen).await {
         Ok(l) => l,
         Err(e) => {
@@ -392,7 +405,7 @@ async fn run(cfg: bandwatch::config::Config) -> ExitCode {
         "http"
     };
     tracing::info!(%addr, channels = cfg.channels.len(), "bandwatch listening on {scheme}://{addr}/");
-    match bandwatch::serve(cfg, listener, shutdown_signal()).await {
+    match bandwatch::daemon::serve_with(cfg, listener, shutdown_signal(), Some(loader)).await {
         Ok(()) => {
             tracing::info!("stopped");
             ExitCode::SUCCESS
