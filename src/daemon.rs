@@ -41,10 +41,8 @@ where
     let pipeline = Pipeline::start(&config)?;
     let (reload_tx, reload_rx) = tokio::sync::mpsc::channel::<ReloadRequest>(4);
     let hangups = tokio::spawn(forward_hangups(reload_tx.clone()));
-    let (mut app, connections) = http::app_live(
-        pipeline.live.clone(),
-        loader.is_some().then_some(reload_tx),
-    );
+    let (mut app, connections) =
+        http::app_live(pipeline.live.clone(), loader.is_some().then_some(reload_tx));
     let web = config.web.as_ref();
     if let Some(w) = web.filter(|w| !w.users.is_empty()) {
         let auth = http::auth::BasicAuth::new(
@@ -118,7 +116,10 @@ async fn reload_loop(
         };
         let result = match &loader {
             None => {
-                tracing::warn!(origin = req.origin, "reload asked, but this daemon has no config file to re-read; ignored");
+                tracing::warn!(
+                    origin = req.origin,
+                    "reload asked, but this daemon has no config file to re-read; ignored"
+                );
                 Err(ReloadError::Refused(vec![Problem {
                     path: "config".into(),
                     message: "this daemon was started without a config file to re-read".into(),

@@ -156,17 +156,29 @@ async fn reload_keeps_changes_adds_removes_and_refuses() {
     })
     .await;
     ack(&kept, 0).await;
-    wait_for("acknowledged", 5, || view(&kept, 0).is_some_and(|v| v.acknowledged)).await;
+    wait_for("acknowledged", 5, || {
+        view(&kept, 0).is_some_and(|v| v.acknowledged)
+    })
+    .await;
     let base_before = view(&kept, 1).expect("base");
     let lim_before = view(&lim, 0).expect("lim");
 
     // Refused: two things that need a restart, and nothing changes.
-    let mut bad = parse(&config_text(&dir, &Knobs { workers: 3, ..knobs }));
+    let mut bad = parse(&config_text(
+        &dir,
+        &Knobs {
+            workers: 3,
+            ..knobs
+        },
+    ));
     bad.listen = "127.0.0.1:1".parse().expect("addr");
     let e = p.reload(&bad).await.expect_err("needs a restart");
     let paths: Vec<&str> = e.problems().iter().map(|x| x.path.as_str()).collect();
     assert_eq!(paths, ["server.listen", "dsp.workers"], "{e}");
-    assert!(Arc::ptr_eq(&p.live.load_full(), &st0), "a refused reload changes nothing");
+    assert!(
+        Arc::ptr_eq(&p.live.load_full(), &st0),
+        "a refused reload changes nothing"
+    );
 
     let seq_before = kept.latest().map_or(0, |s| s.seq);
     let processed_before = kept.counters.samples_processed.load(Ordering::Relaxed);
@@ -201,9 +213,16 @@ async fn reload_keeps_changes_adds_removes_and_refuses() {
     })
     .await;
     assert!(kept.counters.samples_processed.load(Ordering::Relaxed) > processed_before);
-    assert_eq!(discontinuities(&kept), breaks_before, "no break on a kept channel");
+    assert_eq!(
+        discontinuities(&kept),
+        breaks_before,
+        "no break on a kept channel"
+    );
     let k = view(&kept, 0).expect("kept alarm");
-    assert!(k.latched && k.acknowledged && k.state == AlarmState::Danger, "{k:?}");
+    assert!(
+        k.latched && k.acknowledged && k.state == AlarmState::Danger,
+        "{k:?}"
+    );
     let b = view(&kept, 1).expect("base");
     assert_eq!(b.learning, None, "the baseline is not learned again");
     assert_eq!(b.alert_limit, base_before.alert_limit);
@@ -211,14 +230,27 @@ async fn reload_keeps_changes_adds_removes_and_refuses() {
     // Changed limit: in force at once, latch and history kept.
     let lim1 = channel(&st1, "lim");
     assert!(!Arc::ptr_eq(&lim1, &lim));
-    assert_eq!(lim1.spec.alarms[0].spec.danger.map(|l| format!("{:?}", l.source)), Some("Fixed(1000000000000.0)".into()));
+    assert_eq!(
+        lim1.spec.alarms[0]
+            .spec
+            .danger
+            .map(|l| format!("{:?}", l.source)),
+        Some("Fixed(1000000000000.0)".into())
+    );
     wait_for("the new limit shown", 5, || {
         view(&lim1, 0).is_some_and(|v| v.danger_limit.is_some_and(|d| d > 1e11))
     })
     .await;
     let l = view(&lim1, 0).expect("lim alarm");
-    assert!(l.latched && l.state == AlarmState::Danger, "latch kept: {l:?}");
-    assert!(l.transitions.iter().zip(lim_before.transitions).all(|(a, b)| *a >= b));
+    assert!(
+        l.latched && l.state == AlarmState::Danger,
+        "latch kept: {l:?}"
+    );
+    assert!(l
+        .transitions
+        .iter()
+        .zip(lim_before.transitions)
+        .all(|(a, b)| *a >= b));
     assert!(Arc::ptr_eq(&lim1.counters, &lim.counters));
 
     // Added: publishes. Removed: gone from the state and from /metrics.
@@ -238,7 +270,10 @@ async fn reload_keeps_changes_adds_removes_and_refuses() {
         std::net::UdpSocket::bind(("127.0.0.1", port)).is_ok()
     })
     .await;
-    assert!(std::net::UdpSocket::bind(("127.0.0.1", port2)).is_err(), "new port bound");
+    assert!(
+        std::net::UdpSocket::bind(("127.0.0.1", port2)).is_err(),
+        "new port bound"
+    );
     let report = send(
         SendOptions {
             to: Endpoint::Udp(format!("127.0.0.1:{port2}")),
@@ -294,7 +329,10 @@ async fn a_changed_signal_setting_restarts_the_channel_and_keeps_its_latch() {
     assert!(!Arc::ptr_eq(&again, &kept));
     assert!(Arc::ptr_eq(&again.counters, &kept.counters));
     assert!(again.counters.blocks.load(Ordering::Relaxed) >= blocks);
-    wait_for("the restarted channel publishes", 15, || again.latest().is_some()).await;
+    wait_for("the restarted channel publishes", 15, || {
+        again.latest().is_some()
+    })
+    .await;
     let v = view(&again, 0).expect("alarm");
     assert!(v.latched, "latch carried over: {v:?}");
     p.stop().await;
@@ -302,7 +340,12 @@ async fn a_changed_signal_setting_restarts_the_channel_and_keeps_its_latch() {
 }
 
 /// One HTTP request over a fresh connection; the raw response parsed.
-async fn request(addr: SocketAddr, method: &str, path: &str, auth: Option<&str>) -> common::Response {
+async fn request(
+    addr: SocketAddr,
+    method: &str,
+    path: &str,
+    auth: Option<&str>,
+) -> common::Response {
     use tokio::io::{AsyncReadExt, AsyncWriteExt};
     let mut s = tokio::net::TcpStream::connect(addr).await.expect("connect");
     let auth = auth.map_or(String::new(), |t| format!("Authorization: Bearer {t}\r\n"));
@@ -330,7 +373,9 @@ async fn post_reload_needs_the_token_and_answers_every_problem() {
     };
     std::fs::write(&file, config_text(&dir, &knobs)).expect("write");
     let cfg = bandwatch::config::load(&file).expect("config");
-    let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.expect("bind");
+    let listener = tokio::net::TcpListener::bind("127.0.0.1:0")
+        .await
+        .expect("bind");
     let addr = listener.local_addr().expect("addr");
     let path = file.clone();
     let loader: bandwatch::pipeline::reload::ConfigLoader =
@@ -361,12 +406,30 @@ async fn post_reload_needs_the_token_and_answers_every_problem() {
         .map(|p| p["path"].as_str().unwrap_or("").to_string())
         .collect();
     assert!(paths.iter().any(|p| p == "dsp.ring_seconds"), "{paths:?}");
-    assert!(paths.iter().any(|p| p.contains("kept") && p.contains("block")), "{paths:?}");
-    assert!(problems.iter().all(|p| !p["message"].as_str().unwrap_or("").is_empty()));
+    assert!(
+        paths
+            .iter()
+            .any(|p| p.contains("kept") && p.contains("block")),
+        "{paths:?}"
+    );
+    assert!(problems
+        .iter()
+        .all(|p| !p["message"].as_str().unwrap_or("").is_empty()));
     // The old config runs on: "gone" still served.
     assert_eq!(get(addr, "/api/v1/channels/gone").await.status, 200);
 
-    std::fs::write(&file, config_text(&dir, &Knobs { gone: false, new: true, ..knobs })).expect("write");
+    std::fs::write(
+        &file,
+        config_text(
+            &dir,
+            &Knobs {
+                gone: false,
+                new: true,
+                ..knobs
+            },
+        ),
+    )
+    .expect("write");
     let r = request(addr, "POST", "/api/v1/reload", Some(TOKEN)).await;
     assert_eq!(r.status, 200, "{}", r.text());
     assert_eq!(r.json()["summary"]["removed"][0], "gone");
@@ -426,7 +489,15 @@ fn sighup_reloads_the_real_daemon() {
         false
     });
     assert!(up, "daemon up");
-    std::fs::write(&file, text(&Knobs { gone: false, new: true, ..knobs })).expect("write");
+    std::fs::write(
+        &file,
+        text(&Knobs {
+            gone: false,
+            new: true,
+            ..knobs
+        }),
+    )
+    .expect("write");
     let pid = child.id().to_string();
     let kill = |sig: &str| {
         let ok = std::process::Command::new("kill")
@@ -449,7 +520,10 @@ fn sighup_reloads_the_real_daemon() {
         false
     });
     assert!(reloaded, "the new channel is served after SIGHUP");
-    assert!(child.try_wait().expect("wait").is_none(), "still running after SIGHUP");
+    assert!(
+        child.try_wait().expect("wait").is_none(),
+        "still running after SIGHUP"
+    );
     let stderr = std::fs::read_to_string(dir.join("stderr")).expect("stderr");
     assert!(stderr.contains("config reloaded"), "{stderr}");
     kill("-TERM");
@@ -485,14 +559,19 @@ async fn counters_balance_across_reloads_under_load() {
         t.push_str(&format!("\nname = \"daq\"\nkind = \"tcp-listen\"\nlisten = \"127.0.0.1:{port}\"\nchannels = 4\nsample_rate_hz = 25600\n"));
         t.push_str(&ch("a", 0));
         t.push_str(&ch("b", 1));
-        t.push_str(&format!("overall_alarm = {{ rms = {{ alert = {{ limit = {limit:?} }} }} }}\n"));
+        t.push_str(&format!(
+            "overall_alarm = {{ rms = {{ alert = {{ limit = {limit:?} }} }} }}\n"
+        ));
         if extra {
             t.push_str(&ch("extra", 3));
         }
         parse(&t)
     };
     let mut p = Pipeline::start(&text(false, 1.0)).expect("pipeline");
-    wait_for("listening", 5, || std::net::TcpStream::connect(("127.0.0.1", port)).is_ok()).await;
+    wait_for("listening", 5, || {
+        std::net::TcpStream::connect(("127.0.0.1", port)).is_ok()
+    })
+    .await;
     let sender = tokio::spawn(send(
         SendOptions {
             to: Endpoint::Tcp(format!("127.0.0.1:{port}")),

@@ -263,10 +263,7 @@ fn capture_error(st: &HttpState, e: capture::CaptureError) -> ApiError {
 
 /// One capture's metadata (trip, limits, spectrum at the trip); with
 /// `/waveform`, its BWF1 waveform file.
-pub async fn event(
-    Live(st): Live,
-    Path(id): Path<String>,
-) -> Result<Json<Value>, ApiError> {
+pub async fn event(Live(st): Live, Path(id): Path<String>) -> Result<Json<Value>, ApiError> {
     let dir = st
         .app
         .captures_dir
@@ -283,10 +280,7 @@ pub async fn event(
     Ok(Json(body))
 }
 
-pub async fn event_waveform(
-    Live(st): Live,
-    Path(id): Path<String>,
-) -> Result<Response, ApiError> {
+pub async fn event_waveform(Live(st): Live, Path(id): Path<String>) -> Result<Response, ApiError> {
     let dir = st
         .app
         .captures_dir

@@ -618,10 +618,7 @@ fn outputs_of(
     width: usize,
 ) -> SourceOutputs {
     let mut out = SourceOutputs::new(width);
-    for (index, i) in slots_of(state, inputs, name, width)
-        .into_iter()
-        .enumerate()
-    {
+    for (index, i) in slots_of(state, inputs, name, width).into_iter().enumerate() {
         if let Some(i) = i {
             out.attach(index, i);
         }

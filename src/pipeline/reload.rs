@@ -146,7 +146,9 @@ pub(crate) fn plan(old: &Config, new: &Config) -> Result<Plan, Vec<Problem>> {
     let mut restart = |path: &str, what: &str| {
         problems.push(Problem {
             path: path.to_string(),
-            message: format!("{what} changed: needs a restart (not applied; the old value runs on)"),
+            message: format!(
+                "{what} changed: needs a restart (not applied; the old value runs on)"
+            ),
         });
     };
     if old.listen != new.listen {
@@ -165,7 +167,10 @@ pub(crate) fn plan(old: &Config, new: &Config) -> Result<Plan, Vec<Problem>> {
         restart("dsp.ring_seconds", "the ring length");
     }
     if !same(&old.alarms, &new.alarms) {
-        restart("alarms", "the [alarms] table (storage, journal, captures, token)");
+        restart(
+            "alarms",
+            "the [alarms] table (storage, journal, captures, token)",
+        );
     }
     if !same(&old.machines, &new.machines) {
         restart("machine", "a machine");
@@ -196,7 +201,9 @@ pub(crate) fn plan(old: &Config, new: &Config) -> Result<Plan, Vec<Problem>> {
         if fate == ChannelFate::Restarted && measuring.contains(&c.name.as_str()) {
             problems.push(Problem {
                 path: format!("channel {:?}", c.name),
-                message: "measures a machine's speed; a change to its signal settings needs a restart".into(),
+                message:
+                    "measures a machine's speed; a change to its signal settings needs a restart"
+                        .into(),
             });
         }
         fates.push(fate);
@@ -292,7 +299,9 @@ impl super::Pipeline {
                 sources_removed = ?s.sources_removed,
                 "config reloaded"
             ),
-            Err(e) => tracing::error!(problems = %join(e.problems()), "config reload refused; the old config runs on"),
+            Err(e) => {
+                tracing::error!(problems = %join(e.problems()), "config reload refused; the old config runs on")
+            }
         }
         result
     }
@@ -305,11 +314,11 @@ impl super::Pipeline {
     }
 
     async fn apply(&mut self, new: &Config) -> Result<ReloadSummary, ReloadError> {
+        use super::state::{AppState, ChannelShared};
+        use super::worker::{ChannelDsp, WorkerCommand};
         use super::{input_of, RingSize, RunningSource};
         use crate::ring::try_channel_ring;
         use crate::source::ChannelInput;
-        use super::state::{AppState, ChannelShared};
-        use super::worker::{ChannelDsp, WorkerCommand};
 
         let plan = plan(&self.config, new).map_err(ReloadError::Refused)?;
         let old_state = self.live.load_full();
@@ -323,8 +332,12 @@ impl super::Pipeline {
 
         // 1. Everything that can fail, before anything changes: the rings
         // and DSP of added and restarted channels.
-        let mut built: Vec<(usize, Arc<ChannelShared>, ChannelDsp, crate::ring::RingWriter)> =
-            Vec::new();
+        let mut built: Vec<(
+            usize,
+            Arc<ChannelShared>,
+            ChannelDsp,
+            crate::ring::RingWriter,
+        )> = Vec::new();
         let mut problems = Vec::new();
         for (i, (spec, fate)) in new.channels.iter().zip(&plan.fates).enumerate() {
             if !matches!(fate, ChannelFate::Added | ChannelFate::Restarted) {
@@ -396,11 +409,18 @@ impl super::Pipeline {
             })
             .map(|c| (c.source.clone(), c.index))
             .collect();
-        let mut stopped: BTreeMap<String, (Vec<Option<ChannelInput>>, Arc<crate::counters::SourceCounters>)> =
-            BTreeMap::new();
+        let mut stopped: BTreeMap<
+            String,
+            (
+                Vec<Option<ChannelInput>>,
+                Arc<crate::counters::SourceCounters>,
+            ),
+        > = BTreeMap::new();
         let mut running = Vec::new();
         for s in std::mem::take(&mut self.sources) {
-            let keep = new_sources.get(s.spec.name.as_str()).is_some_and(|n| same(*n, &s.spec));
+            let keep = new_sources
+                .get(s.spec.name.as_str())
+                .is_some_and(|n| same(*n, &s.spec));
             if keep {
                 running.push(s);
             } else {
@@ -420,7 +440,9 @@ impl super::Pipeline {
                 } else {
                     Arc::new(crate::counters::SourceCounters::new(
                         &name,
-                        new_sources.get(name.as_str()).map_or("", |n| n.kind.as_str()),
+                        new_sources
+                            .get(name.as_str())
+                            .map_or("", |n| n.kind.as_str()),
                     ))
                 };
                 stopped.insert(name, (inputs, counters));
@@ -452,7 +474,11 @@ impl super::Pipeline {
             }
             if let Some(old) = old_state.channel(&c.name) {
                 if let Some(t) = old.worker.get().cloned() {
-                    answered(workers.send(&t, WorkerCommand::Remove(old.clone())), "remove").await;
+                    answered(
+                        workers.send(&t, WorkerCommand::Remove(old.clone())),
+                        "remove",
+                    )
+                    .await;
                 }
             }
             if plan.removed.contains(&c.name) {
@@ -460,7 +486,9 @@ impl super::Pipeline {
             }
         }
         for (i, (spec, fate)) in new.channels.iter().zip(&plan.fates).enumerate() {
-            let Some(old) = old_state.channel(&spec.name) else { continue };
+            let Some(old) = old_state.channel(&spec.name) else {
+                continue;
+            };
             match fate {
                 ChannelFate::Kept => {
                     shared[i] = Some(old.clone());
@@ -483,9 +511,15 @@ impl super::Pipeline {
         }
         let mut attach: Vec<(String, usize, ChannelInput)> = Vec::new();
         for (i, ch, dsp, w) in built {
-            let Some(t) = workers.next_thread() else { continue };
+            let Some(t) = workers.next_thread() else {
+                continue;
+            };
             answered(workers.send(&t, WorkerCommand::Add(Box::new(dsp))), "add").await;
-            attach.push((ch.spec.source.clone(), ch.spec.index, input_of(&ch.spec, w, t)));
+            attach.push((
+                ch.spec.source.clone(),
+                ch.spec.index,
+                input_of(&ch.spec, w, t),
+            ));
             match plan.fates[i] {
                 ChannelFate::Restarted => summary.restarted.push(ch.spec.name.clone()),
                 _ => summary.added.push(ch.spec.name.clone()),

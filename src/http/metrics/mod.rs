@@ -198,7 +198,12 @@ impl Metrics {
         Metrics::with_live(live, unix_now_ns, RENDER_MAX_AGE, Arc::new(process_mono))
     }
 
-    fn with_live(live: LiveState, clock: fn() -> u64, max_age: Duration, mono: MonoClock) -> Metrics {
+    fn with_live(
+        live: LiveState,
+        clock: fn() -> u64,
+        max_age: Duration,
+        mono: MonoClock,
+    ) -> Metrics {
         let app = live.load_full();
         let registry = Registry::new();
         let http_requests = IntCounterVec::new(

@@ -230,7 +230,10 @@ fn ingest_fingerprint(e: &Exposition) -> Vec<u64> {
 /// When the soak cannot be set up: no temporary directory, no free port,
 /// the daemon does not start. A failed assertion is in the report.
 pub fn run(args: &SoakArgs) -> Result<Report, SoakError> {
-    if let Some(s) = args.reload_every_s.filter(|s| !(s.is_finite() && *s >= 1.0)) {
+    if let Some(s) = args
+        .reload_every_s
+        .filter(|s| !(s.is_finite() && *s >= 1.0))
+    {
         return Err(SoakError::BadReload(s));
     }
     let seconds = args.minutes.map_or(args.seconds, |m| m * 60).max(10);
