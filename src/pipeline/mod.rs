@@ -13,7 +13,10 @@
 //! ```
 //!
 //! - [`state`]: what the workers publish and HTTP reads (`AppState`).
-//! - [`worker`]: one channel's DSP (`ChannelDsp`) and the worker threads.
+//! - [`worker`]: one channel's DSP (`ChannelDsp`) and the worker threads
+//!   (with the commands a reload sends them).
+//! - [`reload`]: a new config applied to the running pipeline
+//!   (`Pipeline::reload`).
 
 pub mod reload;
 pub mod state;
