@@ -395,7 +395,8 @@ fn main() -> ExitCode {
             listen,
             state_dir: dir,
         } => {
-            let mut cfg = match bandwatch::config::load_with(&config, state_dir(dir).as_deref()) {
+            let state_dir = state_dir(dir);
+            let mut cfg = match bandwatch::config::load_with(&config, state_dir.as_deref()) {
                 Ok(c) => c,
                 Err(e) => {
                     eprintln!("{e}");
@@ -409,6 +410,16 @@ fn main() -> ExitCode {
             if let Some(l) = listen {
                 cfg.listen = l;
             }
+            // SIGHUP and POST /api/v1/reload re-read the same file, with
+            // the same --listen override and state directory.
+            let loader: bandwatch::pipeline::reload::ConfigLoader =
+                std::sync::Arc::new(move || {
+                    let mut c = bandwatch::config::load_with(&config, state_dir.as_deref())?;
+                    if let Some(l) = listen {
+                        c.listen = l;
+                    }
+                    Ok(c)
+                });
             let rt = match tokio::runtime::Builder::new_multi_thread()
                 .worker_threads(2)
                 .enable_all()
@@ -421,7 +432,7 @@ fn main() -> ExitCode {
                     return ExitCode::FAILURE;
                 }
             };
-            rt.block_on(run(cfg))
+            rt.block_on(run(cfg, loader))
         }
     }
 }
@@ -439,7 +450,10 @@ fn block_on<F: std::future::Future<Output = ExitCode>>(f: F) -> ExitCode {
     }
 }
 
-async fn run(cfg: bandwatch::config::Config) -> ExitCode {
+async fn run(
+    cfg: bandwatch::config::Config,
+    loader: bandwatch::pipeline::reload::ConfigLoader,
+) -> ExitCode {
     let listener = match tokio::net::TcpListener::bind(cfg.listen).await {
         Ok(l) => l,
         Err(e) => {
@@ -454,7 +468,7 @@ async fn run(cfg: bandwatch::config::Config) -> ExitCode {
         "http"
     };
     tracing::info!(%addr, channels = cfg.channels.len(), "bandwatch listening on {scheme}://{addr}/");
-    match bandwatch::serve(cfg, listener, shutdown_signal()).await {
+    match bandwatch::daemon::serve_with(cfg, listener, shutdown_signal(), Some(loader)).await {
         Ok(()) => {
             tracing::info!("stopped");
             ExitCode::SUCCESS

@@ -183,6 +183,9 @@ pub struct ChannelAlarms {
     specs: Vec<ChannelAlarm>,
     machines: Vec<AlarmMachine>,
     learners: Vec<Option<Learner>>,
+    /// Each alarm's baseline (stored or learned), to set its limits again
+    /// when they change (a config reload).
+    baselines: Vec<Option<Baseline>>,
     health: HealthDetector,
     history: Option<HistoryRing>,
     pre_samples: usize,
@@ -223,6 +226,7 @@ impl ChannelAlarms {
         let fs = spec.sample_rate_hz;
         let mut machines = Vec::new();
         let mut learners = Vec::new();
+        let mut kept = Vec::new();
         for a in &spec.alarms {
             let to_si = a.unit.map_or(1.0, |u| u.to_si);
             let baseline = if a.spec.uses_baseline() {
@@ -239,6 +243,7 @@ impl ChannelAlarms {
                 (Some(s), None) => Some(Learner::new(s)),
                 _ => None,
             });
+            kept.push(baseline);
         }
         let (pre, post) = captures.as_ref().map_or((0, 0), |c| {
             (
@@ -258,6 +263,7 @@ impl ChannelAlarms {
             specs: spec.alarms.clone(),
             machines,
             learners,
+            baselines: kept,
             health: HealthDetector::new(spec.health, fs, now),
             history: captures.map(|_| HistoryRing::new(pre.max(average_span).max(1), fs)),
             pre_samples: pre,
@@ -274,6 +280,30 @@ impl ChannelAlarms {
             health_since_ns: ns(now),
             dirty: true,
         }
+    }
+
+    /// Takes the limits of `spec` (a config reload that changed only
+    /// limits: same alarms, in the same order). Each alarm keeps its
+    /// state, latch, acknowledge and baseline; the new limits judge the
+    /// next value. An alarm not in `spec` keeps its limits.
+    pub fn set_limits(&mut self, spec: &ChannelSpec) {
+        for (i, a) in spec.alarms.iter().enumerate() {
+            let (Some(m), Some(old)) = (self.machines.get_mut(i), self.specs.get_mut(i)) else {
+                continue;
+            };
+            if old.name != a.name {
+                continue;
+            }
+            let to_si = a.unit.map_or(1.0, |u| u.to_si);
+            let baseline = self.baselines.get(i).and_then(Option::as_ref);
+            let levels = a.spec.levels(baseline, to_si);
+            m.set_limits(
+                levels.alert.and_then(|l| l.limit),
+                levels.danger.and_then(|l| l.limit),
+            );
+            *old = a.clone();
+        }
+        self.dirty = true;
     }
 
     fn send(&self, m: Message) {
@@ -498,6 +528,7 @@ impl ChannelAlarms {
                         ),
                         unix_now_ns(),
                     ));
+                    self.baselines[i] = Some(b.clone());
                     self.send(Message::Baseline(Box::new(b)));
                     self.learners[i] = None;
                     self.dirty = true;

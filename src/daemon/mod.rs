@@ -14,6 +14,7 @@ use tokio::net::TcpListener;
 use crate::config::web::WebConfig;
 use crate::config::{Config, HttpLimits};
 use crate::http;
+use crate::pipeline::reload::{ConfigLoader, Problem, ReloadError, ReloadRequest};
 use crate::pipeline::{Pipeline, RunError};
 
 /// Runs the daemon on an already bound listener until `shutdown` resolves,
@@ -25,12 +26,31 @@ pub async fn serve<F>(config: Config, listener: TcpListener, shutdown: F) -> Res
 where
     F: Future<Output = ()> + Send + 'static,
 {
+    serve_with(config, listener, shutdown, None).await
+}
+
+/// As [`serve`], with the config re-reader: SIGHUP and `POST
+/// /api/v1/reload` then reload the config (README "Reloading the
+/// config"); without it, both are refused (SIGHUP is ignored with a
+/// warning).
+pub async fn serve_with<F>(
+    config: Config,
+    listener: TcpListener,
+    shutdown: F,
+    loader: Option<ConfigLoader>,
+) -> Result<(), RunError>
+where
+    F: Future<Output = ()> + Send + 'static,
+{
     let limits = fit_to_open_file_limit(config.http, config.sources.len());
     if let Ok(addr) = listener.local_addr() {
         warn_if_open(addr, config.web.as_ref());
     }
     let pipeline = Pipeline::start(&config)?;
-    let (mut app, connections) = http::app(pipeline.state.clone());
+    let (reload_tx, reload_rx) = tokio::sync::mpsc::channel::<ReloadRequest>(4);
+    let hangups = tokio::spawn(forward_hangups(reload_tx.clone()));
+    let (mut app, connections) =
+        http::app_live(pipeline.live.clone(), loader.is_some().then_some(reload_tx));
     let web = config.web.as_ref();
     if let Some(w) = web.filter(|w| !w.users.is_empty()) {
         let auth = http::auth::BasicAuth::new(
@@ -42,19 +62,115 @@ where
     }
     let tls = web.and_then(|w| w.tls.as_ref()).map(|t| t.server.clone());
     let notifier = notify::Notifier::from_env();
-    let monitor = notify::start(notifier, pipeline.state.clone(), pipeline.heartbeats());
+    // The workers outlive reloads (channels are moved between them by
+    // commands), so their heartbeats are taken once; the status reads the
+    // state as a reload left it.
+    let monitor = notify::start(notifier, pipeline.live.clone(), pipeline.heartbeats());
     let shutdown = async move {
         shutdown.await;
         notifier.stopping();
     };
+    let (stop_tx, stop_rx) = tokio::sync::oneshot::channel();
+    let reloader = tokio::spawn(reload_loop(pipeline, reload_rx, stop_rx, loader));
     let result = http::server::serve(listener, app, limits, connections, tls, shutdown)
         .await
         .map_err(RunError::Http);
     if let Some(m) = monitor {
         m.abort();
     }
-    pipeline.stop().await;
+    hangups.abort();
+    let _ = hangups.await;
+    // A reload under way finishes first; then the loop hands the pipeline
+    // back.
+    let _ = stop_tx.send(());
+    match reloader.await {
+        Ok(pipeline) => pipeline.stop().await,
+        Err(e) => tracing::error!(error = %e, "the reload task failed"),
+    }
     result
+}
+
+/// Turns each SIGHUP into a reload request. Installing the handler also
+/// keeps SIGHUP from ending the process (its default action).
+async fn forward_hangups(tx: tokio::sync::mpsc::Sender<ReloadRequest>) {
+    #[cfg(unix)]
+    {
+        use tokio::signal::unix::{signal, SignalKind};
+        let mut hup = match signal(SignalKind::hangup()) {
+            Ok(s) => s,
+            Err(e) => {
+                tracing::warn!(error = %e, "cannot listen for SIGHUP: reload by POST /api/v1/reload only");
+                return;
+            }
+        };
+        while hup.recv().await.is_some() {
+            let req = ReloadRequest {
+                origin: "SIGHUP",
+                reply: None,
+            };
+            if tx.send(req).await.is_err() {
+                return;
+            }
+        }
+    }
+    #[cfg(not(unix))]
+    drop(tx);
+}
+
+/// Owns the pipeline while the daemon runs: one reload at a time, in the
+/// order asked. Returns the pipeline when told to stop (or every sender
+/// is gone).
+async fn reload_loop(
+    mut pipeline: Pipeline,
+    mut rx: tokio::sync::mpsc::Receiver<ReloadRequest>,
+    mut stop: tokio::sync::oneshot::Receiver<()>,
+    loader: Option<ConfigLoader>,
+) -> Pipeline {
+    loop {
+        let req = tokio::select! {
+            _ = &mut stop => break,
+            r = rx.recv() => match r {
+                Some(r) => r,
+                None => break,
+            },
+        };
+        let result = match &loader {
+            None => {
+                tracing::warn!(
+                    origin = req.origin,
+                    "reload asked, but this daemon has no config file to re-read; ignored"
+                );
+                Err(ReloadError::Refused(vec![Problem {
+                    path: "config".into(),
+                    message: "this daemon was started without a config file to re-read".into(),
+                }]))
+            }
+            Some(load) => {
+                tracing::info!(origin = req.origin, "reloading the config");
+                let load = load.clone();
+                match tokio::task::spawn_blocking(move || load()).await {
+                    Ok(Ok(cfg)) => pipeline.reload(&cfg).await,
+                    Ok(Err(e)) => {
+                        let err = ReloadError::from_config(&e);
+                        pipeline.refused(&err);
+                        Err(err)
+                    }
+                    Err(e) => {
+                        let err = ReloadError::Refused(vec![Problem {
+                            path: "config".into(),
+                            message: format!("the config reader failed: {e}"),
+                        }]);
+                        pipeline.refused(&err);
+                        Err(err)
+                    }
+                }
+            }
+        };
+        if let Some(reply) = req.reply {
+            let _ = reply.send(result);
+        }
+    }
+    pipeline
 }
 
 /// Logs a warning when `addr` is reachable from other hosts (not loopback)

@@ -10,13 +10,12 @@
 //! last ping ([`should_ping`]), so a stuck worker sends nothing either, and
 //! systemd restarts the service after `WatchdogSec=`.
 
-use std::sync::Arc;
 use std::time::Duration;
 
 use sd_notify::NotifyState;
 
 use crate::alarm::state::AlarmState;
-use crate::pipeline::state::AppState;
+use crate::pipeline::state::{AppState, LiveState};
 use crate::pipeline::Heartbeat;
 
 /// How often the `STATUS=` summary is refreshed.
@@ -113,13 +112,13 @@ pub fn summary(state: &AppState) -> String {
 /// runs until aborted.
 pub fn start(
     notifier: Notifier,
-    state: Arc<AppState>,
+    state: LiveState,
     beats: Vec<Heartbeat>,
 ) -> Option<tokio::task::JoinHandle<()>> {
     if !notifier.enabled() {
         return None;
     }
-    notifier.ready(&summary(&state));
+    notifier.ready(&summary(&state.load()));
     let period = watchdog_period();
     tracing::info!(
         watchdog_ms = period.map(|p| p.as_millis() as u64),
@@ -130,7 +129,7 @@ pub fn start(
 
 async fn run(
     notifier: Notifier,
-    state: Arc<AppState>,
+    state: LiveState,
     beats: Vec<Heartbeat>,
     period: Option<Duration>,
 ) {
@@ -145,7 +144,8 @@ async fn run(
     let mut stalled_logged = false;
     loop {
         tokio::select! {
-            _ = status.tick() => notifier.status(&summary(&state)),
+            // The state as it is now: a reload may have changed it.
+            _ = status.tick() => notifier.status(&summary(&state.load())),
             _ = ping.tick(), if period.is_some() => {
                 let now = counts(&beats);
                 if should_ping(&last, &now) {

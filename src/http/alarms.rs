@@ -8,7 +8,7 @@
 
 use std::time::Duration;
 
-use axum::extract::{Path, State};
+use axum::extract::Path;
 use axum::http::{header, HeaderMap};
 use axum::response::{IntoResponse, Response};
 use axum::Json;
@@ -20,7 +20,7 @@ use crate::alarm::journal::rfc3339;
 use crate::config::zones::GUIDANCE;
 use crate::config::AlarmTarget;
 use crate::http::error::ApiError;
-use crate::http::HttpState;
+use crate::http::{HttpState, Live};
 use crate::pipeline::state::ChannelShared;
 
 /// How long an action waits for the worker.
@@ -96,7 +96,7 @@ pub fn board_json(ch: &ChannelShared) -> (Value, Vec<Value>) {
     (health, alarms)
 }
 
-pub async fn list(State(st): State<HttpState>) -> Json<Value> {
+pub async fn list(Live(st): Live) -> Json<Value> {
     let mut all = Vec::new();
     for ch in &st.app.channels {
         let (_, alarms) = board_json(ch);
@@ -109,7 +109,7 @@ pub async fn list(State(st): State<HttpState>) -> Json<Value> {
 pub const CAUTION: &str = "monitoring only, not a machinery protection or safety system; \
 limits are guidance: the machine maker's limits, local codes and qualified people prevail";
 
-fn authorize(st: &HttpState, headers: &HeaderMap) -> Result<(), ApiError> {
+pub(crate) fn authorize(st: &HttpState, headers: &HeaderMap) -> Result<(), ApiError> {
     let given = headers
         .get(header::AUTHORIZATION)
         .and_then(|v| v.to_str().ok());
@@ -164,7 +164,7 @@ async fn run_command(
 }
 
 pub async fn ack(
-    State(st): State<HttpState>,
+    Live(st): Live,
     Path((channel, band)): Path<(String, String)>,
     headers: HeaderMap,
 ) -> Result<Json<Value>, ApiError> {
@@ -174,7 +174,7 @@ pub async fn ack(
 }
 
 pub async fn relearn(
-    State(st): State<HttpState>,
+    Live(st): Live,
     Path((channel, band)): Path<(String, String)>,
     headers: HeaderMap,
 ) -> Result<Json<Value>, ApiError> {
@@ -183,7 +183,7 @@ pub async fn relearn(
     run_command(ch, |reply| AlarmCommand::Relearn { alarm: i, reply }, i).await
 }
 
-pub async fn events(State(st): State<HttpState>) -> Result<Json<Value>, ApiError> {
+pub async fn events(Live(st): Live) -> Result<Json<Value>, ApiError> {
     let events = st
         .app
         .alarm_io
@@ -263,10 +263,7 @@ fn capture_error(st: &HttpState, e: capture::CaptureError) -> ApiError {
 
 /// One capture's metadata (trip, limits, spectrum at the trip); with
 /// `/waveform`, its BWF1 waveform file.
-pub async fn event(
-    State(st): State<HttpState>,
-    Path(id): Path<String>,
-) -> Result<Json<Value>, ApiError> {
+pub async fn event(Live(st): Live, Path(id): Path<String>) -> Result<Json<Value>, ApiError> {
     let dir = st
         .app
         .captures_dir
@@ -283,10 +280,7 @@ pub async fn event(
     Ok(Json(body))
 }
 
-pub async fn event_waveform(
-    State(st): State<HttpState>,
-    Path(id): Path<String>,
-) -> Result<Response, ApiError> {
+pub async fn event_waveform(Live(st): Live, Path(id): Path<String>) -> Result<Response, ApiError> {
     let dir = st
         .app
         .captures_dir

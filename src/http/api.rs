@@ -6,7 +6,7 @@ use std::fmt::Write as _;
 use std::sync::Arc;
 
 use axum::extract::rejection::QueryRejection;
-use axum::extract::{Path, Query, State};
+use axum::extract::{Path, Query};
 use axum::http::header;
 use axum::response::{IntoResponse, Response};
 use axum::Json;
@@ -20,7 +20,7 @@ use crate::counters::{ChannelCounters, GapReason};
 use crate::dsp::bands::BandStatus;
 use crate::http::error::ApiError;
 use crate::http::scaling::{line_range, Conversion, Scaling};
-use crate::http::HttpState;
+use crate::http::Live;
 use crate::pipeline::state::{AppState, ChannelShared, ChannelSnapshot};
 use crate::units::{convertible, Unit};
 
@@ -164,7 +164,7 @@ pub async fn healthz() -> Json<Value> {
     Json(json!({ "status": "ok" }))
 }
 
-pub async fn readyz(State(st): State<HttpState>) -> Result<Json<Value>, ApiError> {
+pub async fn readyz(Live(st): Live) -> Result<Json<Value>, ApiError> {
     let waiting: Vec<String> = st
         .app
         .channels
@@ -317,7 +317,7 @@ fn summary<'a>(
     }
 }
 
-pub async fn list_channels(State(st): State<HttpState>) -> Json<Value> {
+pub async fn list_channels(Live(st): Live) -> Json<Value> {
     let now = unix_now_ns();
     let list: Vec<Value> = st
         .app
@@ -398,7 +398,7 @@ fn counters_json(c: &ChannelCounters) -> Value {
 }
 
 pub async fn channel_detail(
-    State(st): State<HttpState>,
+    Live(st): Live,
     Path(name): Path<String>,
 ) -> Result<Json<Value>, ApiError> {
     let ch = channel_of(&st.app, &name)?;
@@ -527,7 +527,7 @@ struct SpectrumBody<'a> {
 }
 
 pub async fn spectrum(
-    State(st): State<HttpState>,
+    Live(st): Live,
     Path(name): Path<String>,
     q: Result<Query<Vec<(String, String)>>, QueryRejection>,
 ) -> Result<Response, ApiError> {
@@ -679,7 +679,7 @@ struct WaveformBody<'a> {
 }
 
 pub async fn waveform(
-    State(st): State<HttpState>,
+    Live(st): Live,
     Path(name): Path<String>,
     q: Result<Query<Vec<(String, String)>>, QueryRejection>,
 ) -> Result<Response, ApiError> {

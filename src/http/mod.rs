@@ -7,6 +7,7 @@
 //! - `metrics`: the Prometheus registry and the scrape-time collector
 //! - `error`: `ApiError`, the JSON error every failure is answered with
 //! - `gate`: the bound on request-time DSP (blocking threads, N at once)
+//! - `reload`: `POST /api/v1/reload` (config reload, bearer token)
 //! - `auth`: basic auth for every route (`[server] web_config` users)
 //! - `server`: the accept loop with its limits, and TLS
 
@@ -16,6 +17,7 @@ pub mod auth;
 pub mod error;
 pub mod gate;
 pub mod metrics;
+pub mod reload;
 pub mod scaling;
 pub mod server;
 
@@ -31,7 +33,8 @@ use axum::Router;
 pub use crate::http::error::ApiError;
 use crate::http::gate::DspGate;
 use crate::http::metrics::Metrics;
-use crate::pipeline::state::AppState;
+use crate::pipeline::reload::ReloadRequest;
+use crate::pipeline::state::{AppState, LiveState};
 
 /// Route label for requests that matched no route (keeps the
 /// `path` label of `bandwatch_http_requests_total` bounded).
@@ -41,9 +44,46 @@ const UNMATCHED: &str = "unmatched";
 /// the bound on request-time DSP.
 #[derive(Clone)]
 pub struct HttpState {
+    /// The published state; handlers extract [`Live`], which holds the
+    /// one in force when the request came (a reload replaces it).
     pub app: Arc<AppState>,
+    pub live: LiveState,
     pub metrics: Arc<Metrics>,
     pub dsp: Arc<DspGate>,
+    /// Where `POST /api/v1/reload` asks the daemon for a reload (None: no
+    /// reload here, answered 404).
+    pub reload: Option<tokio::sync::mpsc::Sender<ReloadRequest>>,
+}
+
+impl HttpState {
+    /// A state over `app` that no reload replaces (tests).
+    pub fn fixed(app: Arc<AppState>, metrics: Arc<Metrics>, dsp: Arc<DspGate>) -> HttpState {
+        HttpState {
+            live: Arc::new(arc_swap::ArcSwap::new(app.clone())),
+            app,
+            metrics,
+            dsp,
+            reload: None,
+        }
+    }
+}
+
+/// The handlers' view: [`HttpState`] with `app` loaded from the live
+/// state once, at the start of the request (one request never sees two
+/// configs).
+pub struct Live(pub HttpState);
+
+impl axum::extract::FromRequestParts<HttpState> for Live {
+    type Rejection = std::convert::Infallible;
+
+    async fn from_request_parts(
+        _parts: &mut axum::http::request::Parts,
+        st: &HttpState,
+    ) -> Result<Live, Self::Rejection> {
+        let mut st = st.clone();
+        st.app = st.live.load_full();
+        Ok(Live(st))
+    }
 }
 
 /// Builds the router; kept apart from `serve` so tests can call it with
@@ -55,12 +95,23 @@ pub fn router(state: Arc<AppState>) -> Router {
 /// The router, and the connection series of its `/metrics` for the accept
 /// loop ([`server::serve`]) to update.
 pub fn app(state: Arc<AppState>) -> (Router, metrics::ConnectionMetrics) {
-    let metrics = Arc::new(Metrics::new(state.clone()));
+    app_live(Arc::new(arc_swap::ArcSwap::new(state)), None)
+}
+
+/// As [`app`], over a state a reload replaces, with the daemon's reload
+/// queue (`POST /api/v1/reload`).
+pub fn app_live(
+    live: LiveState,
+    reload: Option<tokio::sync::mpsc::Sender<ReloadRequest>>,
+) -> (Router, metrics::ConnectionMetrics) {
+    let metrics = Arc::new(Metrics::live(live.clone()));
     let connections = metrics.connections();
     let router = router_with(HttpState {
-        app: state,
+        app: live.load_full(),
+        live,
         metrics,
         dsp: Arc::new(DspGate::per_core()),
+        reload,
     });
     (router, connections)
 }
@@ -81,6 +132,7 @@ pub fn router_with(st: HttpState) -> Router {
             "/api/v1/alarms/{channel}/{band}/relearn",
             post(alarms::relearn),
         )
+        .route("/api/v1/reload", post(reload::reload))
         .route("/api/v1/events", get(alarms::events))
         .route("/api/v1/events/{id}", get(alarms::event))
         .route("/api/v1/events/{id}/waveform", get(alarms::event_waveform))

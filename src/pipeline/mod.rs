@@ -13,8 +13,12 @@
 //! ```
 //!
 //! - [`state`]: what the workers publish and HTTP reads (`AppState`).
-//! - [`worker`]: one channel's DSP (`ChannelDsp`) and the worker threads.
+//! - [`worker`]: one channel's DSP (`ChannelDsp`) and the worker threads
+//!   (with the commands a reload sends them).
+//! - [`reload`]: a new config applied to the running pipeline
+//!   (`Pipeline::reload`).
 
+pub mod reload;
 pub mod state;
 pub mod worker;
 
@@ -25,11 +29,11 @@ use std::sync::Arc;
 use crate::alarm::engine::{AlarmCommand, AlarmContext, CaptureSetup, ChannelAlarms};
 use crate::alarm::{self, state::AlarmMemory};
 use crate::config::alarms::AlarmsSpec;
-use crate::config::{ChannelSpec, Config};
+use crate::config::{self as config_spec, ChannelSpec, Config};
 use crate::ring::{try_channel_ring, RingAllocError, RingWriter};
 use crate::shutdown::ShutdownSignal;
 use crate::source::{self, ChannelInput, SourceOutputs};
-use state::{AppState, ChannelShared};
+use state::{AppState, ChannelShared, LiveState};
 pub use worker::Heartbeat;
 use worker::{ChannelDsp, Workers};
 
@@ -173,8 +177,8 @@ impl<'a> Builder<'a> {
         if self.alarms == AlarmMode::FromConfig {
             app = app.with_token(load_token(config));
         }
-        if let Some(s) = &store {
-            app = app.with_alarm_io(s.io.shared().clone());
+        if let Some(io) = store.as_ref().and_then(|s| s.io.as_ref()) {
+            app = app.with_alarm_io(io.shared().clone());
         }
         let state = Arc::new(app);
         let mut dsps = Vec::new();
@@ -224,7 +228,9 @@ impl<'a> Builder<'a> {
             state,
             dsps,
             writers,
-            alarm_io: store.map(|s| s.io),
+            store,
+            mode: self.alarms,
+            gather: self.gather,
         })
     }
 
@@ -262,7 +268,9 @@ pub struct Assembly {
     pub state: Arc<AppState>,
     dsps: Vec<ChannelDsp>,
     writers: Vec<RingWriter>,
-    alarm_io: Option<alarm::io::AlarmIo>,
+    store: Option<AlarmStore>,
+    mode: AlarmMode,
+    gather: bool,
 }
 
 impl Assembly {
@@ -274,8 +282,11 @@ impl Assembly {
             state,
             dsps,
             writers,
-            alarm_io,
+            mut store,
+            mode,
+            gather,
         } = self;
+        let alarm_io = store.as_mut().and_then(|s| s.io.take());
         let (workers, wakers) = match Workers::start(config.workers, dsps) {
             Ok(w) => w,
             Err(e) => {
@@ -292,19 +303,22 @@ impl Assembly {
             .zip(wakers)
             .map(|((ch, writer), waker)| Some(input_of(&ch.spec, writer, waker)))
             .collect();
-        let outputs = config
-            .sources
-            .iter()
-            .map(|s| outputs_of(&state, &mut inputs, &s.name, s.channels))
-            .collect();
-        let shutdown = ShutdownSignal::new();
-        let sources = source::spawn_all(&config, outputs, &state.sources, shutdown.subscribe());
+        let mut sources = Vec::new();
+        for (k, spec) in config.sources.iter().enumerate() {
+            let slots = slots_of(&state, &mut inputs, &spec.name, spec.channels);
+            sources.push(RunningSource::spawn(spec, slots, state.sources[k].clone()));
+        }
+        let live: LiveState = Arc::new(arc_swap::ArcSwap::new(state.clone()));
         Ok(Pipeline {
             state,
+            live,
+            config,
             workers: Some(workers),
             alarm_io,
+            store,
+            mode,
+            gather,
             sources,
-            shutdown,
         })
     }
 
@@ -324,18 +338,75 @@ impl Assembly {
             state: self.state,
             channels: self.dsps,
             inputs,
-            alarm_io: self.alarm_io,
+            alarm_io: self.store.and_then(|mut s| s.io.take()),
         }
+    }
+}
+
+/// One running source task, with its own stop signal and the port its
+/// fan-out changes through (a reload restarts or rewires it alone).
+struct RunningSource {
+    spec: config_spec::SourceSpec,
+    counters: Arc<crate::counters::SourceCounters>,
+    signal: ShutdownSignal,
+    port: Arc<source::OutputPort>,
+    task: tokio::task::JoinHandle<()>,
+}
+
+impl RunningSource {
+    /// Starts `spec`'s task over `slots` (its channels' inputs by index).
+    fn spawn(
+        spec: &config_spec::SourceSpec,
+        slots: Vec<Option<ChannelInput>>,
+        counters: Arc<crate::counters::SourceCounters>,
+    ) -> RunningSource {
+        let (outputs, port) = SourceOutputs::with_port(slots);
+        let signal = ShutdownSignal::new();
+        let task = source::spawn(source::SourceContext {
+            spec: spec.clone(),
+            outputs,
+            counters: counters.clone(),
+            shutdown: signal.subscribe(),
+        });
+        RunningSource {
+            spec: spec.clone(),
+            counters,
+            signal,
+            port,
+            task,
+        }
+    }
+
+    /// Stops the task and returns its channels' inputs (the ring writers
+    /// it held), waiting a bounded time for them to be handed back.
+    async fn stop(self) -> Vec<Option<ChannelInput>> {
+        self.signal.trigger();
+        let _ = self.task.await;
+        for _ in 0..100 {
+            if let Some(inputs) = self.port.take_returned() {
+                return inputs;
+            }
+            tokio::time::sleep(std::time::Duration::from_millis(20)).await;
+        }
+        tracing::warn!(source = %self.spec.name, "a stopped source did not hand back its channels");
+        Vec::new()
     }
 }
 
 /// The running pipeline without its HTTP server: sources, rings, workers.
 pub struct Pipeline {
+    /// The state published at start (see [`Pipeline::live`] for the one
+    /// in force after a reload).
     pub state: Arc<AppState>,
+    /// The published state, replaced by each reload.
+    pub live: LiveState,
+    config: Config,
     workers: Option<Workers>,
     alarm_io: Option<alarm::io::AlarmIo>,
-    sources: Vec<tokio::task::JoinHandle<()>>,
-    shutdown: ShutdownSignal,
+    store: Option<AlarmStore>,
+    mode: AlarmMode,
+    gather: bool,
+    sources: Vec<RunningSource>,
 }
 
 impl Pipeline {
@@ -355,9 +426,11 @@ impl Pipeline {
     /// Stops the sources, then the workers (which finish their alarms'
     /// captures), then the alarm I/O thread.
     pub async fn stop(mut self) {
-        self.shutdown.trigger();
-        for t in self.sources.drain(..) {
-            let _ = t.await;
+        for s in &self.sources {
+            s.signal.trigger();
+        }
+        for s in self.sources.drain(..) {
+            let _ = s.task.await;
         }
         if let Some(w) = self.workers.take() {
             let _ = tokio::task::spawn_blocking(move || w.stop()).await;
@@ -442,7 +515,8 @@ pub fn drain(channels: &mut [ChannelDsp]) {
 /// The journal, capture store and baselines of `[alarms]`, with the I/O
 /// thread that writes them.
 struct AlarmStore {
-    io: alarm::io::AlarmIo,
+    /// Taken by the pipeline that runs it.
+    io: Option<alarm::io::AlarmIo>,
     outbox: alarm::io::Outbox,
     memories: BTreeMap<(String, String), AlarmMemory>,
     captures: CaptureSetup,
@@ -483,7 +557,7 @@ impl AlarmStore {
         )
         .map_err(|e| RunError::Alarms(e.to_string()))?;
         Ok(AlarmStore {
-            io,
+            io: Some(io),
             outbox,
             memories,
             captures: CaptureSetup {
@@ -496,11 +570,25 @@ impl AlarmStore {
 
     /// A channel's alarms with its remembered latches and stored baselines.
     fn channel_alarms(&self, spec: &ChannelSpec, inbox: Receiver<AlarmCommand>) -> ChannelAlarms {
+        self.channel_alarms_with(spec, inbox, &|_| None)
+    }
+
+    /// As [`AlarmStore::channel_alarms`], latches taken from `carried` (a
+    /// channel restarted by a reload: its board before) before the
+    /// journal's.
+    fn channel_alarms_with(
+        &self,
+        spec: &ChannelSpec,
+        inbox: Receiver<AlarmCommand>,
+        carried: &dyn Fn(&str) -> Option<AlarmMemory>,
+    ) -> ChannelAlarms {
         let name = &spec.name;
         let memory = |band: &str| {
-            self.memories
-                .get(&(name.clone(), band.to_string()))
-                .copied()
+            carried(band).or_else(|| {
+                self.memories
+                    .get(&(name.clone(), band.to_string()))
+                    .copied()
+            })
         };
         let baseline = |band: &str| match alarm::baseline::load(&self.baselines_dir, name, band) {
             Ok(b) => b,
@@ -541,12 +629,28 @@ fn outputs_of(
     width: usize,
 ) -> SourceOutputs {
     let mut out = SourceOutputs::new(width);
-    for (ch, input) in state.channels.iter().zip(inputs.iter_mut()) {
-        if ch.spec.source == name {
-            if let Some(i) = input.take() {
-                out.attach(ch.spec.index, i);
-            }
+    for (index, i) in slots_of(state, inputs, name, width).into_iter().enumerate() {
+        if let Some(i) = i {
+            out.attach(index, i);
         }
     }
     out
+}
+
+/// As [`outputs_of`], as slots by channel index.
+fn slots_of(
+    state: &AppState,
+    inputs: &mut [Option<ChannelInput>],
+    name: &str,
+    width: usize,
+) -> Vec<Option<ChannelInput>> {
+    let mut slots: Vec<Option<ChannelInput>> = (0..width).map(|_| None).collect();
+    for (ch, input) in state.channels.iter().zip(inputs.iter_mut()) {
+        if ch.spec.source == name {
+            if let (Some(slot), Some(i)) = (slots.get_mut(ch.spec.index), input.take()) {
+                *slot = Some(i);
+            }
+        }
+    }
+    slots
 }

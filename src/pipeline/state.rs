@@ -98,6 +98,32 @@ impl ChannelShared {
         (ch, rx)
     }
 
+    /// The same channel under a new spec whose signal settings are
+    /// unchanged (a reload that changed only limits): shares the counters
+    /// and the operator command queue, starts from the current snapshot
+    /// and alarm board.
+    pub fn carried_over(&self, spec: ChannelSpec) -> ChannelShared {
+        let tx = self
+            .alarm_commands
+            .lock()
+            .map(|tx| tx.clone())
+            .unwrap_or_else(|e| e.into_inner().clone());
+        let worker = OnceLock::new();
+        if let Some(t) = self.worker.get() {
+            let _ = worker.set(t.clone());
+        }
+        ChannelShared {
+            spec: Arc::new(spec),
+            alarm_board: ArcSwapOption::new(self.alarm_board.load_full()),
+            alarm_commands: Mutex::new(tx),
+            worker,
+            window_enbw_bins: self.window_enbw_bins,
+            window_coherent_gain: self.window_coherent_gain,
+            counters: self.counters.clone(),
+            snapshot: ArcSwapOption::new(self.snapshot.load_full()),
+        }
+    }
+
     /// Noise bandwidth in Hz: ENBW·fs/block. Density = power / this.
     pub fn noise_bandwidth_hz(&self) -> f64 {
         self.window_enbw_bins * self.spec.sample_rate_hz / self.spec.block as f64
@@ -421,8 +447,50 @@ impl MachineShared {
     }
 }
 
+/// The published state as a reload replaces it: HTTP and the metrics
+/// `load` it per request.
+pub type LiveState = Arc<arc_swap::ArcSwap<AppState>>;
+
+/// Config reloads, as `/metrics` shows them (the names Prometheus uses
+/// for its own config reloads).
+#[derive(Debug)]
+pub struct ReloadStats {
+    pub successes: AtomicU64,
+    pub failures: AtomicU64,
+    /// 1: the last reload (or the start) succeeded.
+    pub last_successful: std::sync::atomic::AtomicBool,
+    /// When a reload last succeeded, ns since the Unix epoch (0: none
+    /// yet; the start counts, see [`AppState::last_config_success_unix_ns`]).
+    pub last_success_unix_ns: AtomicU64,
+}
+
+impl ReloadStats {
+    fn started_now() -> ReloadStats {
+        ReloadStats {
+            successes: AtomicU64::new(0),
+            failures: AtomicU64::new(0),
+            last_successful: std::sync::atomic::AtomicBool::new(true),
+            last_success_unix_ns: AtomicU64::new(0),
+        }
+    }
+
+    /// Counts one reload.
+    pub fn record(&self, ok: bool) {
+        if ok {
+            self.successes.fetch_add(1, Ordering::Relaxed);
+            self.last_success_unix_ns
+                .store(unix_now_ns(), Ordering::Relaxed);
+        } else {
+            self.failures.fetch_add(1, Ordering::Relaxed);
+        }
+        self.last_successful.store(ok, Ordering::Relaxed);
+    }
+}
+
 /// The read side of the whole pipeline, handed to HTTP.
 pub struct AppState {
+    /// Config reloads (shared by every state a reload publishes).
+    pub reloads: Arc<ReloadStats>,
     /// The alarm I/O thread's counters and recent events (None without `[alarms]`).
     pub alarm_io: Option<Arc<IoShared>>,
     /// Where captures are stored (None without `[alarms]`).
@@ -462,6 +530,7 @@ impl AppState {
             .map(|s| Arc::new(SourceCounters::new(&s.name, s.kind.as_str())))
             .collect();
         AppState {
+            reloads: Arc::new(ReloadStats::started_now()),
             alarm_io: None,
             captures_dir: config.alarms.as_ref().map(|a| a.captures_dir()),
             token: None,
@@ -487,6 +556,15 @@ impl AppState {
     pub fn with_alarm_io(mut self, io: Arc<IoShared>) -> AppState {
         self.alarm_io = Some(io);
         self
+    }
+
+    /// When the config last loaded successfully: the last successful
+    /// reload, else the start.
+    pub fn last_config_success_unix_ns(&self) -> u64 {
+        match self.reloads.last_success_unix_ns.load(Ordering::Relaxed) {
+            0 => self.started_unix_ns,
+            t => t,
+        }
     }
 
     pub fn channel(&self, name: &str) -> Option<&Arc<ChannelShared>> {

@@ -304,6 +304,24 @@ impl ChannelDsp {
         self.alarms = Some(Box::new(alarms));
     }
 
+    /// Publishes into `new` from now on (a reload that changed only this
+    /// channel's limits): the latest snapshot and alarm board are carried
+    /// over, the alarms take `new.spec`'s limits and keep their state.
+    fn retarget(&mut self, new: Arc<ChannelShared>) {
+        new.snapshot.store(self.shared.snapshot.load_full());
+        let _ = new.worker.set(thread::current());
+        if let Some(a) = &mut self.alarms {
+            a.set_limits(&new.spec);
+            if let Some(b) = a.take_board(false) {
+                new.alarm_board.store(Some(Arc::new(b)));
+            }
+        }
+        if new.alarm_board.load().is_none() {
+            new.alarm_board.store(self.shared.alarm_board.load_full());
+        }
+        self.shared = new;
+    }
+
     /// Shutdown: finishes what the alarms hold (captures in progress).
     pub fn finish(&mut self) {
         if let Some(a) = &mut self.alarms {
@@ -684,11 +702,42 @@ fn stamp(anchor: (u64, u64), fs: f64, sample: u64) -> u64 {
     (t0 as f64 + dt).max(0.0) as u64
 }
 
+/// A change a config reload asks of a worker thread (DEVELOPERS.md,
+/// "Reloading"): the worker applies it between two turns, so its other
+/// channels go on without a break.
+pub enum WorkerCommand {
+    /// Take on a channel built by the pipeline.
+    Add(Box<ChannelDsp>),
+    /// Stop a channel (by its shared state): its alarms finish (captures
+    /// in progress are handed over), then it is dropped.
+    Remove(Arc<ChannelShared>),
+    /// New limits for a channel whose signal settings are unchanged: it
+    /// publishes into `new` from now on (same counters, snapshot, board
+    /// and command queue) and its alarms take `new.spec`'s limits; state,
+    /// latches, acknowledges and baselines are kept.
+    Retarget {
+        old: Arc<ChannelShared>,
+        new: Arc<ChannelShared>,
+    },
+}
+
+/// A command and the answer the worker sends once it is applied (false:
+/// no such channel on this worker).
+type Order = (WorkerCommand, tokio::sync::oneshot::Sender<bool>);
+
+/// One running worker thread and its command queue.
+struct WorkerHandle {
+    handle: JoinHandle<()>,
+    orders: std::sync::mpsc::Sender<Order>,
+    /// Channels it runs (for dealing out added channels).
+    load: usize,
+}
+
 /// Running worker threads. Dropping them stops and joins them (as
 /// [`Workers::stop`] does), so no thread outlives its pipeline.
 pub struct Workers {
     stop: Arc<AtomicBool>,
-    handles: Vec<JoinHandle<()>>,
+    threads: Vec<WorkerHandle>,
     beats: Vec<Heartbeat>,
 }
 
@@ -723,7 +772,7 @@ impl Workers {
         // Built first, so that an early return drops (stops) what started.
         let mut workers = Workers {
             stop: Arc::new(AtomicBool::new(false)),
-            handles: Vec::new(),
+            threads: Vec::new(),
             beats: Vec::new(),
         };
         let mut wakers: Vec<Option<Thread>> = vec![None; count];
@@ -732,17 +781,22 @@ impl Workers {
             let beat = Heartbeat::default();
             let counter = beat.0.clone();
             let ids: Vec<usize> = set.iter().map(|(i, _)| *i).collect();
+            let (tx, rx) = std::sync::mpsc::channel::<Order>();
             let handle = thread::Builder::new()
                 .name(format!("bandwatch-dsp-{w}"))
                 .spawn(move || {
                     let mut chans: Vec<ChannelDsp> = set.into_iter().map(|(_, c)| c).collect();
-                    worker_loop(&mut chans, &stop, &counter);
+                    worker_loop(&mut chans, &stop, &rx, &counter);
                 })?;
             workers.beats.push(beat);
-            for i in ids {
+            for &i in &ids {
                 wakers[i] = Some(handle.thread().clone());
             }
-            workers.handles.push(handle);
+            workers.threads.push(WorkerHandle {
+                handle,
+                orders: tx,
+                load: ids.len(),
+            });
         }
         let wakers = wakers
             .into_iter()
@@ -756,6 +810,38 @@ impl Workers {
         self.beats.clone()
     }
 
+    /// The thread the next added channel goes to (the one with the fewest
+    /// channels), to wake it for that channel's samples.
+    pub fn next_thread(&self) -> Option<Thread> {
+        self.threads
+            .iter()
+            .min_by_key(|w| w.load)
+            .map(|w| w.handle.thread().clone())
+    }
+
+    /// Sends `cmd` to the worker whose thread is `to` and wakes it.
+    /// Returns the answer to wait for (false: no such channel there); None
+    /// if there is no such worker or it has stopped.
+    pub fn send(
+        &mut self,
+        to: &Thread,
+        cmd: WorkerCommand,
+    ) -> Option<tokio::sync::oneshot::Receiver<bool>> {
+        let w = self
+            .threads
+            .iter_mut()
+            .find(|w| w.handle.thread().id() == to.id())?;
+        match &cmd {
+            WorkerCommand::Add(_) => w.load += 1,
+            WorkerCommand::Remove(_) => w.load = w.load.saturating_sub(1),
+            WorkerCommand::Retarget { .. } => {}
+        }
+        let (tx, rx) = tokio::sync::oneshot::channel();
+        w.orders.send((cmd, tx)).ok()?;
+        w.handle.thread().unpark();
+        Some(rx)
+    }
+
     /// Asks every worker to stop and waits for them (each finishes its
     /// channels' alarms first).
     pub fn stop(mut self) {
@@ -764,11 +850,11 @@ impl Workers {
 
     fn stop_and_join(&mut self) {
         self.stop.store(true, Ordering::Relaxed);
-        for h in &self.handles {
-            h.thread().unpark();
+        for w in &self.threads {
+            w.handle.thread().unpark();
         }
-        for h in self.handles.drain(..) {
-            let _ = h.join();
+        for w in self.threads.drain(..) {
+            let _ = w.handle.join();
         }
     }
 }
@@ -779,12 +865,55 @@ impl Drop for Workers {
     }
 }
 
-fn worker_loop(chans: &mut [ChannelDsp], stop: &AtomicBool, beat: &AtomicU64) {
+/// Applies one reload command on the worker's thread.
+fn apply(chans: &mut Vec<ChannelDsp>, cmd: WorkerCommand) -> bool {
+    match cmd {
+        WorkerCommand::Add(ch) => {
+            let _ = ch.shared.worker.set(thread::current());
+            chans.push(*ch);
+            true
+        }
+        WorkerCommand::Remove(shared) => {
+            let Some(i) = chans.iter().position(|c| Arc::ptr_eq(&c.shared, &shared)) else {
+                return false;
+            };
+            let mut ch = chans.swap_remove(i);
+            // What its source wrote before it was detached is processed
+            // (and counted) under the old settings, not left in the ring.
+            ch.gather = false;
+            ch.speed_late = true;
+            for _ in 0..1_000_000 {
+                if !ch.poll() {
+                    break;
+                }
+            }
+            ch.finish();
+            true
+        }
+        WorkerCommand::Retarget { old, new } => {
+            let Some(ch) = chans.iter_mut().find(|c| Arc::ptr_eq(&c.shared, &old)) else {
+                return false;
+            };
+            ch.retarget(new);
+            true
+        }
+    }
+}
+
+fn worker_loop(
+    chans: &mut Vec<ChannelDsp>,
+    stop: &AtomicBool,
+    orders: &std::sync::mpsc::Receiver<Order>,
+    beat: &AtomicU64,
+) {
     for ch in chans.iter() {
         let _ = ch.shared.worker.set(thread::current());
     }
     while !stop.load(Ordering::Relaxed) {
         beat.fetch_add(1, Ordering::Relaxed);
+        while let Ok((cmd, done)) = orders.try_recv() {
+            let _ = done.send(apply(chans, cmd));
+        }
         let mut worked = false;
         for ch in chans.iter_mut() {
             worked |= ch.poll();

@@ -71,6 +71,53 @@ pub struct ChannelInput {
 pub struct SourceOutputs {
     inputs: Vec<Option<ChannelInput>>,
     scratch: Vec<f32>,
+    /// Fan-out changes from a config reload, and where the inputs go back
+    /// when the source stops (None: a fixed fan-out, as in tests).
+    port: Option<Arc<OutputPort>>,
+}
+
+/// A running source's fan-out, changed from outside while it runs (a
+/// config reload adds or removes channels of the source without
+/// restarting it). The source applies queued changes before its next
+/// frame, so the other channels miss no sample; when its task ends, its
+/// inputs (ring writers) are handed back here, so a restarted source
+/// writes on into the same rings.
+#[derive(Default)]
+pub struct OutputPort {
+    pending: std::sync::atomic::AtomicBool,
+    changes: std::sync::Mutex<Vec<(usize, Option<ChannelInput>)>>,
+    returned: std::sync::Mutex<Option<Vec<Option<ChannelInput>>>>,
+}
+
+impl OutputPort {
+    fn lock<T>(m: &std::sync::Mutex<T>) -> std::sync::MutexGuard<'_, T> {
+        m.lock().unwrap_or_else(std::sync::PoisonError::into_inner)
+    }
+
+    /// Queues a change of the source's channel `index`: `Some` attaches an
+    /// input (replacing any), `None` detaches it. Applied before the next
+    /// frame the source writes.
+    pub fn change(&self, index: usize, input: Option<ChannelInput>) {
+        Self::lock(&self.changes).push((index, input));
+        self.pending.store(true, Ordering::Release);
+    }
+
+    /// Whether changes wait for the source's next frame.
+    pub fn has_pending(&self) -> bool {
+        self.pending.load(Ordering::Acquire)
+    }
+
+    /// The inputs the stopped source handed back (once), with the changes
+    /// it had not applied yet applied.
+    pub fn take_returned(&self) -> Option<Vec<Option<ChannelInput>>> {
+        let mut inputs = Self::lock(&self.returned).take()?;
+        for (i, input) in Self::lock(&self.changes).drain(..) {
+            if let Some(slot) = inputs.get_mut(i) {
+                *slot = input;
+            }
+        }
+        Some(inputs)
+    }
 }
 
 impl SourceOutputs {
@@ -78,6 +125,36 @@ impl SourceOutputs {
         SourceOutputs {
             inputs: (0..width).map(|_| None).collect(),
             scratch: Vec::new(),
+            port: None,
+        }
+    }
+
+    /// Outputs whose fan-out can change while the source runs, over
+    /// `inputs` (by channel index); the port to change them through.
+    pub fn with_port(inputs: Vec<Option<ChannelInput>>) -> (SourceOutputs, Arc<OutputPort>) {
+        let port = Arc::new(OutputPort::default());
+        let out = SourceOutputs {
+            inputs,
+            scratch: Vec::new(),
+            port: Some(port.clone()),
+        };
+        (out, port)
+    }
+
+    /// Applies the fan-out changes queued on the port (one atomic load
+    /// when there are none).
+    #[inline]
+    fn apply_changes(&mut self) {
+        let Some(port) = &self.port else { return };
+        if !port.pending.load(Ordering::Acquire) {
+            return;
+        }
+        let mut q = OutputPort::lock(&port.changes);
+        port.pending.store(false, Ordering::Release);
+        for (i, input) in q.drain(..) {
+            if let Some(slot) = self.inputs.get_mut(i) {
+                *slot = input;
+            }
         }
     }
 
@@ -117,6 +194,7 @@ impl SourceOutputs {
         timestamp_ns: u64,
         src: &S,
     ) {
+        self.apply_changes();
         let width = self.inputs.len();
         if width == 0 {
             return;
@@ -168,6 +246,7 @@ impl SourceOutputs {
 
     /// Marks a break in every channel of this source.
     pub fn mark_discontinuity(&mut self, reason: GapReason) {
+        self.apply_changes();
         for input in self.inputs.iter_mut().flatten() {
             input.writer.mark_discontinuity(reason);
         }
@@ -177,6 +256,15 @@ impl SourceOutputs {
     pub fn wake(&self) {
         for input in self.inputs.iter().flatten() {
             input.waker.unpark();
+        }
+    }
+}
+
+impl Drop for SourceOutputs {
+    /// Hands the inputs back to the port (a source stopped for a restart).
+    fn drop(&mut self) {
+        if let Some(port) = self.port.take() {
+            *OutputPort::lock(&port.returned) = Some(std::mem::take(&mut self.inputs));
         }
     }
 }

@@ -1,6 +1,6 @@
 #!/usr/bin/env bash
 # The soak (DEVELOPERS.md, "Soak test"): builds the release binary once and
-# runs `bandwatch soak --seconds 90`, which starts that binary's daemon as a
+# runs `bandwatch soak --seconds 90 --reload-every-s 20`, which starts that binary's daemon as a
 # child on free 127.0.0.1 ports, drives it with UDP and TCP faults and HTTP
 # load, and asserts exact accounting, monotonic counters, flat RSS,
 # /healthz p99 under 50 ms, every capture present or pruned, no panic and a
@@ -18,7 +18,7 @@ cd "$root"
 
 timeout 1800 cargo build --release --locked
 # shellcheck disable=SC2086 # word splitting of SOAK_ARGS is wanted
-args=(${SOAK_ARGS:---seconds 90})
+args=(${SOAK_ARGS:---seconds 90 --reload-every-s 20})
 # The soak's own length plus five minutes for start, settling and stop.
 limit=$((300 + 90))
 for ((i = 0; i < ${#args[@]}; i++)); do

@@ -54,7 +54,7 @@ pub use text::{push_escaped, push_value, PipelineCollector};
 
 use crate::clock::unix_now_ns;
 use crate::http::server::CloseReason;
-use crate::pipeline::state::AppState;
+use crate::pipeline::state::{AppState, LiveState};
 
 /// Content type of the text exposition format.
 pub const CONTENT_TYPE: &str = prometheus::TEXT_FORMAT;
@@ -74,10 +74,71 @@ fn process_mono() -> Duration {
     BASE.get_or_init(Instant::now).elapsed()
 }
 
-/// The last rendered body and when its render started.
+/// The last rendered body, when its render started, and the state it
+/// was rendered from (a reload publishes a new one: the body is stale).
 struct Cached {
     at: Duration,
     body: Bytes,
+    app: Arc<AppState>,
+}
+
+/// The config reload series, named as Prometheus names its own
+/// (`prometheus_config_last_reload_successful`, ...), set from the
+/// state's `ReloadStats` at each render.
+#[derive(Clone)]
+pub(crate) struct ReloadMetrics {
+    total: IntCounterVec,
+    last_ok: IntGauge,
+    last_success: Gauge,
+}
+
+impl ReloadMetrics {
+    pub(crate) fn register(registry: &Registry) -> Option<ReloadMetrics> {
+        let m = ReloadMetrics {
+            total: IntCounterVec::new(
+                Opts::new(
+                    "bandwatch_config_reloads_total",
+                    "Config reloads (SIGHUP or POST /api/v1/reload), by result.",
+                ),
+                &["result"],
+            )
+            .ok()?,
+            last_ok: IntGauge::new(
+                "bandwatch_config_last_reload_successful",
+                "1 if the last config reload (or the start) succeeded, else 0.",
+            )
+            .ok()?,
+            last_success: Gauge::new(
+                "bandwatch_config_last_reload_success_timestamp_seconds",
+                "Time the config last loaded successfully (reload or start), in seconds since the Unix epoch.",
+            )
+            .ok()?,
+        };
+        register(registry, Box::new(m.total.clone()));
+        register(registry, Box::new(m.last_ok.clone()));
+        register(registry, Box::new(m.last_success.clone()));
+        Some(m)
+    }
+
+    /// Sets the series from `app`'s counts (counters only ever go up:
+    /// the difference is added).
+    pub(crate) fn sync(&self, app: &AppState) {
+        use std::sync::atomic::Ordering::Relaxed;
+        let r = &app.reloads;
+        for (label, n) in [
+            ("success", r.successes.load(Relaxed)),
+            ("failure", r.failures.load(Relaxed)),
+        ] {
+            let c = self.total.with_label_values(&[label]);
+            let have = c.get();
+            if n > have {
+                c.inc_by(n - have);
+            }
+        }
+        self.last_ok.set(i64::from(r.last_successful.load(Relaxed)));
+        self.last_success
+            .set(app.last_config_success_unix_ns() as f64 * 1e-9);
+    }
 }
 
 /// The registry behind `/metrics`, the static series the HTTP layer
@@ -86,7 +147,12 @@ pub struct Metrics {
     registry: Registry,
     /// `None` only if the prometheus crate refused its constant options.
     http_requests: Option<IntCounterVec>,
-    collector: PipelineCollector,
+    reloads: Option<ReloadMetrics>,
+    /// The published state; the collector is rebuilt when a reload
+    /// replaces it (its label sets follow the config).
+    live: LiveState,
+    clock: fn() -> u64,
+    collector: Mutex<Arc<PipelineCollector>>,
     connections: ConnectionMetrics,
     max_age: Duration,
     mono: MonoClock,
@@ -123,6 +189,22 @@ impl Metrics {
         max_age: Duration,
         mono: MonoClock,
     ) -> Metrics {
+        let live = Arc::new(arc_swap::ArcSwap::new(app));
+        Metrics::with_live(live, clock, max_age, mono)
+    }
+
+    /// The metrics of a state a reload may replace.
+    pub fn live(live: LiveState) -> Metrics {
+        Metrics::with_live(live, unix_now_ns, RENDER_MAX_AGE, Arc::new(process_mono))
+    }
+
+    fn with_live(
+        live: LiveState,
+        clock: fn() -> u64,
+        max_age: Duration,
+        mono: MonoClock,
+    ) -> Metrics {
+        let app = live.load_full();
         let registry = Registry::new();
         let http_requests = IntCounterVec::new(
             Opts::new(
@@ -161,11 +243,18 @@ impl Metrics {
             register(&registry, Box::new(g));
         }
         let connections = ConnectionMetrics::register(&registry);
+        let reloads = ReloadMetrics::register(&registry);
+        if reloads.is_none() {
+            tracing::error!("cannot create the config reload metrics");
+        }
         Metrics {
             registry,
             http_requests,
+            reloads,
             connections,
-            collector: PipelineCollector::new(app, clock),
+            collector: Mutex::new(Arc::new(PipelineCollector::new(app, clock))),
+            live,
+            clock,
             max_age,
             mono,
             cache: Mutex::new(None),
@@ -188,9 +277,10 @@ impl Metrics {
     /// The body cached less than the max-age ago, if any.
     pub fn cached(&self) -> Option<Bytes> {
         let now = (self.mono)();
+        let app = self.live.load();
         let c = lock(&self.cache);
         c.as_ref()
-            .filter(|c| now.saturating_sub(c.at) < self.max_age)
+            .filter(|c| now.saturating_sub(c.at) < self.max_age && Arc::ptr_eq(&c.app, &*app))
             .map(|c| c.body.clone())
     }
 
@@ -209,11 +299,13 @@ impl Metrics {
             return Ok(b);
         }
         let at = (self.mono)();
-        let body = Bytes::from(self.render_fresh()?);
+        let app = self.live.load_full();
+        let body = Bytes::from(self.render_of(&app)?);
         if !self.max_age.is_zero() {
             *lock(&self.cache) = Some(Cached {
                 at,
                 body: body.clone(),
+                app,
             });
         }
         Ok(body)
@@ -224,13 +316,27 @@ impl Metrics {
     /// # Errors
     /// If the encoder rejects a static family (a programming error).
     pub fn render_fresh(&self) -> Result<Vec<u8>, prometheus::Error> {
+        self.render_of(&self.live.load_full())
+    }
+
+    fn render_of(&self, app: &Arc<AppState>) -> Result<Vec<u8>, prometheus::Error> {
+        let collector = {
+            let mut c = lock(&self.collector);
+            if !Arc::ptr_eq(c.app(), app) {
+                *c = Arc::new(PipelineCollector::new(app.clone(), self.clock));
+            }
+            c.clone()
+        };
+        if let Some(r) = &self.reloads {
+            r.sync(app);
+        }
         let mut statics = Vec::new();
         for f in self.registry.gather() {
             let mut text = Vec::new();
             TextEncoder::new().encode(std::slice::from_ref(&f), &mut text)?;
             statics.push((f.name().to_string(), text));
         }
-        Ok(self.collector.encode(&statics))
+        Ok(collector.encode(&statics))
     }
 }
 

@@ -43,6 +43,9 @@ pub fn render(app: Arc<AppState>, clock: fn() -> u64) -> Vec<u8> {
     // The HTTP server's connection series are static ones too, encoded
     // by the crate on both sides.
     let _connections = super::ConnectionMetrics::register(&registry);
+    if let Some(r) = super::ReloadMetrics::register(&registry) {
+        r.sync(&app);
+    }
     registry
         .register(Box::new(ProtoCollector::new(app, clock)))
         .expect("register");

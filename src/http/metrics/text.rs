@@ -264,6 +264,11 @@ impl PipelineCollector {
         }
     }
 
+    /// The state this collector's label sets were made for.
+    pub(crate) fn app(&self) -> &Arc<AppState> {
+        &self.app
+    }
+
     /// Writes the whole exposition: this collector's families and
     /// `statics` (name and encoded text of each static family, in name
     /// order), all in name order.

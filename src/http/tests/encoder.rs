@@ -331,11 +331,11 @@ fn the_handler_serves_the_cache() {
         .enable_all()
         .build()
         .expect("runtime");
-    let app = router_with(HttpState {
-        app: st.clone(),
-        metrics: m,
-        dsp: Arc::new(gate::DspGate::per_core()),
-    });
+    let app = router_with(HttpState::fixed(
+        st.clone(),
+        m,
+        Arc::new(gate::DspGate::per_core()),
+    ));
     let a = rt.block_on(call(app.clone(), "GET", "/metrics"));
     st.channels[0].counters.spectra.store(3, Ordering::Relaxed);
     let b = rt.block_on(call(app.clone(), "GET", "/metrics"));

@@ -423,11 +423,11 @@ async fn waveform_dsp_at_its_bound_answers_503_after_the_wait() {
     let st = state();
     publish(&st, 0, two_tone_snapshot());
     let gate = Arc::new(gate::DspGate::new(1, std::time::Duration::from_millis(50)));
-    let app = router_with(HttpState {
-        app: st.clone(),
-        metrics: Arc::new(metrics::Metrics::new(st.clone())),
-        dsp: gate.clone(),
-    });
+    let app = router_with(HttpState::fixed(
+        st.clone(),
+        Arc::new(metrics::Metrics::new(st.clone())),
+        gate.clone(),
+    ));
     let held = gate.hold_all();
     let r = call(app.clone(), "GET", "/api/v1/channels/a/waveform?band=v").await;
     assert_json_error(

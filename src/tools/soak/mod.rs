@@ -89,8 +89,9 @@ pub struct SoakArgs {
     /// profiler's preload (docs/reliability.md, "Profiling the heap").
     #[arg(long = "daemon-env", value_name = "KEY=VALUE", value_parser = parse_env)]
     pub daemon_env: Vec<(String, String)>,
-    /// Reload the config every this many seconds. The daemon has no reload
-    /// yet: the soak refuses the flag until it does (the hook is here).
+    /// Send the daemon SIGHUP (a config reload of its unchanged file)
+    /// every this many seconds; the reloads must all succeed and the
+    /// balances still hold exactly.
     #[arg(long)]
     pub reload_every_s: Option<f64>,
 }
@@ -115,8 +116,8 @@ pub enum SoakError {
     },
     #[error("the daemon did not answer /healthz within 30 s; its log: {log}")]
     NotUp { log: String },
-    #[error("--reload-every-s {0}: the daemon has no config reload yet (issue 13 asks for one every 20 s once it exists)")]
-    NoReload(f64),
+    #[error("--reload-every-s {0}: must be a number of seconds of at least 1")]
+    BadReload(f64),
 }
 
 fn io(what: impl Into<String>) -> impl FnOnce(std::io::Error) -> SoakError {
@@ -229,8 +230,11 @@ fn ingest_fingerprint(e: &Exposition) -> Vec<u64> {
 /// When the soak cannot be set up: no temporary directory, no free port,
 /// the daemon does not start. A failed assertion is in the report.
 pub fn run(args: &SoakArgs) -> Result<Report, SoakError> {
-    if let Some(s) = args.reload_every_s {
-        return Err(SoakError::NoReload(s));
+    if let Some(s) = args
+        .reload_every_s
+        .filter(|s| !(s.is_finite() && *s >= 1.0))
+    {
+        return Err(SoakError::BadReload(s));
     }
     let seconds = args.minutes.map_or(args.seconds, |m| m * 60).max(10);
     let dir = std::env::temp_dir().join(format!(
@@ -267,8 +271,7 @@ pub fn run(args: &SoakArgs) -> Result<Report, SoakError> {
     let mut report = Report {
         seconds: seconds as f64,
         dir: dir.display().to_string(),
-        reload:
-            "not sent: the daemon has no reload yet (--reload-every-s is refused until it does)",
+        reload: "not asked (--reload-every-s)".into(),
         ..Report::default()
     };
     if let Err(e) = wait_up(ports.http, &mut child, &log_path) {
@@ -335,6 +338,28 @@ pub fn run(args: &SoakArgs) -> Result<Report, SoakError> {
         let stop = stop_feed.clone();
         std::thread::spawn(move || feed::tcp(ports.tcp, stop))
     };
+    // SIGHUP every N s while the senders run: a reload of the unchanged
+    // file keeps every channel, so every balance below must still hold.
+    let hangups = args.reload_every_s.map(|every| {
+        let stop = stop_feed.clone();
+        std::thread::spawn(move || {
+            let mut sent = 0u64;
+            let mut next = Instant::now() + Duration::from_secs_f64(every);
+            while !stop.load(Ordering::Relaxed) {
+                if Instant::now() >= next {
+                    let ok = Command::new("kill")
+                        .arg("-HUP")
+                        .arg(pid.to_string())
+                        .status()
+                        .is_ok_and(|s| s.success());
+                    sent += u64::from(ok);
+                    next += Duration::from_secs_f64(every);
+                }
+                std::thread::sleep(Duration::from_millis(50));
+            }
+            sent
+        })
+    });
 
     std::thread::sleep(Duration::from_secs(seconds));
     stop_feed.store(true, Ordering::Relaxed);
@@ -346,6 +371,7 @@ pub fn run(args: &SoakArgs) -> Result<Report, SoakError> {
         });
         tallies.insert(name.to_string(), t);
     }
+    let hups = hangups.map(|h| h.join().unwrap_or(0));
     report.seconds = t0.elapsed().as_secs_f64();
     // The load keeps running until the ingest counters settle.
     let mut last: Option<Vec<u64>> = None;
@@ -369,6 +395,22 @@ pub fn run(args: &SoakArgs) -> Result<Report, SoakError> {
     let slow = slow.join().unwrap_or_default();
     // One last scrape, after the load, for the balance.
     let final_exp = scrape_once(ports.http, &scrapes);
+    if let Some(sent) = hups {
+        let count = |result: &str| {
+            final_exp.as_ref().map_or(-1.0, |e| {
+                e.sum("bandwatch_config_reloads_total", &[("result", result)])
+            })
+        };
+        let (ok, failed) = (count("success"), count("failure"));
+        report.reload = format!(
+            "{sent} SIGHUP sent; the daemon counted {ok} successful and {failed} failed reloads"
+        );
+        report.check(
+            "reloads",
+            sent > 0 && ok == sent as f64 && failed == 0.0,
+            report.reload.clone(),
+        );
+    }
 
     // Stop the daemon: SIGTERM, then it has STOP_LIMIT to exit 0.
     let stop_at = Instant::now();

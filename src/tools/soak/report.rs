@@ -107,8 +107,8 @@ pub struct Report {
     pub captures: Captures,
     pub alarm_transitions: f64,
     pub daemon: Daemon,
-    /// Reload is not sent: the daemon has none yet.
-    pub reload: &'static str,
+    /// SIGHUPs sent and the reloads the daemon counted.
+    pub reload: String,
 }
 
 impl Report {
