@@ -12,12 +12,12 @@
 #    [package.metadata.deb] lists them.
 #
 # Needs cargo-deb at the version below (`cargo install --locked cargo-deb
-# --version 3.6.3`), dpkg-dev (dpkg-shlibdeps, for the $auto dependencies)
+# --version 3.8.0`), dpkg-dev (dpkg-shlibdeps, for the $auto dependencies)
 # and binutils (strip). Prints the path of the .deb on its last line.
 set -euo pipefail
 cd "$(dirname "$0")/.."
 
-cargo_deb_version="3.6.3"
+cargo_deb_version="3.8.0"
 if ! cargo deb --version 2>/dev/null | grep -F "$cargo_deb_version" >/dev/null; then
     echo "build-deb: needs cargo-deb $cargo_deb_version:" \
         "cargo install --locked cargo-deb --version $cargo_deb_version" >&2
