@@ -44,4 +44,4 @@ mkdir -p "$assets/completions" "$assets/man"
 # -n: no name or time stamp in the gzip header, so the .deb is reproducible.
 gzip -9 -n -f "$assets"/man/*.1
 
-cargo deb --no-build --strip --locked | tail -n 1
+cargo deb --no-build --strip | tail -n 1

@@ -68,7 +68,10 @@ fn commands() -> Vec<(String, String)> {
     }
     let names: BTreeSet<&str> = out.iter().map(|(n, _)| n.as_str()).collect();
     for k in KNOWN {
-        assert!(names.contains(k), "`bandwatch --help` does not list {k}: {help}");
+        assert!(
+            names.contains(k),
+            "`bandwatch --help` does not list {k}: {help}"
+        );
     }
     out
 }
@@ -186,12 +189,15 @@ fn man_pages_render_and_name_every_command() {
     let commands = commands();
 
     let main = std::fs::read_to_string(out_dir.join("bandwatch.1")).expect("bandwatch.1");
-    assert!(main.starts_with(".ie") || main.contains("\n.TH "), "not roff");
+    assert!(
+        main.starts_with(".ie") || main.contains("\n.TH "),
+        "not roff"
+    );
     assert!(main.contains(".TH bandwatch 1"), "{main}");
     for (name, _) in &commands {
         let page = out_dir.join(format!("bandwatch-{name}.1"));
-        let text = std::fs::read_to_string(&page)
-            .unwrap_or_else(|e| panic!("{}: {e}", page.display()));
+        let text =
+            std::fs::read_to_string(&page).unwrap_or_else(|e| panic!("{}: {e}", page.display()));
         assert!(
             text.contains(&format!(".TH bandwatch-{name} 1")),
             "{}",
@@ -210,7 +216,10 @@ fn man_pages_render_and_name_every_command() {
         Err(e) => eprintln!("SKIPPED rendering: groff cannot be run here ({e})"),
         Ok(r) => {
             let warnings = String::from_utf8_lossy(&r.stderr);
-            assert!(r.status.success() && warnings.trim().is_empty(), "{warnings}");
+            assert!(
+                r.status.success() && warnings.trim().is_empty(),
+                "{warnings}"
+            );
             // Plain text: undo grotty's overstrike (bold "x BS x",
             // underline "_ BS x"): a backspace drops the character before it.
             let mut text = String::new();

@@ -38,10 +38,7 @@ fn the_default_config_passes_the_file_check() {
         out.status,
         String::from_utf8_lossy(&out.stderr)
     );
-    assert!(
-        stdout.contains("ok (1 source(s), 2 channel(s)"),
-        "{stdout}"
-    );
+    assert!(stdout.contains("ok (1 source(s), 2 channel(s)"), "{stdout}");
 }
 
 #[test]
