@@ -181,6 +181,20 @@ enum Command {
     },
     /// Measure stage throughput, ingest, HTTP latency and memory side by side.
     Bench(bandwatch::tools::bench::BenchArgs),
+    /// Print a shell completion script on stdout, e.g.
+    /// `bandwatch completions bash > /etc/bash_completion.d/bandwatch`.
+    Completions {
+        /// The shell to complete for.
+        #[arg(value_enum)]
+        shell: clap_complete::Shell,
+    },
+    /// Write the man pages (bandwatch.1 and bandwatch-COMMAND.1 for every
+    /// command) into a directory.
+    Man {
+        /// Directory for the pages (created if missing).
+        #[arg(long)]
+        out_dir: PathBuf,
+    },
     /// Run this daemon as a child under faults and HTTP load, then assert
     /// exact accounting, monotonic counters, flat memory and /healthz
     /// latency; exits non-zero on any failed check.
@@ -233,6 +247,8 @@ fn main() -> ExitCode {
                 ExitCode::FAILURE
             }
         },
+        Command::Completions { shell } => completions(shell),
+        Command::Man { out_dir } => man_pages(&out_dir),
         Command::Soak(args) => {
             use std::io::Write as _;
             match bandwatch::tools::soak::run(&args) {
@@ -445,6 +461,35 @@ fn block_on<F: std::future::Future<Output = ExitCode>>(f: F) -> ExitCode {
         Ok(rt) => rt.block_on(f),
         Err(e) => {
             eprintln!("cannot start the async runtime: {e}");
+            ExitCode::FAILURE
+        }
+    }
+}
+
+/// `completions SHELL`: the script on stdout.
+fn completions(shell: clap_complete::Shell) -> ExitCode {
+    use clap::CommandFactory as _;
+    use std::io::Write as _;
+    let mut script = Vec::new();
+    clap_complete::generate(shell, &mut Cli::command(), "bandwatch", &mut script);
+    match std::io::stdout().lock().write_all(&script) {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(e) => {
+            eprintln!("completions: cannot write to stdout: {e}");
+            ExitCode::FAILURE
+        }
+    }
+}
+
+/// `man --out-dir DIR`: bandwatch.1 and one page per command.
+fn man_pages(out_dir: &std::path::Path) -> ExitCode {
+    use clap::CommandFactory as _;
+    let written = std::fs::create_dir_all(out_dir)
+        .and_then(|()| clap_mangen::generate_to(Cli::command(), out_dir));
+    match written {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(e) => {
+            eprintln!("man: cannot write the pages to {}: {e}", out_dir.display());
             ExitCode::FAILURE
         }
     }
