@@ -186,7 +186,7 @@ enum Command {
     Completions {
         /// The shell to complete for.
         #[arg(value_enum)]
-        shell: clap_complete::Shell,
+        shell: CompletionShell,
     },
     /// Write the man pages (bandwatch.1 and bandwatch-COMMAND.1 for every
     /// command) into a directory.
@@ -247,7 +247,7 @@ fn main() -> ExitCode {
                 ExitCode::FAILURE
             }
         },
-        Command::Completions { shell } => completions(shell),
+        Command::Completions { shell } => completions(shell.into()),
         Command::Man { out_dir } => man_pages(&out_dir),
         Command::Soak(args) => {
             use std::io::Write as _;
@@ -466,6 +466,34 @@ fn block_on<F: std::future::Future<Output = ExitCode>>(f: F) -> ExitCode {
     }
 }
 
+/// The shells `completions` writes a script for (clap_complete's, each
+/// with its help text, which `clap_complete::Shell` has not).
+#[derive(Debug, Clone, Copy, ValueEnum)]
+enum CompletionShell {
+    /// GNU bash (bash-completion).
+    Bash,
+    /// Elvish.
+    Elvish,
+    /// fish.
+    Fish,
+    /// PowerShell.
+    Powershell,
+    /// zsh.
+    Zsh,
+}
+
+impl From<CompletionShell> for clap_complete::Shell {
+    fn from(s: CompletionShell) -> Self {
+        match s {
+            CompletionShell::Bash => Self::Bash,
+            CompletionShell::Elvish => Self::Elvish,
+            CompletionShell::Fish => Self::Fish,
+            CompletionShell::Powershell => Self::PowerShell,
+            CompletionShell::Zsh => Self::Zsh,
+        }
+    }
+}
+
 /// `completions SHELL`: the script on stdout.
 fn completions(shell: clap_complete::Shell) -> ExitCode {
     use clap::CommandFactory as _;
@@ -499,6 +527,16 @@ async fn run(
     cfg: bandwatch::config::Config,
     loader: bandwatch::pipeline::reload::ConfigLoader,
 ) -> ExitCode {
+    // First of all: from here on a stop request is not missed, and a SIGHUP
+    // does not kill the starting daemon. Installing tokio's SIGHUP handler
+    // replaces the default action (end the process) for good; one that
+    // arrives before the reloader listens is ignored (the file was just
+    // read), and the reloader takes its own receiver.
+    let shutdown = shutdown_signal();
+    #[cfg(unix)]
+    if let Err(e) = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::hangup()) {
+        tracing::warn!(error = %e, "cannot handle SIGHUP: it would end the daemon");
+    }
     let listener = match tokio::net::TcpListener::bind(cfg.listen).await {
         Ok(l) => l,
         Err(e) => {
@@ -513,7 +551,7 @@ async fn run(
         "http"
     };
     tracing::info!(%addr, channels = cfg.channels.len(), "bandwatch listening on {scheme}://{addr}/");
-    match bandwatch::daemon::serve_with(cfg, listener, shutdown_signal(), Some(loader)).await {
+    match bandwatch::daemon::serve_with(cfg, listener, shutdown, Some(loader)).await {
         Ok(()) => {
             tracing::info!("stopped");
             ExitCode::SUCCESS
@@ -525,31 +563,42 @@ async fn run(
     }
 }
 
-/// Resolves on SIGINT or SIGTERM.
-async fn shutdown_signal() {
-    let ctrl_c = async {
+/// Installs the SIGINT and SIGTERM handlers now (so a stop request that
+/// arrives while the daemon starts is kept for the returned future, not
+/// missed) and returns a future that resolves on SIGINT or SIGTERM.
+#[cfg(unix)]
+fn shutdown_signal() -> impl std::future::Future<Output = ()> {
+    use tokio::signal::unix::{signal, SignalKind};
+    let int = signal(SignalKind::interrupt());
+    let term = signal(SignalKind::terminate());
+    async move {
+        let wait = |s: std::io::Result<tokio::signal::unix::Signal>, name: &'static str| async move {
+            match s {
+                Ok(mut s) => {
+                    s.recv().await;
+                }
+                Err(e) => {
+                    tracing::warn!(error = %e, "cannot listen for {name}");
+                    std::future::pending::<()>().await;
+                }
+            }
+        };
+        tokio::select! {
+            _ = wait(int, "SIGINT") => tracing::info!("SIGINT: shutting down"),
+            _ = wait(term, "SIGTERM") => tracing::info!("SIGTERM: shutting down"),
+        }
+    }
+}
+
+/// Resolves on ctrl-c.
+#[cfg(not(unix))]
+fn shutdown_signal() -> impl std::future::Future<Output = ()> {
+    async {
         if let Err(e) = tokio::signal::ctrl_c().await {
             tracing::warn!(error = %e, "cannot listen for ctrl-c");
             std::future::pending::<()>().await;
         }
-    };
-    #[cfg(unix)]
-    let term = async {
-        match tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()) {
-            Ok(mut s) => {
-                s.recv().await;
-            }
-            Err(e) => {
-                tracing::warn!(error = %e, "cannot listen for SIGTERM");
-                std::future::pending::<()>().await;
-            }
-        }
-    };
-    #[cfg(not(unix))]
-    let term = std::future::pending::<()>();
-    tokio::select! {
-        _ = ctrl_c => tracing::info!("SIGINT: shutting down"),
-        _ = term => tracing::info!("SIGTERM: shutting down"),
+        tracing::info!("SIGINT: shutting down");
     }
 }
 

@@ -20,7 +20,7 @@ fn the_default_config_passes_the_file_check() {
     let bin = env!("CARGO_BIN_EXE_bandwatch");
     let args = ["check", "--no-env", "--config", DEPLOY];
     let out = Command::new(bin)
-        .args(&args)
+        .args(args)
         .output()
         .expect("run bandwatch check");
     let stdout = String::from_utf8_lossy(&out.stdout);

@@ -62,31 +62,45 @@ struct Daemon {
     _dir: Dir,
 }
 
-/// The demo daemon with TLS and one basic-auth user, storing into a
-/// scratch directory; `server_extra` goes into `[server]`.
-async fn daemon(tag: &str, server_extra: &str) -> Daemon {
-    let dir = Dir::new(tag);
+/// A self-signed certificate (rcgen), its key, a bcrypt hash and the
+/// web-config file naming them, in `dir`; returns the certificate (PEM).
+fn write_tls_files(dir: &Path) -> String {
     let cert =
         rcgen::generate_simple_self_signed(vec!["localhost".to_string(), "127.0.0.1".to_string()])
             .unwrap();
-    std::fs::write(dir.0.join("server.crt"), cert.cert.pem()).unwrap();
-    std::fs::write(dir.0.join("server.key"), cert.signing_key.serialize_pem()).unwrap();
+    std::fs::write(dir.join("server.crt"), cert.cert.pem()).unwrap();
+    std::fs::write(dir.join("server.key"), cert.signing_key.serialize_pem()).unwrap();
     let hash = bcrypt::hash(PASSWORD, 4).unwrap();
     // Relative cert/key paths: they resolve beside the web-config file.
     std::fs::write(
-        dir.0.join("web.yml"),
+        dir.join("web.yml"),
         format!(
             "tls_server_config:\n  cert_file: server.crt\n  key_file: server.key\n\
              basic_auth_users:\n  {USER}: {hash}\n"
         ),
     )
     .unwrap();
-    let text = demo_text(&dir.0, server_extra);
+    cert.cert.pem()
+}
+
+/// The demo config with TLS from the files in `dir`, parsed (and the TLS
+/// server config built) afresh.
+fn tls_config(dir: &Path, server_extra: &str) -> bandwatch::config::Config {
+    let text = demo_text(dir, server_extra);
     let config = match bandwatch::config::parse_str(&text) {
         Ok(c) => c,
         Err(e) => panic!("{e:?}\n{text}"),
     };
     assert!(config.web.as_ref().is_some_and(|w| w.tls.is_some()));
+    config
+}
+
+/// The demo daemon with TLS and one basic-auth user, storing into a
+/// scratch directory; `server_extra` goes into `[server]`.
+async fn daemon(tag: &str, server_extra: &str) -> Daemon {
+    let dir = Dir::new(tag);
+    let ca_pem = write_tls_files(&dir.0);
+    let config = tls_config(&dir.0, server_extra);
     let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
     let addr = listener.local_addr().unwrap();
     let (stop, stop_rx) = oneshot::channel::<()>();
@@ -99,7 +113,7 @@ async fn daemon(tag: &str, server_extra: &str) -> Daemon {
     });
     Daemon {
         addr,
-        ca_pem: cert.cert.pem(),
+        ca_pem,
         stop,
         task,
         _dir: dir,
@@ -337,4 +351,18 @@ async fn the_bearer_token_still_reaches_the_write_endpoints() {
     let r = tls_request(&d, "GET", "/api/v1/alarms", Some(&token)).await;
     assert_eq!(r.status, 200, "{}", r.text());
     stop(d).await;
+}
+
+/// A reload of the same file with TLS on: the web config read again (a new
+/// rustls server config, with its own session cache and ticket keys) is
+/// the same settings, so the reload applies and nothing needs a restart
+/// (README "Reloading the config").
+#[tokio::test]
+async fn an_unchanged_tls_config_reloads() {
+    let dir = Dir::new("tls-reload");
+    write_tls_files(&dir.0);
+    let mut p = bandwatch::pipeline::Pipeline::start(&tls_config(&dir.0, "")).expect("pipeline");
+    let r = p.reload(&tls_config(&dir.0, "")).await;
+    p.stop().await;
+    assert!(r.is_ok(), "an unchanged TLS config was refused: {r:?}");
 }
