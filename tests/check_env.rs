@@ -4,7 +4,8 @@
 //! run as root on CI, where a mode does not stop a read or a write, so the
 //! unwritable storage directory is one below a regular file.)
 
-use std::io::{BufRead, BufReader};
+mod common;
+
 use std::os::unix::fs::PermissionsExt as _;
 use std::path::{Path, PathBuf};
 use std::process::{Command, Output, Stdio};
@@ -166,19 +167,11 @@ fn run_until_listening(
         .current_dir(cwd)
         .env_remove("STATE_DIRECTORY")
         .env_remove("NOTIFY_SOCKET")
-        .stdout(Stdio::null())
-        .stderr(Stdio::piped());
+        .stdout(Stdio::null());
     for (k, v) in env {
         cmd.env(k, v);
     }
-    let mut child = cmd.spawn().expect("daemon");
-    let err = child.stderr.take().expect("stderr");
-    let (tx, rx) = std::sync::mpsc::channel();
-    std::thread::spawn(move || {
-        for l in BufReader::new(err).lines().map_while(Result::ok) {
-            let _ = tx.send(l);
-        }
-    });
+    let (mut child, rx) = common::spawn_with_stderr_lines(&mut cmd);
     let deadline = Instant::now() + Duration::from_secs(20);
     let mut lines = Vec::new();
     loop {

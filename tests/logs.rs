@@ -4,7 +4,9 @@
 //! escape. Events are driven over 127.0.0.1: a bad datagram, a TCP peer
 //! that connects and leaves, startup lines, and a replay with rejections.
 
-use std::io::{BufRead, BufReader, Write};
+mod common;
+
+use std::io::Write;
 use std::net::{TcpStream, UdpSocket};
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
@@ -71,19 +73,11 @@ fn start(dir: &Path, format: &str, env: &[(&str, &str)]) -> (Daemon, mpsc::Recei
         .env("RUST_LOG", "info")
         .env_remove("NO_COLOR")
         .env_remove("NOTIFY_SOCKET")
-        .stdout(Stdio::null())
-        .stderr(Stdio::piped());
+        .stdout(Stdio::null());
     for (k, v) in env {
         cmd.env(k, v);
     }
-    let mut child = cmd.spawn().expect("daemon");
-    let err = child.stderr.take().expect("stderr");
-    let (tx, rx) = mpsc::channel();
-    std::thread::spawn(move || {
-        for l in BufReader::new(err).lines().map_while(Result::ok) {
-            let _ = tx.send(l);
-        }
-    });
+    let (child, rx) = common::spawn_with_stderr_lines(&mut cmd);
     (Daemon(child), rx)
 }
 

@@ -3,7 +3,9 @@
 //! real binary runs the sim on 127.0.0.1:0 with `WATCHDOG_USEC` = 2 s.
 //! Message names are those of sd_notify(3) (systemd's documentation).
 
-use std::io::{BufRead, BufReader, Read, Write};
+mod common;
+
+use std::io::{Read, Write};
 use std::net::TcpStream;
 use std::os::unix::net::UnixDatagram;
 use std::path::{Path, PathBuf};
@@ -58,19 +60,11 @@ fn start(config: &Path, env: &[(&str, &str)]) -> (Daemon, u16, mpsc::Receiver<St
         .env_remove("NOTIFY_SOCKET")
         .env_remove("WATCHDOG_USEC")
         .env_remove("WATCHDOG_PID")
-        .stdout(Stdio::null())
-        .stderr(Stdio::piped());
+        .stdout(Stdio::null());
     for (k, v) in env {
         cmd.env(k, v);
     }
-    let mut child = cmd.spawn().expect("daemon");
-    let err = child.stderr.take().expect("stderr");
-    let (tx, rx) = mpsc::channel();
-    std::thread::spawn(move || {
-        for line in BufReader::new(err).lines().map_while(Result::ok) {
-            let _ = tx.send(line);
-        }
-    });
+    let (child, rx) = common::spawn_with_stderr_lines(&mut cmd);
     let deadline = Instant::now() + Duration::from_secs(30);
     let port = loop {
         let left = deadline.saturating_duration_since(Instant::now());

@@ -182,3 +182,24 @@ pub async fn wait_for(what: &str, secs: u64, mut ok: impl FnMut() -> bool) {
         tokio::time::sleep(Duration::from_millis(20)).await;
     }
 }
+
+/// Spawns `cmd` (a real bandwatch process) with its stderr piped, and a
+/// thread that forwards each stderr line to the returned receiver (the
+/// channel closes when the process closes stderr).
+pub fn spawn_with_stderr_lines(
+    cmd: &mut std::process::Command,
+) -> (std::process::Child, std::sync::mpsc::Receiver<String>) {
+    use std::io::BufRead as _;
+    let mut child = cmd
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .expect("spawn the daemon");
+    let err = child.stderr.take().expect("stderr");
+    let (tx, rx) = std::sync::mpsc::channel();
+    std::thread::spawn(move || {
+        for line in std::io::BufReader::new(err).lines().map_while(Result::ok) {
+            let _ = tx.send(line);
+        }
+    });
+    (child, rx)
+}
