@@ -1,0 +1,111 @@
+// Loads the operator page in Debian's chromium (driven by playwright-core,
+// no browser download) against a running daemon and checks what an
+// operator sees. Usage: node page.mjs BASE_URL SCREENSHOT_DIR
+// Exit 0 on success, 1 with the reason on stderr otherwise.
+import { chromium } from "playwright-core";
+import fs from "node:fs";
+import os from "node:os";
+import path from "node:path";
+
+const [base, shots] = process.argv.slice(2);
+if (!base || !shots) {
+  console.error("usage: node page.mjs BASE_URL SCREENSHOT_DIR");
+  process.exit(2);
+}
+fs.mkdirSync(shots, { recursive: true });
+const profile = fs.mkdtempSync(path.join(os.tmpdir(), "bandwatch-chromium-"));
+
+// The demo (config/demo.toml): pump train P2 at a fixed 1485 rpm, so the
+// running speed is 1485/60 = 24.75 Hz; the pump has 7 vanes, so the vane
+// pass is 7 x 24.75 = 173.25 Hz (the demo's own scenario).
+const SPEED_HZ = 24.75;
+const VANE_PASS_HZ = 173.25;
+const LINE_HZ = 3.125; // 25 600 Hz / 8192 lines (demo [dsp])
+const CHANNELS = ["motor-de", "pump-de", "pump-nde", "tach"];
+
+const problems = [];
+const fail = (msg) => { problems.push(msg); };
+
+// A fresh profile directory (playwright passes it as --user-data-dir).
+const browser = await chromium.launchPersistentContext(profile, {
+  executablePath: process.env.CHROMIUM || "/usr/bin/chromium",
+  headless: true,
+  timeout: 30000,
+  viewport: { width: 1280, height: 800 },
+  args: ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+    "--disable-background-networking", "--disable-component-update", "--disable-sync"],
+});
+try {
+  const page = await browser.newPage();
+  page.setDefaultTimeout(15000);
+  const consoleErrors = [];
+  const foreign = [];
+  page.on("console", (m) => { if (m.type() === "error") consoleErrors.push(m.text()); });
+  page.on("pageerror", (e) => consoleErrors.push(`uncaught: ${e.message}`));
+  page.on("request", (r) => {
+    const u = new URL(r.url());
+    if (u.protocol !== "data:" && u.origin !== new URL(base).origin) foreign.push(r.url());
+  });
+
+  // Overview.
+  const t0 = Date.now();
+  await page.goto(`${base}/`, { waitUntil: "load" });
+  const loadMs = Date.now() - t0;
+  await page.waitForFunction((n) => document.querySelectorAll("#channels tbody tr").length >= n, CHANNELS.length);
+  const listed = await page.$$eval("#channels tbody tr", (rows) => rows.map((r) => r.dataset.channel));
+  for (const c of CHANNELS) if (!listed.includes(c)) fail(`overview does not list channel ${c} (lists ${listed})`);
+  const machineText = await page.textContent("#machines tbody");
+  if (!/1485\s*rpm/.test(machineText)) fail(`machines table does not show 1485 rpm: ${machineText}`);
+  const lossRows = await page.$$eval("#losses tbody tr", (r) => r.length);
+  if (lossRows === 0) fail("lost-data table is empty");
+  await page.screenshot({ path: path.join(shots, "overview.png"), fullPage: true });
+
+  // Channel view of pump-de, reached by keyboard-free navigation (its link).
+  await page.click('nav a[href="#/channel/pump-de"]');
+  await page.waitForFunction(() => document.getElementById("peak-readout").dataset.hz);
+  // Full span (the label is the highest peak of the whole spectrum).
+  const peakHz = Number(await page.getAttribute("#peak-readout", "data-hz"));
+  if (!(Math.abs(peakHz - VANE_PASS_HZ) <= LINE_HZ / 2)) {
+    fail(`highest peak at ${peakHz} Hz, expected the vane pass ${VANE_PASS_HZ} Hz within half a line`);
+  }
+  const peakText = await page.textContent("#peak-readout");
+  if (!/highest peak 17[23]\.\d Hz/.test(peakText)) fail(`peak label reads "${peakText}"`);
+  const harm = (await page.getAttribute("#harmonic-readout", "data-hz")).split(",").map(Number);
+  if (harm.length < 5) fail(`only ${harm.length} harmonic cursors`);
+  harm.forEach((f, i) => {
+    if (Math.abs(f - (i + 1) * SPEED_HZ) > 1e-9) fail(`harmonic cursor ${i + 1} at ${f} Hz, expected ${(i + 1) * SPEED_HZ}`);
+  });
+  // The plot has ink on it: the canvas is not blank.
+  const inked = await page.$eval("#spectrum", (c) => {
+    const d = c.getContext("2d").getImageData(0, 0, c.width, c.height).data;
+    let dark = 0;
+    for (let i = 0; i < d.length; i += 4) if (d[i] < 80 && d[i + 1] < 80 && d[i + 2] < 80) dark++;
+    return dark;
+  });
+  if (inked < 500) fail(`spectrum canvas has only ${inked} dark pixels`);
+  // Cursor by keyboard: focus the plot, move one line right.
+  await page.focus("#spectrum");
+  await page.keyboard.press("ArrowRight");
+  const cursorText = await page.textContent("#cursor-readout");
+  if (!/cursor [\d.]+ Hz · order [\d.]+ · /.test(cursorText)) fail(`cursor readout "${cursorText}"`);
+  await page.screenshot({ path: path.join(shots, "channel-pump-de.png"), fullPage: true });
+  // Zoom on the vane pass with the wheel, log amplitude.
+  await page.selectOption("#amp-scale", "log");
+  const box = await page.$eval("#spectrum", (c) => { const r = c.getBoundingClientRect(); return { x: r.x, y: r.y, w: r.width, h: r.height }; });
+  await page.mouse.move(box.x + 64 + (box.w - 80) * (VANE_PASS_HZ / 12800), box.y + box.h / 2);
+  for (let i = 0; i < 12; i++) await page.mouse.wheel(0, -100);
+  await page.waitForTimeout(300);
+  await page.screenshot({ path: path.join(shots, "channel-pump-de-zoom-log.png"), fullPage: true });
+
+  if (consoleErrors.length) fail(`console errors: ${consoleErrors.join(" | ")}`);
+  if (foreign.length) fail(`requests outside the daemon: ${foreign.join(", ")}`);
+  console.log(`page load (DOM load event) ${loadMs} ms; peak ${peakHz.toFixed(2)} Hz; harmonics ${harm.slice(0, 3).join(", ")}...`);
+} finally {
+  await browser.close();
+  fs.rmSync(profile, { recursive: true, force: true });
+}
+if (problems.length) {
+  for (const p of problems) console.error(`page: FAIL: ${p}`);
+  process.exit(1);
+}
+console.log("page: all checks passed");
