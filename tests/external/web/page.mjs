@@ -51,7 +51,9 @@ try {
   const t0 = Date.now();
   await page.goto(`${base}/`, { waitUntil: "load" });
   const loadMs = Date.now() - t0;
-  await page.waitForFunction((n) => document.querySelectorAll("#channels tbody tr").length >= n, CHANNELS.length);
+  // Waits by selector, not waitForFunction: that evaluates a string, which
+  // the page's CSP (no 'unsafe-eval') rightly refuses.
+  await page.locator("#channels tbody tr").nth(CHANNELS.length - 1).waitFor();
   const listed = await page.$$eval("#channels tbody tr", (rows) => rows.map((r) => r.dataset.channel));
   for (const c of CHANNELS) if (!listed.includes(c)) fail(`overview does not list channel ${c} (lists ${listed})`);
   const machineText = await page.textContent("#machines tbody");
@@ -62,7 +64,7 @@ try {
 
   // Channel view of pump-de, reached by keyboard-free navigation (its link).
   await page.click('nav a[href="#/channel/pump-de"]');
-  await page.waitForFunction(() => document.getElementById("peak-readout").dataset.hz);
+  await page.locator('#peak-readout[data-hz]:not([data-hz=""])').waitFor();
   // Full span (the label is the highest peak of the whole spectrum).
   const peakHz = Number(await page.getAttribute("#peak-readout", "data-hz"));
   if (!(Math.abs(peakHz - VANE_PASS_HZ) <= LINE_HZ / 2)) {
