@@ -9,8 +9,10 @@
 #    PLAYWRIGHT_SKIP_BROWSER_DOWNLOAD=1: no browser is downloaded). It checks
 #    the overview lists the demo's four channels, the pump-de view's highest
 #    peak label reads the vane pass (173.25 Hz within half a line), the
-#    harmonic cursors sit at multiples of 24.75 Hz, the console has no
-#    errors and no request leaves the daemon;
+#    harmonic cursors sit at multiples of 24.75 Hz, a one-line spike among
+#    65 537 lines still shows in its pixel column (display decimation by
+#    min..max, never by skipping), the console has no errors and no request
+#    leaves the daemon;
 # 3. screenshots go to target/page-screenshots/ (README "The operator page").
 #
 # Installs nothing. Everything binds 127.0.0.1 only; every step is
