@@ -92,6 +92,21 @@ function losses(details) {
     el("td", { class: "num" }, n > 0 ? badge("alert", String(n)) : String(n))));
 }
 
+// Replaces the rows' cells but keeps each row's first cell (the channel
+// link) when the channel is the same, so keyboard focus on a link survives
+// the updates.
+function updateRows(tbody, rows) {
+  const old = [...tbody.rows];
+  const same = old.length === rows.length
+    && old.every((r, i) => r.dataset.channel === rows[i].dataset.channel);
+  if (!same) { tbody.replaceChildren(...rows); return; }
+  old.forEach((r, i) => {
+    const cells = [...rows[i].cells].slice(1);
+    [...r.cells].slice(1).forEach((c) => c.remove());
+    r.append(...cells);
+  });
+}
+
 export function start(setLink) {
   return poller(async () => {
     try {
@@ -99,7 +114,7 @@ export function start(setLink) {
       const names = list.channels.map((c) => c.name);
       navLinks(names);
       const details = await Promise.all(names.map((n) => api.channel(n)));
-      document.querySelector("#channels tbody").replaceChildren(...details.map(row));
+      updateRows(document.querySelector("#channels tbody"), details.map(row));
       document.querySelector("#machines tbody").replaceChildren(...machines(details));
       document.querySelector("#losses tbody").replaceChildren(...losses(details));
       setLink(true, `live · updated ${new Date().toLocaleTimeString()}`);

@@ -60,6 +60,11 @@ try {
   if (!/1485\s*rpm/.test(machineText)) fail(`machines table does not show 1485 rpm: ${machineText}`);
   const lossRows = await page.$$eval("#losses tbody tr", (r) => r.length);
   if (lossRows === 0) fail("lost-data table is empty");
+  // Keyboard focus on a channel link survives the live updates (1.5 s).
+  await page.focus('#channels a[href="#/channel/motor-de"]');
+  await page.waitForTimeout(2000);
+  const focused = await page.evaluate(() => document.activeElement && document.activeElement.getAttribute("href"));
+  if (focused !== "#/channel/motor-de") fail(`focus lost by the overview's update (now on ${focused})`);
   await page.screenshot({ path: path.join(shots, "overview.png"), fullPage: true });
 
   // Channel view of pump-de, reached by keyboard-free navigation (its link).
