@@ -9,6 +9,7 @@
 //! - `gate`: the bound on request-time DSP (blocking threads, N at once)
 //! - `reload`: `POST /api/v1/reload` (config reload, bearer token)
 //! - `auth`: basic auth for every route (`[server] web_config` users)
+//! - `page`: the operator page at `/` and its embedded `/assets/{name}`
 //! - `server`: the accept loop with its limits, and TLS
 
 pub mod alarms;
@@ -17,6 +18,7 @@ pub mod auth;
 pub mod error;
 pub mod gate;
 pub mod metrics;
+pub mod page;
 pub mod reload;
 pub mod scaling;
 pub mod server;
@@ -119,6 +121,8 @@ pub fn app_live(
 /// As [`router`], with a prepared state (tests pin the metrics clock).
 pub fn router_with(st: HttpState) -> Router {
     Router::new()
+        .route("/", get(page::index))
+        .route("/assets/{name}", get(page::asset))
         .route("/healthz", get(api::healthz))
         .route("/readyz", get(api::readyz))
         .route("/metrics", get(metrics_handler))

@@ -1,0 +1,125 @@
+// Overview: every channel (source, health, worst alarm, overall level,
+// bands with limits), the machines with their speed, and the counters of
+// lost data. Polls the public API every 1.5 s.
+
+import * as api from "./api.js";
+import { el, num, badge, healthBadge } from "./ui.js";
+
+const PERIOD_MS = 1500;
+
+function poller(task, period) {
+  let timer = null;
+  let stopped = false;
+  const tick = async () => {
+    await task();
+    if (!stopped) timer = setTimeout(tick, period);
+  };
+  tick();
+  return { stop() { stopped = true; clearTimeout(timer); } };
+}
+export { poller };
+
+function navLinks(names) {
+  const nav = document.getElementById("nav-channels");
+  if (nav.dataset.names === names.join("\n")) return;
+  nav.dataset.names = names.join("\n");
+  nav.replaceChildren(...names.map((n) => el("a", { href: `#/channel/${encodeURIComponent(n)}`, text: n })));
+}
+
+function bandCell(d) {
+  const limits = new Map((d.alarms || []).map((a) => [a.band, a]));
+  const list = el("ul", { class: "bands" });
+  for (const b of d.bands || []) {
+    const a = limits.get(b.name);
+    const li = el("li", {}, el("span", { class: "band-name", text: b.name }), " ");
+    if (b.status && b.status !== "ok") li.append(badge("inhibited", b.status));
+    else li.append(`${num(b.value)} ${b.unit}`);
+    if (a) {
+      li.append(el("span", { class: "limits", text: ` · ${num(a.alert_limit)} / ${num(a.danger_limit)}` }));
+      if (a.state !== "normal") li.append(" ", badge(a.state));
+    }
+    list.append(li);
+  }
+  return list;
+}
+
+function row(d) {
+  const src = d.source;
+  const srcCell = el("td", {});
+  srcCell.append(src.state === "connected" ? el("span", { text: `${src.name} (${src.kind})` })
+    : badge("fault", `${src.name} ${src.state}`));
+  return el("tr", { "data-channel": d.name },
+    el("th", { scope: "row" }, el("a", { href: `#/channel/${encodeURIComponent(d.name)}`, text: d.name })),
+    srcCell,
+    el("td", {}, healthBadge(d)),
+    el("td", {}, d.alarm_state ? badge(d.alarm_state) : badge("none")),
+    el("td", { class: "num", text: d.overall ? `${num(d.overall.rms)} ${d.overall.unit}` : "–" }),
+    el("td", {}, bandCell(d)),
+    el("td", { class: "num", text: d.spectrum_age_seconds == null ? "none yet" : `${d.spectrum_age_seconds.toFixed(1)} s` }),
+  );
+}
+
+function machines(details) {
+  const seen = new Map();
+  for (const d of details) if (d.machine && !seen.has(d.machine.name)) seen.set(d.machine.name, d.machine);
+  return [...seen.values()].map((m) => el("tr", {},
+    el("th", { scope: "row", text: m.name }),
+    el("td", { class: "num" }, m.speed_hz == null ? badge("fault", "speed unknown")
+      : `${num(m.speed_rpm, 5)} rpm (${num(m.speed_hz, 4)} Hz)`),
+    el("td", { text: m.speed_source }),
+    el("td", { class: "num", text: String(m.speed_late_results) }),
+  ));
+}
+
+function losses(details) {
+  const rows = [];
+  const sources = new Map();
+  for (const d of details) {
+    const c = d.counters || {};
+    for (const [reason, n] of Object.entries(c.samples_dropped || {})) {
+      rows.push([d.name, `samples dropped: ${reason}`, n]);
+    }
+    if (d.source && d.source.counters) sources.set(d.source.name, d.source.counters);
+  }
+  for (const [name, c] of sources) {
+    for (const k of ["crc_errors", "missing_samples", "late_frames", "resyncs", "skipped_bytes"]) {
+      if (k in c) rows.push([`source ${name}`, k.replace(/_/g, " "), c[k]]);
+    }
+    for (const [reason, n] of Object.entries(c.rejected || {})) rows.push([`source ${name}`, `rejected: ${reason}`, n]);
+  }
+  return rows.map(([w, k, n]) => el("tr", n > 0 ? { class: "abnormal" } : {},
+    el("td", { text: w }), el("td", { text: k }),
+    el("td", { class: "num" }, n > 0 ? badge("alert", String(n)) : String(n))));
+}
+
+// Replaces the rows' cells but keeps each row's first cell (the channel
+// link) when the channel is the same, so keyboard focus on a link survives
+// the updates.
+function updateRows(tbody, rows) {
+  const old = [...tbody.rows];
+  const same = old.length === rows.length
+    && old.every((r, i) => r.dataset.channel === rows[i].dataset.channel);
+  if (!same) { tbody.replaceChildren(...rows); return; }
+  old.forEach((r, i) => {
+    const cells = [...rows[i].cells].slice(1);
+    [...r.cells].slice(1).forEach((c) => c.remove());
+    r.append(...cells);
+  });
+}
+
+export function start(setLink) {
+  return poller(async () => {
+    try {
+      const list = await api.channels();
+      const names = list.channels.map((c) => c.name);
+      navLinks(names);
+      const details = await Promise.all(names.map((n) => api.channel(n)));
+      updateRows(document.querySelector("#channels tbody"), details.map(row));
+      document.querySelector("#machines tbody").replaceChildren(...machines(details));
+      document.querySelector("#losses tbody").replaceChildren(...losses(details));
+      setLink(true, `live · updated ${new Date().toLocaleTimeString()}`);
+    } catch (e) {
+      setLink(false, `no data: ${e.message}`);
+    }
+  }, PERIOD_MS);
+}
