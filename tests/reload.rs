@@ -51,6 +51,21 @@ struct Knobs<'a> {
     kept_extra: &'a str,
 }
 
+impl Knobs<'static> {
+    /// The starting config: limit 2, "gone" configured, "new" not, "kept"
+    /// as it is.
+    fn first(workers: usize, daq_port: u16) -> Self {
+        Knobs {
+            workers,
+            lim_danger: 2.0,
+            gone: true,
+            new: false,
+            daq_port,
+            kept_extra: "",
+        }
+    }
+}
+
 /// Two sources: the simulator (4x real time) and a UDP DAQ box.
 /// "kept": a latching alarm that trips at once, acknowledged by the
 /// test, and a learned baseline; "lim": a latching alarm whose limit a
@@ -134,14 +149,7 @@ fn discontinuities(ch: &ChannelShared) -> u64 {
 async fn reload_keeps_changes_adds_removes_and_refuses() {
     let dir = temp_dir("cases");
     let port = free_udp_port();
-    let knobs = Knobs {
-        workers: 2,
-        lim_danger: 2.0,
-        gone: true,
-        new: false,
-        daq_port: port,
-        kept_extra: "",
-    };
+    let knobs = Knobs::first(2, port);
     let mut p = Pipeline::start(&parse(&config_text(&dir, &knobs))).expect("pipeline");
     let st0 = p.live.load_full();
     let kept = channel(&st0, "kept");
@@ -303,12 +311,8 @@ async fn reload_keeps_changes_adds_removes_and_refuses() {
 async fn a_changed_signal_setting_restarts_the_channel_and_keeps_its_latch() {
     let dir = temp_dir("restart");
     let knobs = Knobs {
-        workers: 1,
-        lim_danger: 2.0,
         gone: false,
-        new: false,
-        daq_port: free_udp_port(),
-        kept_extra: "",
+        ..Knobs::first(1, free_udp_port())
     };
     let mut p = Pipeline::start(&parse(&config_text(&dir, &knobs))).expect("pipeline");
     let kept = channel(&p.live.load_full(), "kept");
@@ -363,14 +367,7 @@ async fn request(
 async fn post_reload_needs_the_token_and_answers_every_problem() {
     let dir = temp_dir("http");
     let file = dir.join("bandwatch.toml");
-    let knobs = Knobs {
-        workers: 1,
-        lim_danger: 2.0,
-        gone: true,
-        new: false,
-        daq_port: free_udp_port(),
-        kept_extra: "",
-    };
+    let knobs = Knobs::first(1, free_udp_port());
     std::fs::write(&file, config_text(&dir, &knobs)).expect("write");
     let cfg = bandwatch::config::load(&file).expect("config");
     let listener = tokio::net::TcpListener::bind("127.0.0.1:0")
@@ -453,14 +450,7 @@ async fn post_reload_needs_the_token_and_answers_every_problem() {
 fn sighup_reloads_the_real_daemon() {
     let dir = temp_dir("sighup");
     let file = dir.join("bandwatch.toml");
-    let knobs = Knobs {
-        workers: 1,
-        lim_danger: 2.0,
-        gone: true,
-        new: false,
-        daq_port: free_udp_port(),
-        kept_extra: "",
-    };
+    let knobs = Knobs::first(1, free_udp_port());
     let http = free_tcp_port();
     let text = |k: &Knobs<'_>| {
         config_text(&dir, k).replacen("127.0.0.1:0", &format!("127.0.0.1:{http}"), 1)
