@@ -122,6 +122,15 @@ impl Unit {
             })
     }
 
+    /// Every unit, one entry per canonical symbol, in table order.
+    pub fn all() -> impl Iterator<Item = Unit> {
+        UNITS.iter().map(|&(_, symbol, quantity, to_si)| Unit {
+            symbol,
+            quantity,
+            to_si,
+        })
+    }
+
     /// Every spelling the config accepts, for error messages.
     pub fn known() -> String {
         UNITS

@@ -2,7 +2,11 @@
 // #/channel/NAME) and keeps the chosen one updated.
 
 import * as overview from "./overview.js";
+import { getJSON } from "./api.js";
+import { navLinks } from "./ui.js";
 import * as channelView from "./channel.js";
+import * as alarmsView from "./alarms.js";
+import * as captureView from "./capture.js";
 
 const linkState = document.getElementById("link-state");
 let current = null;
@@ -12,13 +16,25 @@ export function setLink(ok, text) {
   linkState.classList.toggle("st-fault", !ok);
 }
 
+const VIEWS = [
+  [/^#\/channel\/(.+)$/, "channel", (m) => channelView.start(decodeURIComponent(m[1]), setLink)],
+  [/^#\/alarms$/, "alarms", () => alarmsView.start(setLink)],
+  [/^#\/event\/(.+)$/, "capture", (m) => captureView.start(decodeURIComponent(m[1]), setLink)],
+  [/^/, "overview", () => overview.start(setLink)],
+];
+
 function route() {
-  const m = location.hash.match(/^#\/channel\/(.+)$/);
   if (current) current.stop();
-  document.getElementById("overview").hidden = Boolean(m);
-  document.getElementById("channel").hidden = !m;
-  current = m ? channelView.start(decodeURIComponent(m[1]), setLink) : overview.start(setLink);
+  const [re, id, start] = VIEWS.find(([r]) => r.test(location.hash));
+  for (const [, other] of VIEWS) document.getElementById(other).hidden = other !== id;
+  for (const a of document.querySelectorAll("header nav a")) {
+    if (a.getAttribute("href") === location.hash || (a.id === "nav-overview" && id === "overview")) a.setAttribute("aria-current", "page");
+    else a.removeAttribute("aria-current");
+  }
+  current = start(location.hash.match(re));
 }
 
 window.addEventListener("hashchange", route);
 route();
+// The channel links, whatever view the page was opened on.
+getJSON("/api/v1/channels").then((l) => navLinks(l.channels.map((c) => c.name))).catch(() => {});

@@ -1,30 +1,11 @@
 // Overview: every channel (source, health, worst alarm, overall level,
 // bands with limits), the machines with their speed, and the counters of
-// lost data. Polls the public API every 1.5 s.
+// lost data. One call per update (GET /api/v1/overview) every 1.5 s.
 
 import * as api from "./api.js";
-import { el, num, badge, healthBadge } from "./ui.js";
+import { el, num, badge, healthBadge, poller, navLinks } from "./ui.js";
 
 const PERIOD_MS = 1500;
-
-function poller(task, period) {
-  let timer = null;
-  let stopped = false;
-  const tick = async () => {
-    await task();
-    if (!stopped) timer = setTimeout(tick, period);
-  };
-  tick();
-  return { stop() { stopped = true; clearTimeout(timer); } };
-}
-export { poller };
-
-function navLinks(names) {
-  const nav = document.getElementById("nav-channels");
-  if (nav.dataset.names === names.join("\n")) return;
-  nav.dataset.names = names.join("\n");
-  nav.replaceChildren(...names.map((n) => el("a", { href: `#/channel/${encodeURIComponent(n)}`, text: n })));
-}
 
 function bandCell(d) {
   const limits = new Map((d.alarms || []).map((a) => [a.band, a]));
@@ -59,33 +40,30 @@ function row(d) {
   );
 }
 
-function machines(details) {
-  const seen = new Map();
-  for (const d of details) if (d.machine && !seen.has(d.machine.name)) seen.set(d.machine.name, d.machine);
-  return [...seen.values()].map((m) => el("tr", {},
+function machines(list) {
+  return list.map((m) => el("tr", {},
     el("th", { scope: "row", text: m.name }),
     el("td", { class: "num" }, m.speed_hz == null ? badge("fault", "speed unknown")
       : `${num(m.speed_rpm, 5)} rpm (${num(m.speed_hz, 4)} Hz)`),
     el("td", { text: m.speed_source }),
-    el("td", { class: "num", text: String(m.speed_late_results) }),
+    el("td", { class: "num", text: String(m.speed_late_results ?? m.late_results ?? "–") }),
   ));
 }
 
-function losses(details) {
+function losses(details, sources) {
   const rows = [];
-  const sources = new Map();
   for (const d of details) {
     const c = d.counters || {};
     for (const [reason, n] of Object.entries(c.samples_dropped || {})) {
       rows.push([d.name, `samples dropped: ${reason}`, n]);
     }
-    if (d.source && d.source.counters) sources.set(d.source.name, d.source.counters);
   }
-  for (const [name, c] of sources) {
+  for (const s of sources) {
+    const c = s.counters || {};
     for (const k of ["crc_errors", "missing_samples", "late_frames", "resyncs", "skipped_bytes"]) {
-      if (k in c) rows.push([`source ${name}`, k.replace(/_/g, " "), c[k]]);
+      if (k in c) rows.push([`source ${s.name}`, k.replace(/_/g, " "), c[k]]);
     }
-    for (const [reason, n] of Object.entries(c.rejected || {})) rows.push([`source ${name}`, `rejected: ${reason}`, n]);
+    for (const [reason, n] of Object.entries(c.rejected || {})) rows.push([`source ${s.name}`, `rejected: ${reason}`, n]);
   }
   return rows.map(([w, k, n]) => el("tr", n > 0 ? { class: "abnormal" } : {},
     el("td", { text: w }), el("td", { text: k }),
@@ -110,13 +88,12 @@ function updateRows(tbody, rows) {
 export function start(setLink) {
   return poller(async () => {
     try {
-      const list = await api.channels();
-      const names = list.channels.map((c) => c.name);
-      navLinks(names);
-      const details = await Promise.all(names.map((n) => api.channel(n)));
+      const o = await api.overview();
+      const details = o.channels;
+      navLinks(details.map((d) => d.name));
       updateRows(document.querySelector("#channels tbody"), details.map(row));
-      document.querySelector("#machines tbody").replaceChildren(...machines(details));
-      document.querySelector("#losses tbody").replaceChildren(...losses(details));
+      document.querySelector("#machines tbody").replaceChildren(...machines(o.machines || []));
+      document.querySelector("#losses tbody").replaceChildren(...losses(details, o.sources || []));
       setLink(true, `live · updated ${new Date().toLocaleTimeString()}`);
     } catch (e) {
       setLink(false, `no data: ${e.message}`);

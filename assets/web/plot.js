@@ -1,4 +1,8 @@
-// Spectrum plot on canvas, written for this page.
+// Spectrum and waveform plots on canvas, written for this page.
+//
+// One class draws both: x is frequency (Hz) for a spectrum and time (s)
+// for a waveform (`kind: "waveform"`: signed values, no log scale, no
+// bands or harmonic cursors; a trip marker may be set).
 //
 // Display decimation: each pixel column draws the min..max of every line
 // that falls in it, so no line is skipped and a peak is never lost,
@@ -45,15 +49,19 @@ export function highestPeak(values, i0, i1) {
 }
 
 export class SpectrumPlot {
-  constructor(canvas, onCursor) {
+  constructor(canvas, onCursor, opts = {}) {
     this.canvas = canvas;
     this.onCursor = onCursor;
-    this.data = null; // { f0, df, values, unit }
+    this.kind = opts.kind || "spectrum";
+    this.data = null; // { f0, df, values, unit }: x of values[i] is f0 + i·df
     this.view = null; // [fmin, fmax] or null for the full span
     this.log = false;
     this.speedHz = null;
     this.harmonics = 10;
     this.bands = []; // { name, lo, hi, state }
+    // Alarm limits over a band's span: { lo, hi, value, state: "alert"|"danger", band }
+    this.limits = [];
+    this.markers = []; // vertical markers: { x, label }
     this.cursor = null; // line index
     this.drag = null;
     this.peak = null;
@@ -92,7 +100,9 @@ export class SpectrumPlot {
     return a + ((x - box.x) / box.w) * (b - a);
   }
 
-  amp(v) { return this.log ? Math.max(DB_FLOOR, 20 * Math.log10(v > 0 ? v : 1e-30)) : v; }
+  get waveform() { return this.kind === "waveform"; }
+
+  amp(v) { return this.log && !this.waveform ? Math.max(DB_FLOOR, 20 * Math.log10(v > 0 ? v : 1e-30)) : v; }
 
   zoom(factor, centreF) {
     const [a, b] = this.span(), [fa, fb] = this.full();
@@ -189,7 +199,15 @@ export class SpectrumPlot {
       if (v > top) top = v;
       if (v < bottom) bottom = v;
     }
-    if (this.log) { bottom = Math.max(bottom, top - 100); top += 6; } else { bottom = 0; top = top > 0 ? top * 1.12 : 1; }
+    if (this.waveform) {
+      const m = Math.max(Math.abs(top), Math.abs(bottom)) * 1.12 || 1;
+      top = m; bottom = -m;
+    } else if (this.log) {
+      bottom = Math.max(bottom, top - 100); top += 6;
+    } else {
+      for (const l of this.limits) if (l.hi >= fa && l.lo <= fb && l.value > top) top = l.value;
+      bottom = 0; top = top > 0 ? top * 1.12 : 1;
+    }
     if (!(top > bottom)) top = bottom + 1;
     const yOf = (v) => box.y + box.h - ((Math.max(bottom, v) - bottom) / (top - bottom)) * box.h;
 
@@ -206,6 +224,30 @@ export class SpectrumPlot {
       if (x1 - x0 > g.measureText(label).width + 4) g.fillText(label, x0 + 2, box.y + 14);
     }
 
+    // Alarm limits over their band's span: dashed, with the word and the
+    // state's shape (▲ alert, ◆ danger) so colour is never the only cue.
+    for (const l of this.limits) {
+      if (l.hi < fa || l.lo > fb) continue;
+      const x0 = Math.max(box.x, this.xOf(l.lo)), x1 = Math.min(box.x + box.w, this.xOf(l.hi));
+      const y = Math.round(yOf(this.amp(l.value))) + 0.5;
+      g.setLineDash(l.state === "danger" ? [8, 3] : [3, 3]);
+      g.strokeStyle = css(l.state === "danger" ? "--danger" : "--alert-ink");
+      g.lineWidth = 2;
+      g.beginPath(); g.moveTo(x0, y); g.lineTo(Math.max(x0 + 2, x1), y); g.stroke();
+      g.setLineDash([]); g.lineWidth = 1;
+      g.fillStyle = ink;
+      const text = `${l.state === "danger" ? "◆ danger" : "▲ alert"} ${fmt(l.value)}`;
+      if (x1 - x0 > g.measureText(text).width + 4) g.fillText(text, x0 + 2, y - 3);
+    }
+    for (const m of this.markers) {
+      if (m.x < fa || m.x > fb) continue;
+      const x = Math.round(this.xOf(m.x)) + 0.5;
+      g.strokeStyle = ink; g.setLineDash([6, 3]); g.lineWidth = 1.5;
+      g.beginPath(); g.moveTo(x, box.y); g.lineTo(x, box.y + box.h); g.stroke();
+      g.setLineDash([]); g.lineWidth = 1;
+      g.fillStyle = ink; g.fillText(m.label, x + 4, box.y + 14);
+    }
+
     // Grid and axes.
     g.strokeStyle = faint; g.fillStyle = ink; g.lineWidth = 1;
     for (const f of niceTicks(fa, fb, 8)) {
@@ -219,7 +261,7 @@ export class SpectrumPlot {
 
     // Harmonic cursors at multiples of the running speed.
     this.harmonicHz = [];
-    if (this.speedHz > 0 && this.harmonics > 0) {
+    if (!this.waveform && this.speedHz > 0 && this.harmonics > 0) {
       g.setLineDash([4, 4]); g.strokeStyle = css("--cursor");
       // Too close together to tell apart: listed in the readout, not drawn.
       const gap = this.xOf(fa + this.speedHz) - this.xOf(fa);
@@ -263,8 +305,8 @@ export class SpectrumPlot {
     }
     g.stroke();
 
-    // Highest peak in view, labelled.
-    const pk = highestPeak(d.values, i0, i1);
+    // Highest peak in view, labelled (spectra only).
+    const pk = this.waveform ? null : highestPeak(d.values, i0, i1);
     this.peak = pk && { hz: d.f0 + (pk.line + pk.offset) * d.df, value: pk.value };
     if (this.peak) {
       const x = this.xOf(this.peak.hz), y = yOf(this.amp(pk.value));
@@ -288,11 +330,11 @@ export class SpectrumPlot {
     g.strokeRect(box.x + 0.5, box.y + 0.5, box.w, box.h);
     g.textAlign = "center";
     for (const f of niceTicks(fa, fb, 8)) g.fillText(fmt(f), this.xOf(f), box.y + box.h + 16);
-    g.fillText("frequency (Hz)", box.x + box.w / 2, box.y + box.h + 32);
+    g.fillText(this.waveform ? "time (s)" : "frequency (Hz)", box.x + box.w / 2, box.y + box.h + 32);
     g.textAlign = "right";
     for (const v of niceTicks(bottom, top, 5)) g.fillText(fmt(v), box.x - 6, yOf(v) + 4);
     g.save(); g.translate(14, box.y + box.h / 2); g.rotate(-Math.PI / 2); g.textAlign = "center";
-    g.fillText(this.log ? `dB re 1 ${d.unit}` : d.unit, 0, 0); g.restore();
+    g.fillText(this.log && !this.waveform ? `dB re 1 ${d.unit}` : d.unit, 0, 0); g.restore();
     g.textAlign = "left";
 
     this.onCursor(this);

@@ -48,3 +48,29 @@ export function healthBadge(detail) {
   if (detail.stale) reasons.push("stale");
   return badge("fault", reasons.join(", ") || "not OK");
 }
+
+// Runs `task` now and again `period` ms after each run ends (never two at
+// once, however slow the answers), until stopped.
+export function poller(task, period) {
+  let timer = null;
+  let stopped = false;
+  const tick = async () => {
+    await task();
+    if (!stopped) timer = setTimeout(tick, period);
+  };
+  tick();
+  return { stop() { stopped = true; clearTimeout(timer); } };
+}
+
+// A download link (same origin; the daemon names the file).
+export function download(href, text) {
+  return el("a", { href, download: "", class: "download", text });
+}
+
+// The channel links in the top bar (rebuilt only when the list changes).
+export function navLinks(names) {
+  const nav = document.getElementById("nav-channels");
+  if (nav.dataset.names === names.join("\n")) return;
+  nav.dataset.names = names.join("\n");
+  nav.replaceChildren(...names.map((n) => el("a", { href: `#/channel/${encodeURIComponent(n)}`, text: n })));
+}

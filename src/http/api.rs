@@ -214,6 +214,10 @@ struct ChannelSummary<'a> {
     alarm_state: Option<&'static str>,
     unit: &'static str,
     quantity: &'static str,
+    /// Every unit the spectrum endpoint's `unit=` takes for this channel
+    /// (its own first), and every `scaling=`.
+    spectrum_units: Vec<&'static str>,
+    spectrum_scalings: Vec<&'static str>,
     sample_rate_hz: f64,
     block: usize,
     nfft: usize,
@@ -263,6 +267,14 @@ fn summary<'a>(
         name: &spec.name,
         unit: spec.unit.symbol,
         quantity: spec.unit.quantity.as_str(),
+        spectrum_units: std::iter::once(spec.unit.symbol)
+            .chain(
+                Unit::all()
+                    .filter(|&u| u.symbol != spec.unit.symbol && convertible(spec.unit, u))
+                    .map(|u| u.symbol),
+            )
+            .collect(),
+        spectrum_scalings: Scaling::ALL.map(Scaling::as_str).to_vec(),
         sample_rate_hz: spec.sample_rate_hz,
         block: spec.block,
         nfft: spec.nfft,

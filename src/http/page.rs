@@ -75,6 +75,21 @@ pub const ASSETS: &[Asset] = &[
         content_type: "text/javascript; charset=utf-8",
         body: include_str!("../../assets/web/channel.js"),
     },
+    Asset {
+        name: "trend.js",
+        content_type: "text/javascript; charset=utf-8",
+        body: include_str!("../../assets/web/trend.js"),
+    },
+    Asset {
+        name: "alarms.js",
+        content_type: "text/javascript; charset=utf-8",
+        body: include_str!("../../assets/web/alarms.js"),
+    },
+    Asset {
+        name: "capture.js",
+        content_type: "text/javascript; charset=utf-8",
+        body: include_str!("../../assets/web/capture.js"),
+    },
 ];
 
 /// The strong ETag of each asset (quoted hex SHA-256 of its bytes, in the

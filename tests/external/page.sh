@@ -26,7 +26,7 @@ cd "$root"
 
 work="$(mktemp -d "${TMPDIR:-/tmp}/bandwatch-page.XXXXXX")"
 shots="${CARGO_TARGET_DIR:-$root/target}/page-screenshots"
-bw_pid=""
+pids=""
 
 stop_pid() { # pid: TERM, wait up to 10 s, then KILL
     local pid="$1"
@@ -41,7 +41,7 @@ stop_pid() { # pid: TERM, wait up to 10 s, then KILL
 }
 
 cleanup() {
-    stop_pid "$bw_pid"
+    for pid in $pids; do stop_pid "$pid"; done
     rm -rf "$work"
 }
 trap cleanup EXIT
@@ -49,10 +49,11 @@ trap cleanup EXIT
 step() { printf '== %s\n' "$*"; }
 fail() {
     printf 'page: FAIL: %s\n' "$*" >&2
-    if [ -s "$work/bandwatch.log" ]; then
-        printf -- '--- last lines of bandwatch.log:\n' >&2
-        tail -n 20 "$work/bandwatch.log" >&2
-    fi
+    for log in "$work"/*.log; do
+        [ -s "$log" ] || continue
+        printf -- '--- last lines of %s:\n' "$(basename "$log")" >&2
+        tail -n 20 "$log" >&2
+    done
     exit 1
 }
 
@@ -72,35 +73,49 @@ if [ -z "$bin" ]; then
 fi
 [ -x "$bin" ] || fail "no bandwatch binary at $bin"
 
-step "start bandwatch run --config config/demo.toml --listen 127.0.0.1:0"
-NO_COLOR=1 RUST_LOG=info "$bin" run --config config/demo.toml --listen 127.0.0.1:0 \
-    --state-dir "$work/state" >"$work/bandwatch.log" 2>&1 &
-bw_pid=$!
-bw=""
-for _ in $(seq 1 100); do
-    kill -0 "$bw_pid" 2>/dev/null || fail "bandwatch exited at start"
-    bw="$(grep -o 'http://127\.0\.0\.1:[0-9]*' "$work/bandwatch.log" | head -n 1 || true)"
-    [ -n "$bw" ] && break
-    sleep 0.1
-done
-[ -n "$bw" ] || fail "bandwatch did not log its listen address within 10 s"
-echo "   listening on $bw"
+# start_demo NAME CONFIG: runs `bandwatch run` on 127.0.0.1:0 with its own
+# state directory, waits for its address (10 s) and /readyz (30 s); sets
+# $url and appends the pid to $pids.
+start_demo() {
+    local name="$1" config="$2" log="$work/$1.log"
+    step "start $name: bandwatch run --config $config --listen 127.0.0.1:0"
+    NO_COLOR=1 RUST_LOG=info "$bin" run --config "$config" --listen 127.0.0.1:0 \
+        --state-dir "$work/$name/state" >"$log" 2>&1 &
+    local pid=$!
+    pids="$pids $pid"
+    url=""
+    for _ in $(seq 1 100); do
+        kill -0 "$pid" 2>/dev/null || fail "$name exited at start (log: $log)"
+        url="$(grep -o 'http://127\.0\.0\.1:[0-9]*' "$log" | head -n 1 || true)"
+        [ -n "$url" ] && break
+        sleep 0.1
+    done
+    [ -n "$url" ] || fail "$name did not log its listen address within 10 s"
+    for _ in $(seq 1 300); do
+        if [ "$(curl -s -o /dev/null -w '%{http_code}' --max-time 2 "$url/readyz" || true)" = 200 ]; then
+            echo "   $name ready on $url"
+            return 0
+        fi
+        sleep 0.1
+    done
+    fail "$name not ready within 30 s"
+}
 
-step "wait for $bw/readyz (up to 30 s)"
-ready=""
-for _ in $(seq 1 300); do
-    if [ "$(curl -s -o /dev/null -w '%{http_code}' --max-time 2 "$bw/readyz" || true)" = 200 ]; then
-        ready=1
-        break
-    fi
-    sleep 0.1
-done
-[ -n "$ready" ] || fail "bandwatch not ready within 30 s"
+start_demo demo config/demo.toml
+bw="$url"
+# The same demo with the simulator 10 times faster: its outer-race defect
+# grows through alert to danger within seconds (the demo's own 200 s cycle).
+mkdir -p "$work/fast-config"
+sed 's/^seed = 2$/seed = 2\nspeed = 10.0/' config/demo.toml >"$work/fast-config/demo.toml"
+grep -q '^speed = 10.0$' "$work/fast-config/demo.toml" || fail "could not speed up the demo's simulator"
+cp config/demo-token "$work/fast-config/demo-token"
+start_demo fast "$work/fast-config/demo.toml"
+fast="$url"
 
 step "page bytes (index.html and every asset it loads)"
 total=0
-for p in / /assets/app.css /assets/app.js /assets/api.js /assets/ui.js /assets/overview.js \
-    /assets/channel.js /assets/plot.js; do
+for f in assets/web/*; do
+    p="/assets/$(basename "$f")"
     n="$(curl -sf --max-time 5 -o /dev/null -w '%{size_download}' "$bw$p")" || fail "GET $p failed"
     total=$((total + n))
 done
@@ -108,18 +123,20 @@ echo "   $total bytes uncompressed"
 
 step "chromium loads the page (screenshots in $shots)"
 rm -rf "$shots"
-timeout 120 node tests/external/web/page.mjs "$bw" "$shots" || fail "the browser checks failed (above)"
+timeout 240 node tests/external/web/page.mjs "$bw" "$shots" "$fast" config/demo-token || fail "the browser checks failed (above)"
 ls "$shots"
 
-step "SIGTERM: bandwatch exits 0 within 10 s"
-kill -TERM "$bw_pid"
-rc=0
-for _ in $(seq 1 100); do
-    kill -0 "$bw_pid" 2>/dev/null || break
-    sleep 0.1
+step "SIGTERM: each bandwatch exits 0 within 10 s"
+for pid in $pids; do
+    kill -TERM "$pid"
+    for _ in $(seq 1 100); do
+        kill -0 "$pid" 2>/dev/null || break
+        sleep 0.1
+    done
+    kill -0 "$pid" 2>/dev/null && fail "bandwatch $pid still running 10 s after SIGTERM"
+    rc=0
+    wait "$pid" || rc=$?
+    [ "$rc" = 0 ] || fail "bandwatch $pid exited $rc after SIGTERM"
 done
-kill -0 "$bw_pid" 2>/dev/null && fail "bandwatch still running 10 s after SIGTERM"
-wait "$bw_pid" || rc=$?
-bw_pid=""
-[ "$rc" = 0 ] || fail "bandwatch exited $rc after SIGTERM"
+pids=""
 echo "page: OK"

@@ -275,6 +275,48 @@ async fn spectrum_in_velocity_from_acceleration() {
     assert_json_error(&r, StatusCode::BAD_REQUEST, "not known");
 }
 
+/// The channel JSON offers exactly the units and scalings the spectrum
+/// endpoint takes (the operator page fills its menus from them): each one
+/// offered is answered 200 in that unit, and a unit left out is refused.
+#[tokio::test]
+async fn offered_units_and_scalings_are_the_accepted_ones() {
+    let st = ready_state();
+    let v = get(&st, "/api/v1/channels/a").await.json();
+    let units: Vec<String> = v["spectrum_units"]
+        .as_array()
+        .expect("spectrum_units")
+        .iter()
+        .map(|u| u.as_str().expect("unit").to_string())
+        .collect();
+    assert_eq!(units[0], "g", "the channel's own unit first");
+    // Acceleration converts to every kinematic unit (common practice:
+    // integrate once for velocity, twice for displacement), nothing else.
+    for u in ["m/s^2", "mm/s", "in/s", "um", "mil"] {
+        assert!(units.iter().any(|x| x == u), "{u} not offered: {units:?}");
+    }
+    for u in ["V", "mA", "bar"] {
+        assert!(!units.iter().any(|x| x == u), "{u} offered: {units:?}");
+        let r = get(&st, &format!("/api/v1/channels/a/spectrum?unit={u}")).await;
+        assert_eq!(r.status, StatusCode::BAD_REQUEST, "{u}");
+    }
+    for u in &units {
+        let q = u.replace('^', "%5E").replace('/', "%2F");
+        let r = get(&st, &format!("/api/v1/channels/a/spectrum?unit={q}")).await;
+        assert_eq!(r.status, StatusCode::OK, "{u}: {}", r.body);
+        assert_eq!(r.json()["unit"], u.as_str());
+    }
+    let scalings = v["spectrum_scalings"]
+        .as_array()
+        .expect("spectrum_scalings");
+    assert_eq!(scalings.len(), 5);
+    for s in scalings {
+        let s = s.as_str().expect("scaling");
+        let r = get(&st, &format!("/api/v1/channels/a/spectrum?scaling={s}")).await;
+        assert_eq!(r.status, StatusCode::OK, "{s}: {}", r.body);
+        assert_eq!(r.json()["scaling"], s);
+    }
+}
+
 #[tokio::test]
 async fn spectrum_crop() {
     let st = ready_state();

@@ -1,15 +1,18 @@
 // Loads the operator page in Debian's chromium (driven by playwright-core,
 // no browser download) against a running daemon and checks what an
-// operator sees. Usage: node page.mjs BASE_URL SCREENSHOT_DIR
+// operator sees. Usage: node page.mjs BASE_URL SCREENSHOT_DIR FAST_URL TOKEN_FILE
+// BASE_URL runs the demo as shipped; FAST_URL the demo with its simulator
+// sped up 10 times (its bearing defect trips the BPFO alarm within
+// seconds), whose token is in TOKEN_FILE.
 // Exit 0 on success, 1 with the reason on stderr otherwise.
 import { chromium } from "playwright-core";
 import fs from "node:fs";
 import os from "node:os";
 import path from "node:path";
 
-const [base, shots] = process.argv.slice(2);
-if (!base || !shots) {
-  console.error("usage: node page.mjs BASE_URL SCREENSHOT_DIR");
+const [base, shots, fast, tokenFile] = process.argv.slice(2);
+if (!base || !shots || !fast || !tokenFile) {
+  console.error("usage: node page.mjs BASE_URL SCREENSHOT_DIR FAST_URL TOKEN_FILE");
   process.exit(2);
 }
 fs.mkdirSync(shots, { recursive: true });
@@ -26,12 +29,57 @@ const CHANNELS = ["motor-de", "pump-de", "pump-nde", "tach"];
 const problems = [];
 const fail = (msg) => { problems.push(msg); };
 
+// Dark pixels on a canvas: the plot has ink on it, not only its frame.
+async function inkOf(page, sel) {
+  return page.$eval(sel, (c) => {
+    const d = c.getContext("2d").getImageData(0, 0, c.width, c.height).data;
+    let dark = 0;
+    for (let i = 0; i < d.length; i += 4) if (d[i] < 80 && d[i + 1] < 80 && d[i + 2] < 80) dark++;
+    return dark;
+  });
+}
+
+// Clicks a download link and checks what arrives: CSV with a header and
+// numeric rows; SVG that parses as XML (in the page's own DOMParser) and
+// names the channel; BWF1 by its magic.
+async function checkDownload(page, sel, kind, channelName) {
+  const [dl] = await Promise.all([page.waitForEvent("download"), page.click(sel)]);
+  const file = await dl.path();
+  const bytes = fs.readFileSync(file);
+  const name = dl.suggestedFilename();
+  if (kind === "csv") {
+    const lines = bytes.toString("utf8").trim().split(/\r?\n/);
+    const rows = lines.slice(1).map((l) => l.split(",").map(Number));
+    if (lines.length < 100) fail(`${sel}: CSV has ${lines.length} lines`);
+    if (!/[a-z]/i.test(lines[0])) fail(`${sel}: CSV has no header: ${lines[0]}`);
+    if (rows.some((r) => r.some((v) => !Number.isFinite(v)))) fail(`${sel}: CSV has a non-numeric cell`);
+    if (!name.endsWith(".csv")) fail(`${sel}: file name ${name}`);
+  } else if (kind === "svg") {
+    const text = bytes.toString("utf8");
+    // Parsed in a blank page of its own: the file is a download, not part
+    // of the operator page (whose CSP is not the subject here).
+    const blank = await page.context().newPage();
+    const res = await blank.evaluate((t) => {
+      const doc = new DOMParser().parseFromString(t, "image/svg+xml");
+      return { error: doc.querySelector("parsererror") !== null, root: doc.documentElement.nodeName, text: doc.documentElement.textContent };
+    }, text);
+    await blank.close();
+    if (res.error || res.root !== "svg") fail(`${sel}: SVG does not parse (root ${res.root})`);
+    if (channelName && !res.text.includes(channelName)) fail(`${sel}: SVG does not name ${channelName}`);
+    if (!name.endsWith(".svg")) fail(`${sel}: file name ${name}`);
+  } else if (kind === "bwf1") {
+    if (bytes.length < 64 || bytes.subarray(0, 4).toString("latin1") !== "BWF1") fail(`${sel}: not a BWF1 file (${bytes.length} bytes)`);
+  }
+  console.log(`download ${name}: ${bytes.length} bytes, ${kind} ok`);
+}
+
 // A fresh profile directory (playwright passes it as --user-data-dir).
 const browser = await chromium.launchPersistentContext(profile, {
   executablePath: process.env.CHROMIUM || "/usr/bin/chromium",
   headless: true,
   timeout: 30000,
   viewport: { width: 1280, height: 800 },
+  acceptDownloads: true,
   args: ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
     "--disable-background-networking", "--disable-component-update", "--disable-sync"],
 });
@@ -40,11 +88,18 @@ try {
   page.setDefaultTimeout(15000);
   const consoleErrors = [];
   const foreign = [];
-  page.on("console", (m) => { if (m.type() === "error") consoleErrors.push(m.text()); });
+  // The one error the browser itself logs on purpose: the refused
+  // acknowledge with a wrong token (a 401 answer to that POST).
+  let expected401 = 0;
+  page.on("console", (m) => {
+    if (m.type() !== "error") return;
+    if (expected401 > 0 && /status of 401/.test(m.text()) && /\/ack$/.test(m.location().url)) { expected401--; return; }
+    consoleErrors.push(m.text());
+  });
   page.on("pageerror", (e) => consoleErrors.push(`uncaught: ${e.message}`));
   page.on("request", (r) => {
     const u = new URL(r.url());
-    if (u.protocol !== "data:" && u.origin !== new URL(base).origin) foreign.push(r.url());
+    if (u.protocol !== "data:" && u.origin !== new URL(base).origin && u.origin !== new URL(fast).origin) foreign.push(r.url());
   });
 
   // Overview.
@@ -139,6 +194,85 @@ try {
   if (dec.dark < 3) fail(`a one-line spike among 65537 lines is not drawn (${dec.dark} dark pixels in its column)`);
   if (Math.abs(dec.peakHz - 40001 * 0.390625) > 0.2) fail(`65537-line peak at ${dec.peakHz} Hz`);
   console.log(`65537-line spectrum drawn in ${dec.ms.toFixed(1)} ms (one draw, headless, no GPU)`);
+
+  // --- Channel view, the rest: waveform, band signal, units, envelope,
+  // trend, and the downloads of what is shown (CSV and SVG parse).
+  await page.selectOption("#amp-scale", "lin");
+  await page.click("#zoom-reset");
+  await page.locator('#wave-facts:has-text("samples at")').waitFor();
+  const waveInk = await inkOf(page, "#waveform");
+  if (waveInk < 300) fail(`waveform canvas has only ${waveInk} dark pixels`);
+  const units = await page.$$eval("#spec-unit option", (o) => o.map((x) => x.value));
+  for (const u of ["g", "m/s^2", "mm/s", "um"]) if (!units.includes(u)) fail(`unit ${u} not offered (offered: ${units})`);
+  await page.selectOption("#spec-unit", "mm/s");
+  await page.locator('#channel-facts:has-text("rms mm/s")').waitFor();
+  // The envelope spectrum (pump-de's BPFO band and its alarm limits).
+  await page.selectOption("#spec-unit", "g");
+  await page.selectOption("#spec-kind", "envelope");
+  await page.locator('#channel-facts:has-text("envelope spectrum")').waitFor();
+  await page.selectOption("#wave-kind", "band:vane-pass");
+  await page.locator('#wave-facts:has-text("band vane-pass signal")').waitFor();
+  await page.waitForTimeout(2500); // a few trend points
+  await page.screenshot({ path: path.join(shots, "channel-pump-de-envelope.png"), fullPage: true });
+  const trendInk = await inkOf(page, "#trend");
+  if (trendInk < 50) fail(`trend canvas has only ${trendInk} dark pixels`);
+  for (const [link, kind] of [["spectrum CSV", "csv"], ["spectrum SVG", "svg"], ["waveform CSV", "csv"], ["waveform SVG", "svg"]]) {
+    await checkDownload(page, `#channel a.download:text-is("${link}")`, kind, "pump-de");
+  }
+
+  // --- Alarms on the sped-up demo: BPFO trips to danger (latched). The
+  // wrong token is entered first, so that both acknowledges come within a
+  // second of the trip, while the simulated defect is still in danger.
+  await page.goto(`${fast}/#/alarms`, { waitUntil: "load" });
+  await page.fill("#token-input", "not-the-token");
+  await page.click('#token-form button[type="submit"]');
+  const bpfoRow = page.locator('#alarm-table tbody tr[data-key="pump-de/bpfo"]');
+  const ackButton = bpfoRow.locator('button[data-act="ack"]');
+  await bpfoRow.and(page.locator('[data-state="danger"]')).waitFor({ timeout: 60000 });
+  await ackButton.waitFor();
+  const rowText = await bpfoRow.textContent();
+  if (!/◆\s*danger/.test(rowText) || !/latched/.test(rowText)) fail(`BPFO row reads "${rowText}"`);
+  if (!(await page.textContent("#alarm-caution")).includes("not a machinery protection")) fail("alarm caution missing");
+  // The wrong token: refused, and said so.
+  expected401 = 1;
+  await ackButton.click();
+  await page.locator('#alarm-message[data-outcome="refused"]').waitFor();
+  const refusal = await page.textContent("#alarm-message");
+  if (!/refused: the token was not accepted/.test(refusal)) fail(`wrong token message "${refusal}"`);
+  // The right token, kept only in the tab's session storage.
+  const good = fs.readFileSync(tokenFile, "utf8").trim();
+  await page.fill("#token-input", good);
+  await page.click('#token-form button[type="submit"]');
+  const stored = await page.evaluate(() => sessionStorage.getItem("bandwatch.token"));
+  if (stored !== good) fail("the token is not kept in session storage");
+  if (await page.evaluate(() => localStorage.length) !== 0) fail("something was put in local storage");
+  if (page.url().includes(good)) fail("the token shows in the address");
+  await ackButton.click();
+  await page.locator('#alarm-message[data-outcome="ok"]').waitFor();
+  // Acknowledged: shown as such while the defect stays in danger; once it
+  // has cleared, an acknowledged latch lets go and the row reads normal.
+  // Either way the button is gone and the journal lists the acknowledge.
+  await ackButton.waitFor({ state: "detached" });
+  const after = await bpfoRow.textContent();
+  const afterState = await bpfoRow.getAttribute("data-state");
+  if (!/acknowledged/.test(after) && afterState !== "normal") fail(`after acknowledge the BPFO row reads "${after}"`);
+  console.log(`after acknowledge: ${afterState}, "${after.replace(/\s+/g, " ").slice(0, 90)}"`);
+  await page.locator('#event-table tbody tr:has(td:text-is("bpfo")):has-text("ack")').first().waitFor();
+  await page.screenshot({ path: path.join(shots, "alarms.png"), fullPage: true });
+
+  // --- A capture: its spectrum and waveform drawn, its downloads parse.
+  await page.locator('#event-table a:text-is("show capture")').first().waitFor({ timeout: 30000 });
+  await page.locator('#event-table a:text-is("show capture")').first().click();
+  await page.locator('#capture-waveform-facts:has-text("samples at")').waitFor();
+  const capSpec = await inkOf(page, "#capture-spectrum");
+  const capWave = await inkOf(page, "#capture-waveform");
+  if (capSpec < 300) fail(`capture spectrum has only ${capSpec} dark pixels`);
+  if (capWave < 300) fail(`capture waveform has only ${capWave} dark pixels`);
+  if (!/pump-de|motor-de|pump-nde/.test(await page.textContent("#capture-facts"))) fail("capture facts name no channel");
+  await page.screenshot({ path: path.join(shots, "capture.png"), fullPage: true });
+  for (const [link, kind] of [["spectrum CSV", "csv"], ["spectrum SVG", "svg"], ["waveform CSV", "csv"], ["raw capture (BWF1)", "bwf1"]]) {
+    await checkDownload(page, `#capture-downloads a:text-is("${link}")`, kind, null);
+  }
 
   if (consoleErrors.length) fail(`console errors: ${consoleErrors.join(" | ")}`);
   if (foreign.length) fail(`requests outside the daemon: ${foreign.join(", ")}`);
