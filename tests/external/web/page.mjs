@@ -274,6 +274,20 @@ try {
     await checkDownload(page, `#capture-downloads a:text-is("${link}")`, kind, null);
   }
 
+  // --- A 10-inch tablet held upright (800 x 1280 CSS px): every view fits
+  // the width (no sideways scrolling).
+  await page.setViewportSize({ width: 800, height: 1280 });
+  for (const [hash, ready, shot] of [["#/", "#channels tbody tr", "tablet-overview.png"],
+    ["#/channel/pump-de", '#peak-readout[data-hz]:not([data-hz=""])', "tablet-channel.png"],
+    ["#/alarms", "#alarm-table tbody tr", "tablet-alarms.png"]]) {
+    await page.goto(`${fast}/${hash}`, { waitUntil: "load" });
+    await page.locator(ready).first().waitFor();
+    await page.waitForTimeout(300);
+    const { sw, iw } = await page.evaluate(() => ({ sw: document.documentElement.scrollWidth, iw: window.innerWidth }));
+    if (sw > iw + 1) fail(`${hash} at 800 px wide scrolls sideways (${sw} px of content)`);
+    await page.screenshot({ path: path.join(shots, shot), fullPage: true });
+  }
+
   if (consoleErrors.length) fail(`console errors: ${consoleErrors.join(" | ")}`);
   if (foreign.length) fail(`requests outside the daemon: ${foreign.join(", ")}`);
   console.log(`page load (DOM load event) ${loadMs} ms; peak ${peakHz.toFixed(2)} Hz; harmonics ${harm.slice(0, 3).join(", ")}...`);
