@@ -1,18 +1,20 @@
 #!/usr/bin/env bash
 # The operator page in a real browser against the real daemon:
 #
-# 1. `bandwatch run --config config/demo.toml --listen 127.0.0.1:0` (the
-#    debug binary, or BANDWATCH_BIN), waited for on /readyz;
+# 1. `bandwatch run --config config/demo.toml --listen 127.0.0.1:0` twice
+#    (the debug binary, or BANDWATCH_BIN), each with its own state
+#    directory, waited for on /readyz: the demo as shipped, and the demo
+#    with its simulator 10 times faster (its BPFO alarm trips within
+#    seconds);
 # 2. tests/external/web/page.mjs drives Debian's chromium (/usr/bin/chromium,
 #    or CHROMIUM) through playwright-core, installed beforehand in
 #    tests/external/web/node_modules by `npm ci` (.ci/run does it, with
-#    PLAYWRIGHT_SKIP_BROWSER_DOWNLOAD=1: no browser is downloaded). It checks
-#    the overview lists the demo's four channels, the pump-de view's highest
-#    peak label reads the vane pass (173.25 Hz within half a line), the
-#    harmonic cursors sit at multiples of 24.75 Hz, a one-line spike among
-#    65 537 lines still shows in its pixel column (display decimation by
-#    min..max, never by skipping), the console has no errors and no request
-#    leaves the daemon;
+#    PLAYWRIGHT_SKIP_BROWSER_DOWNLOAD=1: no browser is downloaded), through
+#    every view: overview, channel (spectrum, units, envelope, waveform,
+#    band signal, trend, CSV/SVG downloads), alarms (danger shown, wrong
+#    token refused, acknowledge), a capture and its downloads, a tablet's
+#    width; no console error, no request leaving the daemon (page.mjs
+#    lists every check);
 # 3. screenshots go to target/page-screenshots/ (README "The operator page").
 #
 # Installs nothing. Everything binds 127.0.0.1 only; every step is
