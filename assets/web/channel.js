@@ -198,7 +198,7 @@ export function start(name, setLink) {
       $("channel-facts").replaceChildren(
         healthBadge(detail), " ",
         detail.alarm_state ? badge(detail.alarm_state) : badge("none"),
-        ` · ${envelope ? "envelope spectrum" : "spectrum"}: ${s.values.length} lines, ${num(s.resolution_hz)} Hz resolution (lines ${num(s.df_hz)} Hz apart) · ${s.window} window · ${s.averages} ${s.averaging} averages · `,
+        ` · ${envelope ? "envelope spectrum" : "spectrum"}: ${s.values.length} lines, ${num(s.resolution_hz)} Hz resolution (lines ${num(s.df_hz)} Hz apart) · ${s.window} window · ${s.averaging === "none" ? "no averaging" : `${s.averages} ${s.averaging} averages`} · `,
         `${s.scaling} ${s.unit} · speed ${s.speed_hz ? `${num(s.speed_hz * 60, 5)} rpm` : "unknown"} · taken ${new Date(s.timestamp).toLocaleTimeString()}`,
         age == null ? "" : ` (${age.toFixed(1)} s ago)`);
       $("bands").querySelector("tbody").replaceChildren(...bandRows(detail));
