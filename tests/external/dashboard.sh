@@ -16,6 +16,8 @@
 #    least one series, except the queries on metrics bandwatch does not
 #    expose yet (PENDING_METRICS in dashboard_check.py, each printed as
 #    SKIP). The template variables' label_values() queries must find values.
+# 3. the bandwatch_* names in deploy/prometheus-rules.yml's expressions all
+#    appear in the demo's live exposition (dashboard_check.py rule-metrics).
 #
 # Needs python3 (standard library), curl, prometheus and a Rust toolchain
 # (or BANDWATCH_BIN pointing at a built binary). Everything binds 127.0.0.1
@@ -123,6 +125,11 @@ for _ in $(seq 1 300); do
     sleep 0.1
 done
 [ -n "$ready" ] || fail "bandwatch not ready within 30 s: $(curl -s --max-time 2 "$bw/readyz" || true)"
+
+step "the alert rules read metrics the demo exposes"
+curl -sf --max-time 5 -o "$work/metrics.prom" "$bw/metrics" || fail "GET /metrics failed"
+timeout 60 python3 "$checker" rule-metrics deploy/prometheus-rules.yml "$work/metrics.prom" \
+    || fail "deploy/prometheus-rules.yml reads a metric bandwatch does not expose"
 
 prom=""
 for attempt in 1 2 3; do

@@ -21,6 +21,12 @@
       --wait seconds (the demo's first scrapes), then exit 1 naming each
       query that failed.
 
+  dashboard_check.py rule-metrics RULES EXPOSITION
+      Every bandwatch_* metric name in the `expr:` of the alert rules file
+      RULES (deploy/prometheus-rules.yml) must have a `# TYPE` line in
+      EXPOSITION (a scrape of the running demo's /metrics): the rules read
+      series bandwatch really exposes. Exit 1 naming each missing one.
+
 No Grafana server is used: what Grafana itself does with the JSON is not
 tested here. Grafana's variable syntax ($name, ${name}, ${name:format},
 [[name]]) and built-ins ($__rate_interval, $__interval, ...) are from
@@ -314,6 +320,18 @@ def run_one(prom, kind, q):
 
 def check_queries(dash, prom, values, wait_s):
     queries = collect_queries(dash, values)
+    # Controls: this Prometheus refuses a broken expression and returns no
+    # series for a name nobody exposes, so the two checks below can fail.
+    ok, _, msg = run_one(prom, "expr", "rate(bandwatch_source_up[")
+    print(f"   control: a broken expression is refused: {msg}")
+    if ok:
+        print("   FAIL the control's broken expression was accepted")
+        return False
+    ok, non_empty, msg = run_one(prom, "expr", 'bandwatch_no_such_metric{channel="pump-de"}')
+    print(f"   control: an unknown metric returns {msg}")
+    if not ok or non_empty:
+        print("   FAIL the control's unknown metric did not come back empty")
+        return False
     deadline = time.monotonic() + wait_s
     while True:
         failed, notes, report = [], [], []
@@ -344,10 +362,53 @@ def check_queries(dash, prom, values, wait_s):
     return not failed
 
 
+def rule_exprs(text):
+    """The `expr:` values of a Prometheus rules file (one line, or a block
+    scalar of the lines indented deeper than the key)."""
+    exprs, lines, i = [], text.split("\n"), 0
+    while i < len(lines):
+        m = re.match(r"^(\s*)(?:- )?expr:\s*(.*)$", lines[i])
+        i += 1
+        if not m:
+            continue
+        indent, rest = len(m.group(1)), m.group(2).strip()
+        if rest and rest[0] not in "|>":
+            exprs.append(rest)
+            continue
+        block = []
+        while i < len(lines) and (not lines[i].strip() or len(lines[i]) - len(lines[i].lstrip()) > indent):
+            block.append(lines[i].strip())
+            i += 1
+        exprs.append(" ".join(block).strip())
+    return exprs
+
+
+def rule_metrics(rules_path, exposition_path):
+    with open(rules_path, encoding="utf-8") as f:
+        exprs = rule_exprs(f.read())
+    with open(exposition_path, encoding="utf-8") as f:
+        exposed = set(re.findall(r"^# TYPE (\S+) ", f.read(), re.M))
+    names = sorted({n for e in exprs for n in re.findall(r"\bbandwatch_[a-z0-9_]+", e)})
+    missing = [n for n in names if n not in exposed]
+    print(f"   {len(exprs)} rule expressions read {len(names)} bandwatch metrics: {', '.join(names)}")
+    for n in missing:
+        print(f"   FAIL {n} is not in the exposition")
+    return bool(exprs) and bool(names) and not missing
+
+
 def main(argv):
-    if len(argv) < 3 or argv[1] not in ("structure", "selftest", "queries"):
+    if len(argv) < 3 or argv[1] not in ("structure", "selftest", "queries", "rule-metrics"):
         print(__doc__, file=sys.stderr)
         return 2
+    if argv[1] == "rule-metrics":
+        if len(argv) != 4:
+            print(__doc__, file=sys.stderr)
+            return 2
+        try:
+            return 0 if rule_metrics(argv[2], argv[3]) else 1
+        except OSError as e:
+            print(f"dashboard_check: {e}", file=sys.stderr)
+            return 1
     try:
         with open(argv[2], encoding="utf-8") as f:
             dash = json.load(f)
