@@ -985,12 +985,24 @@ pub(crate) fn band_table(
             let unit = a.unit.map_or("", |u| u.symbol);
             let lim =
                 |x: Option<f64>| x.map_or("none".to_string(), |x| format!("{} {unit}", num(x)));
+            // Before the worker publishes the board: the configured fixed
+            // limits (baseline and zone limits are known only to it).
+            let fixed = |l: Option<crate::config::alarms::LevelConfig>| {
+                l.and_then(|l| match l.source {
+                    crate::config::alarms::LimitSource::Fixed(x) => Some(x),
+                    _ => None,
+                })
+            };
+            let (alert, danger) = match view {
+                Some(v) => (v.alert_limit, v.danger_limit),
+                None => (fixed(a.spec.alert), fixed(a.spec.danger)),
+            };
             let _ = write!(
                 line,
                 " · alarm {}: alert {}, danger {}",
-                view.map_or("unknown", |v| v.state.as_str()),
-                lim(view.and_then(|v| v.alert_limit)),
-                lim(view.and_then(|v| v.danger_limit))
+                view.map_or("not evaluated yet", |v| v.state.as_str()),
+                lim(alert),
+                lim(danger)
             );
         }
         notes.push(line);
