@@ -470,7 +470,7 @@ pub async fn event_waveform(
     let fs = meta.waveform.sample_rate_hz;
     let dt = 1.0 / fs;
     if format == Format::Csv {
-        let out = export::csv("time_s,value", |i| i as f64 * dt, &samples);
+        let out = export::csv("time_s,value", |i| i as f64 / fs, &samples);
         let name = export::filename(&[&id, "waveform"], 0, "csv");
         return Ok(export::attachment(export::CSV, &name, out));
     }

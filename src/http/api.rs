@@ -829,8 +829,7 @@ pub async fn waveform(
     match format {
         Format::Json => {}
         Format::Csv => {
-            let dt = 1.0 / fs;
-            let out = export::csv("time_s,value", |i| i as f64 * dt, &values);
+            let out = export::csv("time_s,value", |i| i as f64 / fs, &values);
             let name = export::filename(&parts, snap.timestamp_ns, "csv");
             return Ok(export::attachment(export::CSV, &name, out));
         }
