@@ -998,7 +998,7 @@ pub(crate) fn band_table(
             };
             let _ = write!(
                 line,
-                " · alarm {}: alert {}, danger {}",
+                " · alarm state {}; limits alert {}, danger {}",
                 view.map_or("not evaluated yet", |v| v.state.as_str()),
                 lim(alert),
                 lim(danger)

@@ -307,10 +307,18 @@ pub fn svg(p: &Plot<'_>) -> String {
         s,
         r##"<rect id="plot-area" x="{PLOT_LEFT}" y="{PLOT_TOP}" width="{w}" height="{h}" fill="#f8f8f8" stroke="#777777" data-x-min="{x_lo}" data-x-max="{x_hi}" data-y-min="{y_lo}" data-y-max="{y_hi}"/>"##
     );
-    // Bands: shaded spans, clipped to the plot, with their names.
-    for (i, sp) in p.spans.iter().enumerate() {
+    // Bands: shaded spans, clipped to the plot, each name once (a band of
+    // several windows is several spans), the labels clipped too.
+    let _ = writeln!(
+        s,
+        r#"<clipPath id="plot-clip"><rect x="{PLOT_LEFT}" y="{PLOT_TOP}" width="{w}" height="{h}"/></clipPath><g clip-path="url(#plot-clip)">"#
+    );
+    let mut labelled: Vec<&str> = Vec::new();
+    for sp in &p.spans {
         let (a, b) = (sp.lo.max(x_lo), sp.hi.min(x_hi));
-        if !(a.is_finite() && b.is_finite()) || b < a {
+        // Outside the range drawn (a point span, such as a trip mark, is
+        // kept when it lies inside).
+        if !(a.is_finite() && b.is_finite()) || b < a || (b == a && sp.hi > sp.lo) {
             continue;
         }
         let (xa, xb) = (px(a), px(b));
@@ -319,14 +327,19 @@ pub fn svg(p: &Plot<'_>) -> String {
             r##"<rect class="band" x="{xa:.2}" y="{PLOT_TOP}" width="{:.2}" height="{h}" fill="#8c8c8c" fill-opacity="0.22"/>"##,
             (xb - xa).max(1.0)
         );
+        if labelled.contains(&sp.label.as_str()) {
+            continue;
+        }
         let _ = writeln!(
             s,
             r##"<text class="band-label" x="{:.2}" y="{}" font-size="10" fill="#444444">{}</text>"##,
             xa + 2.0,
-            PLOT_TOP + 12.0 + (i % 3) as f64 * 11.0,
+            PLOT_TOP + 12.0 + (labelled.len() % 3) as f64 * 11.0,
             escape(&sp.label)
         );
+        labelled.push(&sp.label);
     }
+    s.push_str("</g>\n");
     // Grid and ticks.
     let x_step = nice_step(x_hi - x_lo, 10.0);
     for t in ticks(x_lo, x_hi, x_step) {
