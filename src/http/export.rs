@@ -275,7 +275,7 @@ pub fn svg(p: &Plot<'_>) -> String {
         };
         PLOT_BOTTOM - (y - y_lo) / (y_hi - y_lo) * h
     };
-    let notes_top = PLOT_BOTTOM + 52.0;
+    let notes_top = PLOT_BOTTOM + 64.0;
     let height = notes_top + LINE_H * (p.notes.len() as f64 + 1.0) + 14.0;
 
     let mut s = String::with_capacity(64 * 1024);
