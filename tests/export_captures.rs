@@ -232,6 +232,23 @@ async fn a_capture_exports_as_csv_and_svg() {
     );
     assert!(t.contains("Sample rate 25600 Hz"), "{t}");
     assert!(t.contains("trip"), "{t}");
+    // The trip is marked where the pre-trigger samples end.
+    let text = r.text();
+    let doc = roxmltree::Document::parse(&text).unwrap();
+    let area = doc
+        .descendants()
+        .find(|n| n.attribute("id") == Some("plot-area"))
+        .unwrap();
+    let a = |k: &str| -> f64 { area.attribute(k).unwrap().parse().unwrap() };
+    let mark = doc
+        .descendants()
+        .find(|n| n.attribute("class") == Some("mark"))
+        .expect("a trip mark");
+    let x: f64 = mark.attribute("x1").unwrap().parse().unwrap();
+    let trip_s = meta.waveform.pre_samples as f64 / meta.waveform.sample_rate_hz;
+    let want =
+        a("x") + (trip_s - a("data-x-min")) / (a("data-x-max") - a("data-x-min")) * a("width");
+    assert!((x - want).abs() < 0.01, "trip mark at {x}, expected {want}");
 
     // Unknown ids and bad formats.
     for uri in [

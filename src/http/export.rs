@@ -314,6 +314,7 @@ pub fn svg(p: &Plot<'_>) -> String {
         r#"<clipPath id="plot-clip"><rect x="{PLOT_LEFT}" y="{PLOT_TOP}" width="{w}" height="{h}"/></clipPath><g clip-path="url(#plot-clip)">"#
     );
     let mut labelled: Vec<&str> = Vec::new();
+    let mut marks = Vec::new();
     for sp in &p.spans {
         let (a, b) = (sp.lo.max(x_lo), sp.hi.min(x_hi));
         // Outside the range drawn (a point span, such as a trip mark, is
@@ -322,6 +323,10 @@ pub fn svg(p: &Plot<'_>) -> String {
             continue;
         }
         let (xa, xb) = (px(a), px(b));
+        if sp.hi <= sp.lo {
+            // A point (the trip in a capture): a dashed line over the trace.
+            marks.push(xa);
+        }
         let _ = writeln!(
             s,
             r##"<rect class="band" x="{xa:.2}" y="{PLOT_TOP}" width="{:.2}" height="{h}" fill="#8c8c8c" fill-opacity="0.22"/>"##,
@@ -399,6 +404,12 @@ pub fn svg(p: &Plot<'_>) -> String {
         r##"<polyline id="trace" fill="none" stroke="#1a1a1a" stroke-width="1" stroke-linejoin="round" points="{}"/>"##,
         pts.trim_end()
     );
+    for x in marks {
+        let _ = writeln!(
+            s,
+            r##"<line class="mark" x1="{x:.2}" y1="{PLOT_TOP}" x2="{x:.2}" y2="{PLOT_BOTTOM}" stroke="#555555" stroke-width="1.5" stroke-dasharray="5 4"/>"##
+        );
+    }
     for (i, line) in p.notes.iter().enumerate() {
         let _ = writeln!(
             s,
