@@ -164,6 +164,63 @@ async fn daemon_serves_the_demo_over_tcp() {
     // Lines 0, 3.125, …, 100 Hz: 33 of them.
     assert_eq!(lines.count(), 33);
 
+    // The SVG image of pump-de from 100 to 1000 Hz: a download whose highest
+    // drawn point is the vane pass (the demo scenario: 7 × 24.75 Hz), and
+    // the envelope spectrum with the BPFO band drawn as a shaded span.
+    let r = get(
+        addr,
+        "/api/v1/channels/pump-de/spectrum?format=svg&fmin=100&fmax=1000&unit=mm/s",
+    )
+    .await;
+    assert_eq!(r.status, 200, "{}", r.text());
+    assert_eq!(r.header("content-type"), Some("image/svg+xml"));
+    let cd = r.header("content-disposition").unwrap_or("").to_string();
+    assert!(
+        cd.starts_with("attachment; filename=\"pump-de-spectrum-") && cd.ends_with("Z.svg\""),
+        "{cd}"
+    );
+    let text = r.text();
+    let doc = roxmltree::Document::parse(&text).expect("the SVG is XML");
+    let area = doc
+        .descendants()
+        .find(|n| n.attribute("id") == Some("plot-area"))
+        .expect("plot area");
+    let a = |k: &str| -> f64 { area.attribute(k).and_then(|v| v.parse().ok()).expect(k) };
+    let points: Vec<(f64, f64)> = doc
+        .descendants()
+        .find(|n| n.attribute("id") == Some("trace"))
+        .and_then(|n| n.attribute("points"))
+        .expect("trace")
+        .split_whitespace()
+        .filter_map(|p| p.split_once(','))
+        .map(|(x, y)| (x.parse().expect("x"), y.parse().expect("y")))
+        .collect();
+    let top = points
+        .iter()
+        .min_by(|p, q| p.1.total_cmp(&q.1))
+        .expect("points");
+    let f_top =
+        a("data-x-min") + (top.0 - a("x")) / a("width") * (a("data-x-max") - a("data-x-min"));
+    assert!(
+        (f_top - VANE_PASS_HZ).abs() <= df,
+        "highest drawn point at {f_top} Hz"
+    );
+    let r = get(
+        addr,
+        "/api/v1/channels/pump-de/spectrum?format=svg&spectrum=envelope&amp=log",
+    )
+    .await;
+    assert_eq!(r.status, 200, "{}", r.text());
+    let text = r.text();
+    let doc = roxmltree::Document::parse(&text).expect("the SVG is XML");
+    let labels: Vec<&str> = doc
+        .descendants()
+        .filter(|n| n.attribute("class") == Some("band-label"))
+        .filter_map(|n| n.text())
+        .collect();
+    assert!(labels.contains(&"bpfo"), "{labels:?}");
+    assert!(text.contains("pump-de envelope spectrum"));
+
     // Waveform: the newest block, in g.
     let r = get(addr, "/api/v1/channels/pump-nde/waveform").await;
     assert_eq!(r.status, 200);

@@ -8,7 +8,8 @@
 
 use std::time::Duration;
 
-use axum::extract::Path;
+use axum::extract::rejection::QueryRejection;
+use axum::extract::{Path, Query};
 use axum::http::{header, HeaderMap};
 use axum::response::{IntoResponse, Response};
 use axum::Json;
@@ -19,9 +20,16 @@ use crate::alarm::engine::{AlarmBoard, AlarmCommand, AlarmView, CommandError};
 use crate::alarm::journal::rfc3339;
 use crate::config::zones::GUIDANCE;
 use crate::config::AlarmTarget;
+use crate::config::SpectrumKind;
+use crate::frame::bwf1::StreamDecoder;
+use crate::frame::Samples;
+use crate::http::api::{num, Params};
 use crate::http::error::ApiError;
+use crate::http::export::{self, Amp, Format, Plot, Span};
+use crate::http::scaling::Scaling;
 use crate::http::{HttpState, Live};
 use crate::pipeline::state::ChannelShared;
+use crate::units::Unit;
 
 /// How long an action waits for the worker.
 const COMMAND_TIMEOUT: Duration = Duration::from_secs(5);
@@ -262,40 +270,245 @@ fn capture_error(st: &HttpState, e: capture::CaptureError) -> ApiError {
 }
 
 /// One capture's metadata (trip, limits, spectrum at the trip); with
-/// `/waveform`, its BWF1 waveform file.
-pub async fn event(Live(st): Live, Path(id): Path<String>) -> Result<Json<Value>, ApiError> {
+/// `?format=csv|svg` the spectrum at the trip as a download.
+pub async fn event(
+    Live(st): Live,
+    Path(id): Path<String>,
+    q: Result<Query<Vec<(String, String)>>, QueryRejection>,
+) -> Result<Response, ApiError> {
+    let params = Params::new(q, &["format", "amp"])?;
+    let format = params.format()?;
+    let amp = Amp::parse(params.get("amp"), format)?;
     let dir = st
         .app
         .captures_dir
         .as_ref()
         .ok_or_else(|| ApiError::UnknownCapture(id.clone()))?;
     let meta = capture::read_meta(dir, &id).map_err(|e| capture_error(&st, e))?;
-    let mut body = serde_json::to_value(&meta).map_err(|_| ApiError::Internal)?;
-    if let Value::Object(m) = &mut body {
-        m.insert(
-            "waveform_url".into(),
-            format!("/api/v1/events/{id}/waveform").into(),
-        );
+    if format == Format::Json {
+        let mut body = serde_json::to_value(&meta).map_err(|_| ApiError::Internal)?;
+        if let Value::Object(m) = &mut body {
+            m.insert(
+                "waveform_url".into(),
+                format!("/api/v1/events/{id}/waveform").into(),
+            );
+        }
+        return Ok(Json(body).into_response());
     }
-    Ok(Json(body))
+    let Some(sp) = &meta.spectrum else {
+        return Err(ApiError::NoCaptureSpectrum(id));
+    };
+    let scaling = Scaling::parse(&sp.scaling);
+    let label = match (scaling, Unit::parse(&sp.unit)) {
+        (Some(s), Some(u)) => s.unit_label(u),
+        _ => sp.unit.clone(),
+    };
+    if format == Format::Csv {
+        let out = export::csv(
+            &format!("frequency_hz,{}_{label}", sp.scaling),
+            |i| sp.f0_hz + i as f64 * sp.df_hz,
+            &sp.values,
+        );
+        let name = export::filename(&[&id, "spectrum"], 0, "csv");
+        return Ok(export::attachment(export::CSV, &name, out));
+    }
+    let db = amp == Amp::Log;
+    let settings = meta.settings.as_ref();
+    let fs = meta.waveform.sample_rate_hz;
+    let mut spans = Vec::new();
+    for b in settings.map_or(&[][..], |s| &s.bands[..]) {
+        if b.spectrum != SpectrumKind::Raw {
+            continue;
+        }
+        let mut ranges: Vec<[f64; 2]> = b.hz.into_iter().collect();
+        if let Some(speed) = settings.and_then(|s| s.speed_hz) {
+            ranges.extend(b.orders.iter().map(|w| [w[0] * speed, w[1] * speed]));
+        }
+        for [lo, hi] in ranges {
+            spans.push(Span {
+                lo,
+                hi,
+                label: b.name.clone(),
+            });
+        }
+    }
+    let mut notes = vec![trip_line(&meta.trip)];
+    notes.extend(
+        meta.bands
+            .iter()
+            .map(|b| format!("Band {} at the trip: {} {}", b.band, num(b.value), b.unit)),
+    );
+    let resolution = settings.map_or("resolution unknown".to_string(), |s| {
+        format!(
+            "Resolution {} Hz · block {}",
+            num(fs / s.block as f64),
+            s.block
+        )
+    });
+    let averaging = settings.map_or(String::new(), |s| {
+        format!(" ({})", crate::http::api::averaging_str(s.averaging))
+    });
+    let plot = Plot {
+        title: event_title(&meta.trip, "spectrum at the trip"),
+        info: vec![
+            format!(
+                "Channel {} · {} · {} {label} · capture {}",
+                meta.trip.channel, meta.trip.time, sp.scaling, meta.id
+            ),
+            format!(
+                "{resolution} · df {} Hz · window {} · {} averages{averaging} · sample rate {} Hz · nfft {}",
+                num(sp.df_hz),
+                sp.window,
+                sp.averages,
+                num(fs),
+                sp.nfft
+            ),
+        ],
+        x_label: "Frequency (Hz)".into(),
+        y_label: if db {
+            format!("{} (dB re 1 {label})", sp.scaling)
+        } else {
+            format!("{} ({label})", sp.scaling)
+        },
+        x0: sp.f0_hz,
+        dx: sp.df_hz,
+        values: &sp.values,
+        db_factor: db.then_some(match scaling {
+            Some(Scaling::Power | Scaling::Psd) | None => 10.0,
+            Some(_) => 20.0,
+        }),
+        spans,
+        notes,
+    };
+    let name = export::filename(&[&id, "spectrum"], 0, "svg");
+    Ok(export::attachment(export::SVG, &name, export::svg(&plot)))
 }
 
-pub async fn event_waveform(Live(st): Live, Path(id): Path<String>) -> Result<Response, ApiError> {
+/// "pump-de band bpfo alert → danger at 2026-…": names the event.
+fn event_title(t: &capture::TripInfo, what: &str) -> String {
+    format!(
+        "{} band {} {} → {} at {}: {what}",
+        t.channel, t.band, t.from, t.to, t.time
+    )
+}
+
+fn trip_line(t: &capture::TripInfo) -> String {
+    let lim = |x: Option<f64>| x.map_or("none".to_string(), |x| format!("{} {}", num(x), t.unit));
+    format!(
+        "Trip: band {} went {} → {} at {}, value {}; limits alert {}, danger {}",
+        t.band,
+        t.from,
+        t.to,
+        t.time,
+        t.value
+            .map_or("unknown".to_string(), |v| format!("{} {}", num(v), t.unit)),
+        lim(t.limits.alert),
+        lim(t.limits.danger)
+    )
+}
+
+/// The samples of a capture's BWF1 file, in order (the file is written
+/// by our own I/O thread; a frame that does not decode is an error).
+fn capture_samples(id: &str, bytes: &[u8]) -> Result<Vec<f32>, ApiError> {
+    let mut d = StreamDecoder::new();
+    d.push(bytes);
+    let mut out = Vec::new();
+    let mut s = Samples::default();
+    loop {
+        match d.next_frame_into(&mut s) {
+            Ok(Some(_)) => match &s {
+                Samples::F32(v) => out.extend_from_slice(v),
+                other => out.extend(
+                    (0..other.len())
+                        .filter_map(|i| other.get_f64(i))
+                        .map(|x| x as f32),
+                ),
+            },
+            Ok(None) => break,
+            Err(e) => {
+                tracing::error!(error = %e, capture = %id, "capture waveform does not decode");
+                return Err(ApiError::Internal);
+            }
+        }
+    }
+    if d.buffered() != 0 || d.stats().rejected_total() != 0 {
+        tracing::error!(capture = %id, trailing_bytes = d.buffered(), "capture waveform has bytes that are not frames");
+        return Err(ApiError::Internal);
+    }
+    Ok(out)
+}
+
+/// A capture's waveform: the raw BWF1 file (default), or `?format=csv|svg`.
+pub async fn event_waveform(
+    Live(st): Live,
+    Path(id): Path<String>,
+    q: Result<Query<Vec<(String, String)>>, QueryRejection>,
+) -> Result<Response, ApiError> {
+    let params = Params::new(q, &["format"])?;
+    let format = match params.get("format") {
+        None | Some("bwf1") => None,
+        Some("csv") => Some(Format::Csv),
+        Some("svg") => Some(Format::Svg),
+        Some(other) => {
+            return Err(ApiError::BadQuery(format!(
+                "format={other:?} is not known (known: bwf1, csv, svg)"
+            )))
+        }
+    };
     let dir = st
         .app
         .captures_dir
         .as_ref()
         .ok_or_else(|| ApiError::UnknownCapture(id.clone()))?;
     let bytes = capture::read_waveform(dir, &id).map_err(|e| capture_error(&st, e))?;
-    Ok((
-        [
-            (header::CONTENT_TYPE, "application/octet-stream".to_string()),
-            (
-                header::CONTENT_DISPOSITION,
-                format!("attachment; filename=\"{id}.bwf1\""),
+    let Some(format) = format else {
+        let name = export::filename(&[&id], 0, "bwf1");
+        return Ok(export::attachment("application/octet-stream", &name, bytes));
+    };
+    let meta = capture::read_meta(dir, &id).map_err(|e| capture_error(&st, e))?;
+    let samples = capture_samples(&id, &bytes)?;
+    let fs = meta.waveform.sample_rate_hz;
+    let dt = 1.0 / fs;
+    if format == Format::Csv {
+        let out = export::csv("time_s,value", |i| i as f64 / fs, &samples);
+        let name = export::filename(&[&id, "waveform"], 0, "csv");
+        return Ok(export::attachment(export::CSV, &name, out));
+    }
+    let w = &meta.waveform;
+    let trip_s = w.pre_samples as f64 * dt;
+    let plot = Plot {
+        title: event_title(&meta.trip, "waveform"),
+        info: vec![
+            format!(
+                "Channel {} · first sample at {} · unit {} · capture {}",
+                meta.trip.channel,
+                crate::http::api::rfc3339_ns(w.timestamp_ns)
+                    .unwrap_or_else(|| "time unknown".into()),
+                w.unit,
+                meta.id
+            ),
+            format!(
+                "Sample rate {} Hz · {} samples ({} s), {} before the trip · ended: {}",
+                num(fs),
+                samples.len(),
+                num(samples.len() as f64 * dt),
+                w.pre_samples,
+                meta.end_reason
             ),
         ],
-        bytes,
-    )
-        .into_response())
+        x_label: "Time from the capture's first sample (s)".into(),
+        y_label: format!("value ({})", w.unit),
+        x0: 0.0,
+        dx: dt,
+        values: &samples,
+        db_factor: None,
+        spans: vec![Span {
+            lo: trip_s,
+            hi: trip_s,
+            label: "trip".into(),
+        }],
+        notes: vec![trip_line(&meta.trip)],
+    };
+    let name = export::filename(&[&id, "waveform"], 0, "svg");
+    Ok(export::attachment(export::SVG, &name, export::svg(&plot)))
 }

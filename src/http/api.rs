@@ -7,18 +7,18 @@ use std::sync::Arc;
 
 use axum::extract::rejection::QueryRejection;
 use axum::extract::{Path, Query};
-use axum::http::header;
 use axum::response::{IntoResponse, Response};
 use axum::Json;
 use serde::Serialize;
 use serde_json::{json, Map, Value};
 
 use crate::clock::unix_now_ns;
-use crate::config::{AveragingMode, BandEdges, ChannelSpec};
+use crate::config::{AlarmTarget, AveragingMode, BandEdges, ChannelSpec};
 use crate::counters::SourceCounters;
 use crate::counters::{ChannelCounters, GapReason};
 use crate::dsp::bands::BandStatus;
 use crate::http::error::ApiError;
+use crate::http::export::{self, Amp, Format, Plot, Span};
 use crate::http::scaling::{line_range, Conversion, Scaling};
 use crate::http::Live;
 use crate::pipeline::state::{AppState, ChannelShared, ChannelSnapshot};
@@ -36,10 +36,10 @@ const STALE_INTERVALS: f64 = 3.0;
 /// The query string as key/value pairs, checked against the keys a handler
 /// knows: an unknown or repeated key is a 400 naming it, so a typo such as
 /// `fmn=` is not silently ignored.
-struct Params(Vec<(String, String)>);
+pub(crate) struct Params(Vec<(String, String)>);
 
 impl Params {
-    fn new(
+    pub(crate) fn new(
         q: Result<Query<Vec<(String, String)>>, QueryRejection>,
         known: &[&str],
     ) -> Result<Params, ApiError> {
@@ -61,7 +61,7 @@ impl Params {
         Ok(Params(pairs))
     }
 
-    fn get(&self, key: &str) -> Option<&str> {
+    pub(crate) fn get(&self, key: &str) -> Option<&str> {
         self.0
             .iter()
             .find(|(k, _)| k == key)
@@ -78,15 +78,9 @@ impl Params {
             .transpose()
     }
 
-    /// `format=json` (default) or `format=csv`.
-    fn csv(&self) -> Result<bool, ApiError> {
-        match self.get("format") {
-            None | Some("json") => Ok(false),
-            Some("csv") => Ok(true),
-            Some(other) => Err(ApiError::BadQuery(format!(
-                "format={other:?} is not known (known: json, csv)"
-            ))),
-        }
+    /// `format=json` (default), `csv` or `svg`.
+    pub(crate) fn format(&self) -> Result<Format, ApiError> {
+        Format::parse(self.get("format"))
     }
 }
 
@@ -150,10 +144,6 @@ fn channel_of<'a>(app: &'a AppState, name: &str) -> Result<&'a Arc<ChannelShared
 fn latest_of(ch: &ChannelShared) -> Result<Arc<ChannelSnapshot>, ApiError> {
     ch.latest()
         .ok_or_else(|| ApiError::NoSnapshot(ch.spec.name.clone()))
-}
-
-fn csv_response(body: String) -> Response {
-    ([(header::CONTENT_TYPE, "text/csv; charset=utf-8")], body).into_response()
 }
 
 // ---------------------------------------------------------------------------
@@ -545,7 +535,9 @@ pub async fn spectrum(
 ) -> Result<Response, ApiError> {
     let params = Params::new(
         q,
-        &["scaling", "unit", "fmin", "fmax", "format", "spectrum"],
+        &[
+            "scaling", "unit", "fmin", "fmax", "format", "spectrum", "amp",
+        ],
     )?;
     let ch = channel_of(&st.app, &name)?;
     let spec = &ch.spec;
@@ -579,7 +571,8 @@ pub async fn spectrum(
             u
         }
     };
-    let csv = params.csv()?;
+    let format = params.format()?;
+    let amp = Amp::parse(params.get("amp"), format)?;
     let range = line_range(
         params.f64("fmin")?,
         params.f64("fmax")?,
@@ -627,13 +620,92 @@ pub async fn spectrum(
     );
     let f0_hz = first as f64 * spec.df_hz();
     let unit = scaling.unit_label(to);
-    if csv {
-        let mut out = String::with_capacity(16 * values.len() + 64);
-        let _ = writeln!(out, "frequency_hz,{}_{}", scaling.as_str(), unit);
-        for (i, v) in values.iter().enumerate() {
-            let _ = writeln!(out, "{},{}", (first + i) as f64 * spec.df_hz(), v);
+    let what = if envelope {
+        "envelope-spectrum"
+    } else {
+        "spectrum"
+    };
+    match format {
+        Format::Json => {}
+        Format::Csv => {
+            let mut out = String::with_capacity(16 * values.len() + 64);
+            let _ = writeln!(out, "frequency_hz,{}_{}", scaling.as_str(), unit);
+            for (i, v) in values.iter().enumerate() {
+                let _ = writeln!(out, "{},{}", (first + i) as f64 * spec.df_hz(), v);
+            }
+            let name = export::filename(&[&spec.name, what], snap.timestamp_ns, "csv");
+            return Ok(export::attachment(export::CSV, &name, out));
         }
-        return Ok(csv_response(out));
+        Format::Svg => {
+            let (spans, notes) = band_table(ch, &snap, Some(envelope));
+            let db = matches!(amp, Amp::Log);
+            let mut info = vec![
+                format!(
+                    "Channel {} · {} · {} {} ({})",
+                    spec.name,
+                    rfc3339_ns(snap.timestamp_ns).unwrap_or_else(|| "time unknown".into()),
+                    scaling.as_str(),
+                    unit,
+                    to.quantity.as_str()
+                ),
+                format!(
+                    "Resolution {} Hz · df {} Hz · window {} · {} averages ({}) · sample rate {} Hz · block {} · nfft {}",
+                    num(spec.sample_rate_hz / spec.block as f64),
+                    num(spec.df_hz()),
+                    spec.window.as_str(),
+                    snap.averages,
+                    averaging_str(spec.averaging),
+                    num(spec.sample_rate_hz),
+                    spec.block,
+                    spec.nfft
+                ),
+            ];
+            let mut third = Vec::new();
+            if envelope {
+                if let Some((lo, hi)) = spec.envelope {
+                    third.push(format!("envelope band-pass {} to {} Hz", num(lo), num(hi)));
+                }
+            }
+            if let Some(s) = snap.speed_hz {
+                third.push(format!(
+                    "running speed {} Hz ({} rpm)",
+                    num(s),
+                    num(s * 60.0)
+                ));
+            }
+            if !third.is_empty() {
+                info.push(third.join(" · "));
+            }
+            let plot = Plot {
+                title: format!(
+                    "{} {}",
+                    spec.name,
+                    if envelope {
+                        "envelope spectrum"
+                    } else {
+                        "spectrum"
+                    }
+                ),
+                info,
+                x_label: "Frequency (Hz)".into(),
+                y_label: if db {
+                    format!("{} (dB re 1 {unit})", scaling.as_str())
+                } else {
+                    format!("{} ({unit})", scaling.as_str())
+                },
+                x0: f0_hz,
+                dx: spec.df_hz(),
+                values: &values,
+                db_factor: db.then_some(match scaling {
+                    Scaling::Power | Scaling::Psd => 10.0,
+                    _ => 20.0,
+                }),
+                spans,
+                notes,
+            };
+            let name = export::filename(&[&spec.name, what], snap.timestamp_ns, "svg");
+            return Ok(export::attachment(export::SVG, &name, export::svg(&plot)));
+        }
     }
     let integrates = matches!(
         (to.quantity.kinematic_order(), spec.unit.quantity.kinematic_order()),
@@ -697,7 +769,7 @@ pub async fn waveform(
 ) -> Result<Response, ApiError> {
     let params = Params::new(q, &["format", "band", "envelope"])?;
     let ch = channel_of(&st.app, &name)?;
-    let csv = params.csv()?;
+    let format = params.format()?;
     let envelope = match params.get("envelope") {
         None | Some("false") => false,
         Some("true") => true,
@@ -756,14 +828,78 @@ pub async fn waveform(
             .await?
             .into()
     };
-    if csv {
-        let mut out = String::with_capacity(24 * values.len() + 16);
-        out.push_str("time_s,value\n");
-        let dt = 1.0 / fs;
-        for (i, v) in values.iter().enumerate() {
-            let _ = writeln!(out, "{},{}", i as f64 * dt, v);
+    let band = params.get("band");
+    let mut parts: Vec<&str> = vec![&spec.name];
+    if let Some(b) = band {
+        parts.extend(["band", b]);
+    }
+    parts.push(if use_envelope && band.is_none() {
+        "envelope-waveform"
+    } else {
+        "waveform"
+    });
+    match format {
+        Format::Json => {}
+        Format::Csv => {
+            let out = export::csv("time_s,value", |i| i as f64 / fs, &values);
+            let name = export::filename(&parts, snap.timestamp_ns, "csv");
+            return Ok(export::attachment(export::CSV, &name, out));
         }
-        return Ok(csv_response(out));
+        Format::Svg => {
+            let what = match band {
+                Some(b) if use_envelope => format!("band {b} waveform (envelope)"),
+                Some(b) => format!("band {b} waveform"),
+                None if use_envelope => "envelope waveform".into(),
+                None => "waveform".into(),
+            };
+            let mut notes = Vec::new();
+            if let Some(r) = &pass {
+                let list: Vec<String> = r
+                    .iter()
+                    .map(|&(a, b)| format!("{} to {} Hz", num(a), num(b)))
+                    .collect();
+                notes.push(format!(
+                    "Pass band: {}; ideal band-pass on the block (FFT, lines outside zeroed, inverse FFT), circular at the block ends",
+                    list.join(", ")
+                ));
+            }
+            if let Some((lo, hi)) = envelope_band {
+                notes.push(format!(
+                    "Envelope: band-pass {} to {} Hz, then magnitude of the analytic signal",
+                    num(lo),
+                    num(hi)
+                ));
+            }
+            let plot = Plot {
+                title: format!("{} {what}", spec.name),
+                info: vec![
+                    format!(
+                        "Channel {} · {} · unit {} ({})",
+                        spec.name,
+                        rfc3339_ns(snap.timestamp_ns).unwrap_or_else(|| "time unknown".into()),
+                        spec.unit.symbol,
+                        spec.unit.quantity.as_str()
+                    ),
+                    format!(
+                        "Sample rate {} Hz · block {} samples ({} s) · first sample {}",
+                        num(fs),
+                        spec.block,
+                        num(spec.block as f64 / fs),
+                        snap.first_sample
+                    ),
+                ],
+                x_label: "Time from the block's first sample (s)".into(),
+                y_label: format!("{} ({})", spec.unit.quantity.as_str(), spec.unit.symbol),
+                x0: 0.0,
+                dx: 1.0 / fs,
+                values: &values,
+                db_factor: None,
+                spans: Vec::new(),
+                notes,
+            };
+            let name = export::filename(&parts, snap.timestamp_ns, "svg");
+            return Ok(export::attachment(export::SVG, &name, export::svg(&plot)));
+        }
     }
     Ok(Json(WaveformBody {
         channel: &spec.name,
@@ -782,6 +918,107 @@ pub async fn waveform(
         values: &values,
     })
     .into_response())
+}
+
+/// A number as written on an image: up to 6 significant digits, no
+/// trailing zeros.
+pub(crate) fn num(x: f64) -> String {
+    if !x.is_finite() {
+        return x.to_string();
+    }
+    let s = format!(
+        "{:.*}",
+        (5 - x.abs().log10().floor().clamp(-10.0, 5.0) as i32).max(0) as usize,
+        x
+    );
+    if s.contains('.') {
+        s.trim_end_matches('0').trim_end_matches('.').to_string()
+    } else {
+        s
+    }
+}
+
+/// The bands of a channel for an image: shaded spans (only those on the
+/// spectrum drawn: `Some(envelope)`; none for `None`) and one line of text
+/// per band with its value, status and its alarm's alert/danger limits.
+pub(crate) fn band_table(
+    ch: &ChannelShared,
+    snap: &ChannelSnapshot,
+    spectrum: Option<bool>,
+) -> (Vec<Span>, Vec<String>) {
+    let spec = &ch.spec;
+    let board = ch.alarm_board.load();
+    let mut spans = Vec::new();
+    let mut notes = Vec::new();
+    for (bi, b) in spec.bands.iter().enumerate() {
+        let v = snap.bands.get(bi);
+        let on_envelope = b.spectrum == crate::config::SpectrumKind::Envelope;
+        let ranges: Vec<(f64, f64)> = match &b.edges {
+            BandEdges::Hz { lo, hi } => vec![(*lo, *hi)],
+            BandEdges::Orders { windows } => match snap.speed_hz {
+                Some(s) => windows.iter().map(|w| (w.0 * s, w.1 * s)).collect(),
+                None => Vec::new(),
+            },
+        };
+        if spectrum == Some(on_envelope) {
+            for &(lo, hi) in &ranges {
+                spans.push(Span {
+                    lo,
+                    hi,
+                    label: b.name.clone(),
+                });
+            }
+        }
+        let edges = match &b.edges {
+            BandEdges::Hz { lo, hi } => format!("{} to {} Hz", num(*lo), num(*hi)),
+            BandEdges::Orders { windows } => windows
+                .iter()
+                .map(|w| format!("{} to {} x", num(w.0), num(w.1)))
+                .collect::<Vec<_>>()
+                .join(", "),
+        };
+        let value = match v {
+            Some(v) if v.is_ok() => format!("{} {}", num(v.value), b.unit.symbol),
+            Some(v) => format!("no value ({})", v.status.as_str()),
+            None => "no value".into(),
+        };
+        let mut line = format!(
+            "Band {} ({edges}, {} spectrum, {}): {value}",
+            b.name,
+            b.spectrum.as_str(),
+            b.measure.as_str()
+        );
+        for (j, a) in spec.alarms.iter().enumerate() {
+            if !matches!(a.target, AlarmTarget::Band(x) if x == bi) {
+                continue;
+            }
+            let view = board.as_ref().and_then(|bd| bd.alarms.get(j));
+            let unit = a.unit.map_or("", |u| u.symbol);
+            let lim =
+                |x: Option<f64>| x.map_or("none".to_string(), |x| format!("{} {unit}", num(x)));
+            // Before the worker publishes the board: the configured fixed
+            // limits (baseline and zone limits are known only to it).
+            let fixed = |l: Option<crate::config::alarms::LevelConfig>| {
+                l.and_then(|l| match l.source {
+                    crate::config::alarms::LimitSource::Fixed(x) => Some(x),
+                    _ => None,
+                })
+            };
+            let (alert, danger) = match view {
+                Some(v) => (v.alert_limit, v.danger_limit),
+                None => (fixed(a.spec.alert), fixed(a.spec.danger)),
+            };
+            let _ = write!(
+                line,
+                " · alarm state {}; limits alert {}, danger {}",
+                view.map_or("not evaluated yet", |v| v.state.as_str()),
+                lim(alert),
+                lim(danger)
+            );
+        }
+        notes.push(line);
+    }
+    (spans, notes)
 }
 
 /// The envelope of `block` (band `envelope` in Hz) if asked for, then the

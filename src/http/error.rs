@@ -35,6 +35,9 @@ pub enum ApiError {
     /// No capture with that id.
     #[error("no capture {0:?}")]
     UnknownCapture(String),
+    /// The capture has no spectrum at the trip (none was published yet).
+    #[error("capture {0:?} holds no spectrum at the trip")]
+    NoCaptureSpectrum(String),
     /// An event names this capture, but it is not on disk: still being
     /// collected ("pending"), never written ("lost", with the reason) or
     /// removed by retention ("pruned").
@@ -73,6 +76,7 @@ impl ApiError {
             | ApiError::NoRoute
             | ApiError::UnknownAlarm(..)
             | ApiError::UnknownCapture(_)
+            | ApiError::NoCaptureSpectrum(_)
             | ApiError::CaptureUnavailable { .. } => StatusCode::NOT_FOUND,
             ApiError::Unauthorized => StatusCode::UNAUTHORIZED,
             ApiError::Conflict(_) => StatusCode::CONFLICT,

@@ -4,6 +4,7 @@
 //! - `api`: `/healthz`, `/readyz`, `/api/v1/channels…` (JSON, CSV)
 //! - `alarms`: `/api/v1/alarms…` (states, ack, re-learn) and `/api/v1/events…`
 //! - `scaling`: pure spectrum conversions (scaling, unit, frequency crop)
+//! - `export`: CSV and SVG downloads (`?format=csv|svg`): the image writer
 //! - `metrics`: the Prometheus registry and the scrape-time collector
 //! - `error`: `ApiError`, the JSON error every failure is answered with
 //! - `gate`: the bound on request-time DSP (blocking threads, N at once)
@@ -16,6 +17,7 @@ pub mod alarms;
 pub mod api;
 pub mod auth;
 pub mod error;
+pub mod export;
 pub mod gate;
 pub mod metrics;
 pub mod page;

@@ -175,6 +175,7 @@ fn assert_json_error(r: &Reply, status: StatusCode, needle: &str) {
 
 mod encoder;
 mod endpoints;
+mod export;
 mod exposition;
 mod page;
 
