@@ -176,6 +176,7 @@ fn assert_json_error(r: &Reply, status: StatusCode, needle: &str) {
 mod encoder;
 mod endpoints;
 mod exposition;
+mod live;
 mod page;
 
 /// The value of the series `name{labels}` in a text exposition.
