@@ -506,10 +506,18 @@ fn detail(app: &AppState, ch: &ChannelShared, now_ns: u64) -> Result<Value, ApiE
 // Overview
 // ---------------------------------------------------------------------------
 
+#[derive(Serialize)]
+struct Overview<'a> {
+    time: Option<String>,
+    channels: Vec<Value>,
+    machines: Vec<Value>,
+    sources: Vec<SourceInfo<'a>>,
+}
+
 /// `GET /api/v1/overview`: what the overview page shows in one request:
 /// every channel's detail (the body of `/api/v1/channels/{name}`, config
 /// order), every machine (also those no channel follows) and every source.
-pub async fn overview(Live(st): Live) -> Result<Json<Value>, ApiError> {
+pub async fn overview(Live(st): Live) -> Result<Response, ApiError> {
     let now = unix_now_ns();
     let app = &st.app;
     let channels = app
@@ -539,12 +547,14 @@ pub async fn overview(Live(st): Live) -> Result<Json<Value>, ApiError> {
         .iter()
         .map(|s| source_info(&s.name, Some(s), now))
         .collect();
-    Ok(Json(json!({
-        "time": rfc3339_ns(now),
-        "channels": channels,
-        "machines": machines,
-        "sources": sources,
-    })))
+    // A struct, not `json!`: the macro would copy every channel's value.
+    Ok(Json(Overview {
+        time: rfc3339_ns(now),
+        channels,
+        machines,
+        sources,
+    })
+    .into_response())
 }
 
 // ---------------------------------------------------------------------------
