@@ -222,3 +222,20 @@ fn every_problem_is_reported_at_once() {
         other => panic!("accepted: {other:?}"),
     }
 }
+
+#[test]
+fn trend_seconds_out_of_range() {
+    let listen = "listen = \"127.0.0.1:9750\"";
+    for bad in ["trend_seconds = 5", "trend_seconds = 86401"] {
+        assert_issue(
+            listen,
+            &format!("{listen}\n{bad}"),
+            "server.trend_seconds",
+            "out of range 10 to 86400",
+        );
+    }
+    let ok = BASE.replacen(listen, &format!("{listen}\ntrend_seconds = 3600"), 1);
+    let cfg = parse_str(&ok).expect("trend_seconds = 3600 is valid");
+    assert_eq!(cfg.trend_seconds, 3600);
+    assert_eq!(parse_str(BASE).expect("base").trend_seconds, 600);
+}

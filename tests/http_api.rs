@@ -269,3 +269,223 @@ async fn daemon_serves_the_demo_over_tcp() {
         "still answering after shutdown"
     );
 }
+
+/// Whether `a` and `b` have the same shape: the same keys, array lengths
+/// and JSON types throughout (null standing for any type: a value not
+/// known at one of the two moments, e.g. a speed between two readings).
+fn same_shape(a: &Value, b: &Value, at: &str) -> Result<(), String> {
+    match (a, b) {
+        (Value::Null, _) | (_, Value::Null) => Ok(()),
+        (Value::Object(x), Value::Object(y)) => {
+            let kx: Vec<&String> = x.keys().collect();
+            let ky: Vec<&String> = y.keys().collect();
+            if kx != ky {
+                return Err(format!("{at}: keys {kx:?} vs {ky:?}"));
+            }
+            x.iter()
+                .try_for_each(|(k, v)| same_shape(v, &y[k], &format!("{at}.{k}")))
+        }
+        (Value::Array(x), Value::Array(y)) => {
+            if x.len() != y.len() {
+                return Err(format!("{at}: {} vs {} items", x.len(), y.len()));
+            }
+            x.iter()
+                .zip(y)
+                .enumerate()
+                .try_for_each(|(i, (v, w))| same_shape(v, w, &format!("{at}[{i}]")))
+        }
+        (Value::Number(_), Value::Number(_))
+        | (Value::String(_), Value::String(_))
+        | (Value::Bool(_), Value::Bool(_)) => Ok(()),
+        _ => Err(format!("{at}: {a} vs {b}")),
+    }
+}
+
+/// The parts of a channel object that only the config decides (equal at
+/// any two moments).
+fn config_part(c: &Value) -> Value {
+    let pick = |v: &Value, keys: &[&str]| -> Value {
+        keys.iter()
+            .map(|k| (k.to_string(), v[*k].clone()))
+            .collect::<serde_json::Map<_, _>>()
+            .into()
+    };
+    let mut out = pick(
+        c,
+        &[
+            "name",
+            "unit",
+            "quantity",
+            "sample_rate_hz",
+            "block",
+            "nfft",
+            "hop",
+            "window",
+            "overlap",
+            "averaging",
+            "envelope_hz",
+            "expected_update_interval_seconds",
+            "integration_low_cut_hz",
+        ],
+    );
+    out["source"] = pick(&c["source"], &["name", "kind"]);
+    out["machine"] = pick(&c["machine"], &["name", "speed_source"]);
+    let band_keys = [
+        "name", "orders", "bearing", "defect", "spectrum", "measure", "unit", "quantity",
+    ];
+    out["bands"] = c["bands"]
+        .as_array()
+        .map(|b| b.iter().map(|b| pick(b, &band_keys)).collect())
+        .unwrap_or_default();
+    out["alarms"] = c["alarms"]
+        .as_array()
+        .map(|a| {
+            a.iter()
+                .map(|a| pick(a, &["band", "unit", "latching", "zone"]))
+                .collect()
+        })
+        .unwrap_or_default();
+    out
+}
+
+async fn start_demo() -> (
+    SocketAddr,
+    oneshot::Sender<()>,
+    tokio::task::JoinHandle<Result<(), bandwatch::RunError>>,
+) {
+    let listener = tokio::net::TcpListener::bind("127.0.0.1:0")
+        .await
+        .expect("bind");
+    let addr = listener.local_addr().expect("addr");
+    let (stop_tx, stop_rx) = oneshot::channel::<()>();
+    let server = tokio::spawn(bandwatch::serve(demo_config(), listener, async move {
+        let _ = stop_rx.await;
+    }));
+    wait_ready(addr).await;
+    (addr, stop_tx, server)
+}
+
+/// `/api/v1/overview` on the running demo holds the four channels as their
+/// own endpoints show them, both machines and the source; the trends grow
+/// one point a second and their newest values are the published ones.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn overview_and_trend_on_the_running_demo() {
+    let (addr, stop_tx, server) = start_demo().await;
+
+    let r = get(addr, "/api/v1/overview").await;
+    assert_eq!(r.status, 200, "{}", r.text());
+    let o = r.json();
+    let channels = o["channels"].as_array().expect("channels");
+    let names: Vec<&str> = channels.iter().filter_map(|c| c["name"].as_str()).collect();
+    assert_eq!(names, ["motor-de", "pump-de", "pump-nde", "tach"]);
+    for c in channels {
+        let name = c["name"].as_str().expect("name");
+        let one = get(addr, &format!("/api/v1/channels/{name}")).await.json();
+        // Every field the channel endpoint has, of the same type; what the
+        // config decides, equal.
+        if let Err(e) = same_shape(c, &one, name) {
+            panic!("overview vs channel endpoint: {e}");
+        }
+        assert_eq!(config_part(c), config_part(&one), "{name}");
+        assert_eq!(c["source"]["state"], "connected");
+    }
+    let machines = o["machines"].as_array().expect("machines");
+    let names: Vec<&str> = machines.iter().filter_map(|m| m["name"].as_str()).collect();
+    // config/demo.toml: p2 (fixed, 1485 rpm) and p2-tach, which no channel
+    // follows.
+    assert_eq!(names, ["p2", "p2-tach"]);
+    assert_eq!(machines[0]["speed_source"], "fixed");
+    assert_eq!(num(&machines[0]["speed_rpm"]), 1485.0);
+    assert_eq!(machines[1]["speed_source"], "tach");
+    assert!(machines[1]["speed_late_results"].is_u64());
+    let sources = o["sources"].as_array().expect("sources");
+    assert_eq!(sources.len(), 1);
+    assert_eq!(sources[0]["name"], "sim");
+    assert_eq!(sources[0]["state"], "connected");
+    assert!(num(&sources[0]["counters"]["frames"]) > 0.0);
+
+    // The trend grows, one point a second, oldest first.
+    let points = |v: &Value| v["t"].as_array().map_or(0, Vec::len);
+    let first = get(addr, "/api/v1/channels/pump-de/trend").await.json();
+    assert_eq!(first["capacity_seconds"], 600);
+    let start = Instant::now();
+    let grown = loop {
+        let v = get(addr, "/api/v1/channels/pump-de/trend").await.json();
+        if points(&v) >= points(&first) + 2 {
+            break v;
+        }
+        assert!(
+            start.elapsed() < Duration::from_secs(15),
+            "trend did not grow: {} points",
+            points(&v)
+        );
+        tokio::time::sleep(Duration::from_millis(200)).await;
+    };
+    let t: Vec<u64> = grown["t"]
+        .as_array()
+        .expect("t")
+        .iter()
+        .map(|x| x.as_u64().expect("second"))
+        .collect();
+    assert!(t.windows(2).all(|w| w[0] < w[1]), "{t:?}");
+    let bands = grown["bands"].as_array().expect("bands");
+    assert_eq!(bands.len(), 8);
+    for b in bands {
+        for col in ["min", "max", "last"] {
+            assert_eq!(b[col].as_array().map(Vec::len), Some(t.len()), "{b}");
+        }
+    }
+
+    // The newest point's last value is what the channel endpoint shows
+    // (stored as f32): read between two channel reads of the same result.
+    let mut compared = false;
+    for _ in 0..100 {
+        let before = get(addr, "/api/v1/channels/pump-de").await.json();
+        let tr = get(addr, "/api/v1/channels/pump-de/trend").await.json();
+        let after = get(addr, "/api/v1/channels/pump-de").await.json();
+        if before["spectrum"]["seq"] != after["spectrum"]["seq"] {
+            continue;
+        }
+        let last = |s: &Value| s["last"].as_array().and_then(|a| a.last()).cloned();
+        for (i, b) in before["bands"]
+            .as_array()
+            .expect("bands")
+            .iter()
+            .enumerate()
+        {
+            let got = last(&tr["bands"][i]).expect("a point");
+            match b["value"].as_f64() {
+                Some(v) => assert_eq!(got.as_f64().map(|g| g as f32), Some(v as f32), "{b}"),
+                None => assert!(got.is_null(), "{b}: {got}"),
+            }
+            assert_eq!(tr["bands"][i]["name"], b["name"]);
+        }
+        let rms = last(&tr["overall"]["rms"]).and_then(|v| v.as_f64());
+        assert_eq!(
+            rms.map(|g| g as f32),
+            Some(num(&before["overall"]["rms"]) as f32)
+        );
+        // pump-de's band alarm: the limits the channel endpoint shows.
+        for a in before["alarms"].as_array().expect("alarms") {
+            if let Some(tb) = tr["bands"]
+                .as_array()
+                .and_then(|bs| bs.iter().find(|b| b["name"] == a["band"]))
+            {
+                assert_eq!(tb["alert_limit"], a["alert_limit"], "{a}");
+                assert_eq!(tb["danger_limit"], a["danger_limit"], "{a}");
+            }
+        }
+        compared = true;
+        break;
+    }
+    assert!(
+        compared,
+        "no two channel reads of the same result in 100 tries"
+    );
+
+    let _ = stop_tx.send(());
+    match tokio::time::timeout(Duration::from_secs(10), server).await {
+        Ok(Ok(Ok(()))) => {}
+        other => panic!("serve did not stop cleanly: {other:?}"),
+    }
+}

@@ -138,6 +138,11 @@ async fn ack(ch: &ChannelShared, alarm: usize) {
     assert!(r.is_ok(), "ack: {:?}", r.err());
 }
 
+/// Wall clock, whole seconds since the Unix epoch (the trend's time).
+fn now_s() -> u64 {
+    bandwatch::clock::unix_now_ns() / 1_000_000_000
+}
+
 fn discontinuities(ch: &ChannelShared) -> u64 {
     GapReason::ALL
         .iter()
@@ -189,6 +194,7 @@ async fn reload_keeps_changes_adds_removes_and_refuses() {
     );
 
     let seq_before = kept.latest().map_or(0, |s| s.seq);
+    let reload_s = now_s();
     let processed_before = kept.counters.samples_processed.load(Ordering::Relaxed);
     let breaks_before = discontinuities(&kept);
 
@@ -260,6 +266,19 @@ async fn reload_keeps_changes_adds_removes_and_refuses() {
         .zip(lim_before.transitions)
         .all(|(a, b)| *a >= b));
     assert!(Arc::ptr_eq(&lim1.counters, &lim.counters));
+    // Its trend is the same one: the points from before the reload stay,
+    // and the worker goes on into it.
+    assert!(Arc::ptr_eq(&lim1.trend, &lim.trend));
+    assert!(lim1
+        .trend
+        .read(600, now_s())
+        .t
+        .first()
+        .is_some_and(|&t| t <= reload_s));
+    wait_for("the changed channel's trend goes on", 10, || {
+        lim1.trend.read(600, now_s()).t.last() > Some(&reload_s)
+    })
+    .await;
 
     // Added: publishes. Removed: gone from the state and from /metrics.
     let new = channel(&st1, "new");
@@ -318,6 +337,8 @@ async fn a_changed_signal_setting_restarts_the_channel_and_keeps_its_latch() {
     let kept = channel(&p.live.load_full(), "kept");
     wait_for("latched", 30, || view(&kept, 0).is_some_and(|v| v.latched)).await;
     let blocks = kept.counters.blocks.load(Ordering::Relaxed);
+    assert!(!kept.trend.read(600, now_s()).t.is_empty());
+    let reload_s = now_s();
     let s = p
         .reload(&parse(&config_text(
             &dir,
@@ -339,6 +360,13 @@ async fn a_changed_signal_setting_restarts_the_channel_and_keeps_its_latch() {
     .await;
     let v = view(&again, 0).expect("alarm");
     assert!(v.latched, "latch carried over: {v:?}");
+    // The trend starts over with the new signal settings.
+    assert!(!Arc::ptr_eq(&again.trend, &kept.trend));
+    wait_for("the restarted channel's trend", 10, || {
+        !again.trend.read(600, now_s()).t.is_empty()
+    })
+    .await;
+    assert!(again.trend.read(600, now_s()).t[0] >= reload_s);
     p.stop().await;
     let _ = std::fs::remove_dir_all(&dir);
 }

@@ -140,6 +140,14 @@ pub struct RawServer {
     /// file's directory (`config::load_with`).
     #[serde(default)]
     pub web_config: Option<std::path::PathBuf>,
+    /// Seconds of band and overall values each channel keeps in memory
+    /// for `/api/v1/channels/{name}/trend` (one point a second).
+    #[serde(default = "default_trend_seconds")]
+    pub trend_seconds: u32,
+}
+
+fn default_trend_seconds() -> u32 {
+    600
 }
 
 fn default_max_connections() -> usize {

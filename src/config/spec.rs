@@ -33,6 +33,9 @@ pub struct Config {
     /// TLS and basic auth (`[server] web_config`), checked; `None`: plain
     /// HTTP for everyone.
     pub web: Option<super::web::WebConfig>,
+    /// Seconds of trend each channel keeps in memory (`[server]
+    /// trend_seconds`, README "Config reference").
+    pub trend_seconds: usize,
     pub workers: usize,
     pub ring_seconds: f64,
     pub sources: Vec<SourceSpec>,

@@ -21,7 +21,8 @@ use crate::http::error::ApiError;
 use crate::http::export::{self, Amp, Format, Plot, Span};
 use crate::http::scaling::{line_range, Conversion, Scaling};
 use crate::http::Live;
-use crate::pipeline::state::{AppState, ChannelShared, ChannelSnapshot};
+use crate::pipeline::state::{AppState, ChannelShared, ChannelSnapshot, MachineShared};
+use crate::pipeline::trend::OVERALL_MEASURES;
 use crate::units::{convertible, Unit};
 
 /// Shortest time after which a channel counts as stale, whatever its rate.
@@ -275,47 +276,59 @@ fn summary<'a>(
             mode: averaging_str(spec.averaging),
             count: spec.average_count,
         },
-        source: SourceInfo {
-            name: &spec.source,
-            kind: source.map_or("unknown", |s| s.kind),
-            state: if source.is_some_and(|s| s.is_connected()) {
-                "connected"
-            } else {
-                "disconnected"
-            },
-            last_frame_age_seconds: source
-                .map(|s| SourceCounters::get(&s.last_frame_unix_ns))
-                .filter(|&t| t != 0)
-                .map(|t| now_ns.saturating_sub(t) as f64 * 1e-9),
-            counters: source.map_or(Value::Null, |s| {
-                let g = SourceCounters::get;
-                json!({
-                    "connections": g(&s.connections),
-                    "frames": g(&s.frames),
-                    "bytes": g(&s.bytes),
-                    "crc_errors": g(&s.crc_errors),
-                    "resyncs": g(&s.resyncs),
-                    "skipped_bytes": g(&s.bytes_skipped),
-                    "missing_samples": g(&s.samples_missing),
-                    "late_frames": g(&s.frames_late),
-                    "rejected": s.rejected().into_iter().collect::<std::collections::BTreeMap<_, _>>(),
-                })
-            }),
-        },
-        machine: spec.machine.as_deref().map(|m| MachineInfo {
-            name: m,
-            speed_source: app.machine(m).map_or("unknown", |x| x.spec.speed.as_str()),
-            speed_hz: app.machine(m).and_then(|x| x.speed_hz()),
-            speed_rpm: app
-                .machine(m)
-                .and_then(|x| x.speed_hz())
-                .map(|hz| hz * 60.0),
-            speed_late_results: app.machine(m).map_or(0, |x| x.late_results()),
-        }),
+        source: source_info(&spec.source, source.map(|s| &**s), now_ns),
+        machine: spec
+            .machine
+            .as_deref()
+            .map(|m| machine_info(m, app.machine(m).map(|x| &**x))),
         envelope_hz: spec.envelope.map(|(a, b)| [a, b]),
         expected_update_interval_seconds: expected_interval_seconds(spec),
         spectrum_age_seconds: age,
         stale: age.is_none_or(|a| a > stale_after_seconds(spec)),
+    }
+}
+
+/// A source as the channel JSON and the overview show it.
+fn source_info<'a>(name: &'a str, source: Option<&SourceCounters>, now_ns: u64) -> SourceInfo<'a> {
+    SourceInfo {
+        name,
+        kind: source.map_or("unknown", |s| s.kind),
+        state: if source.is_some_and(|s| s.is_connected()) {
+            "connected"
+        } else {
+            "disconnected"
+        },
+        last_frame_age_seconds: source
+            .map(|s| SourceCounters::get(&s.last_frame_unix_ns))
+            .filter(|&t| t != 0)
+            .map(|t| now_ns.saturating_sub(t) as f64 * 1e-9),
+        counters: source.map_or(Value::Null, |s| {
+            let g = SourceCounters::get;
+            json!({
+                "connections": g(&s.connections),
+                "frames": g(&s.frames),
+                "bytes": g(&s.bytes),
+                "crc_errors": g(&s.crc_errors),
+                "resyncs": g(&s.resyncs),
+                "skipped_bytes": g(&s.bytes_skipped),
+                "missing_samples": g(&s.samples_missing),
+                "late_frames": g(&s.frames_late),
+                "rejected": s.rejected().into_iter().collect::<std::collections::BTreeMap<_, _>>(),
+            })
+        }),
+    }
+}
+
+/// A machine as the channel JSON and the overview show it (`machine`:
+/// None when the config names one the state does not hold).
+fn machine_info<'a>(name: &'a str, machine: Option<&MachineShared>) -> MachineInfo<'a> {
+    let speed_hz = machine.and_then(|x| x.speed_hz());
+    MachineInfo {
+        name,
+        speed_source: machine.map_or("unknown", |x| x.spec.speed.as_str()),
+        speed_hz,
+        speed_rpm: speed_hz.map(|hz| hz * 60.0),
+        speed_late_results: machine.map_or(0, |x| x.late_results()),
     }
 }
 
@@ -404,11 +417,18 @@ pub async fn channel_detail(
     Path(name): Path<String>,
 ) -> Result<Json<Value>, ApiError> {
     let ch = channel_of(&st.app, &name)?;
+    Ok(Json(detail(&st.app, ch, unix_now_ns())?))
+}
+
+/// The body of `GET /api/v1/channels/{name}`: the summary of the list,
+/// then bands, health, alarms, overall levels, counters and the latest
+/// spectrum's place. The overview holds one per channel.
+fn detail(app: &AppState, ch: &ChannelShared, now_ns: u64) -> Result<Value, ApiError> {
     let snap = ch.latest();
     let spec = &ch.spec;
-    let mut body = serde_json::to_value(summary(&st.app, ch, snap.as_deref(), unix_now_ns()))
-        .map_err(|e| {
-            tracing::error!(error = %e, channel = %name, "cannot serialise a channel summary");
+    let mut body =
+        serde_json::to_value(summary(app, ch, snap.as_deref(), now_ns)).map_err(|e| {
+            tracing::error!(error = %e, channel = %spec.name, "cannot serialise a channel summary");
             ApiError::Internal
         })?;
     let bands: Vec<BandInfo> = spec
@@ -481,7 +501,174 @@ pub async fn channel_detail(
             },
         );
     }
-    Ok(Json(body))
+    Ok(body)
+}
+
+// ---------------------------------------------------------------------------
+// Overview
+// ---------------------------------------------------------------------------
+
+#[derive(Serialize)]
+struct Overview<'a> {
+    time: Option<String>,
+    channels: Vec<Value>,
+    machines: Vec<Value>,
+    sources: Vec<SourceInfo<'a>>,
+}
+
+/// `GET /api/v1/overview`: what the overview page shows in one request:
+/// every channel's detail (the body of `/api/v1/channels/{name}`, config
+/// order), every machine (also those no channel follows) and every source.
+pub async fn overview(Live(st): Live) -> Result<Response, ApiError> {
+    let now = unix_now_ns();
+    let app = &st.app;
+    let channels = app
+        .channels
+        .iter()
+        .map(|ch| detail(app, ch, now))
+        .collect::<Result<Vec<Value>, ApiError>>()?;
+    let machines: Vec<Value> = app
+        .machines
+        .iter()
+        .map(|m| {
+            let mut v = json!(machine_info(&m.spec.name, Some(m)));
+            if let Value::Object(o) = &mut v {
+                o.insert(
+                    "speed_updated".into(),
+                    json!(m
+                        .is_measured()
+                        .then(|| rfc3339_ns(m.updated_unix_ns()))
+                        .flatten()),
+                );
+            }
+            v
+        })
+        .collect();
+    let sources: Vec<SourceInfo> = app
+        .sources
+        .iter()
+        .map(|s| source_info(&s.name, Some(s), now))
+        .collect();
+    // A struct, not `json!`: the macro would copy every channel's value.
+    Ok(Json(Overview {
+        time: rfc3339_ns(now),
+        channels,
+        machines,
+        sources,
+    })
+    .into_response())
+}
+
+// ---------------------------------------------------------------------------
+// Trend
+// ---------------------------------------------------------------------------
+
+#[derive(Serialize)]
+struct TrendSeries<'a> {
+    #[serde(skip_serializing_if = "Option::is_none")]
+    name: Option<&'a str>,
+    unit: &'static str,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    measure: Option<&'static str>,
+    /// The alarm's limits now (null without an alarm on this value, or
+    /// while a baseline is being learned).
+    alert_limit: Option<f64>,
+    danger_limit: Option<f64>,
+    min: Vec<Option<f32>>,
+    max: Vec<Option<f32>>,
+    last: Vec<Option<f32>>,
+}
+
+/// `GET /api/v1/channels/{name}/trend?seconds=N`: the channel's trend
+/// (`pipeline::trend`), columnar, oldest point first; `seconds` defaults
+/// to (and is cut to) what the channel keeps.
+pub async fn trend(
+    Live(st): Live,
+    Path(name): Path<String>,
+    q: Result<Query<Vec<(String, String)>>, QueryRejection>,
+) -> Result<Json<Value>, ApiError> {
+    let params = Params::new(q, &["seconds"])?;
+    let ch = channel_of(&st.app, &name)?;
+    let spec = &ch.spec;
+    let capacity = ch.trend.capacity_seconds();
+    let seconds = match params.get("seconds") {
+        None => capacity,
+        Some(v) => match v.trim().parse::<usize>() {
+            Ok(n) if n >= 1 => n.min(capacity),
+            _ => {
+                return Err(ApiError::BadQuery(format!(
+                    "seconds={v:?} is not a whole number of seconds, 1 or more"
+                )))
+            }
+        },
+    };
+    let cols = ch.trend.read(seconds, unix_now_ns() / 1_000_000_000);
+    let board = ch.alarm_board.load();
+    let limits = |target: AlarmTarget| -> (Option<f64>, Option<f64>) {
+        let Some(k) = spec.alarms.iter().position(|a| a.target == target) else {
+            return (None, None);
+        };
+        board
+            .as_ref()
+            .and_then(|b| b.alarms.get(k))
+            .map_or((None, None), |a| (a.alert_limit, a.danger_limit))
+    };
+    let mut series = cols.series.into_iter();
+    let mut overall = Map::new();
+    for measure in OVERALL_MEASURES {
+        let s = series.next().unwrap_or_default();
+        let target = match measure {
+            "rms" => Some(AlarmTarget::OverallRms),
+            "peak" => Some(AlarmTarget::OverallPeak),
+            "crest_factor" => Some(AlarmTarget::CrestFactor),
+            _ => None,
+        };
+        let (alert_limit, danger_limit) = target.map_or((None, None), limits);
+        overall.insert(
+            measure.to_string(),
+            json!(TrendSeries {
+                name: None,
+                unit: if measure == "crest_factor" {
+                    "1"
+                } else {
+                    spec.unit.symbol
+                },
+                measure: None,
+                alert_limit,
+                danger_limit,
+                min: s.min,
+                max: s.max,
+                last: s.last,
+            }),
+        );
+    }
+    let bands: Vec<TrendSeries> = spec
+        .bands
+        .iter()
+        .enumerate()
+        .map(|(i, b)| {
+            let s = series.next().unwrap_or_default();
+            let (alert_limit, danger_limit) = limits(AlarmTarget::Band(i));
+            TrendSeries {
+                name: Some(&b.name),
+                unit: b.unit.symbol,
+                measure: Some(b.measure.as_str()),
+                alert_limit,
+                danger_limit,
+                min: s.min,
+                max: s.max,
+                last: s.last,
+            }
+        })
+        .collect();
+    Ok(Json(json!({
+        "channel": spec.name,
+        "interval_s": 1,
+        "capacity_seconds": capacity,
+        "t": cols.t,
+        "overall": overall,
+        "bands": bands,
+    })))
 }
 
 // ---------------------------------------------------------------------------

@@ -128,10 +128,12 @@ pub fn router_with(st: HttpState) -> Router {
         .route("/healthz", get(api::healthz))
         .route("/readyz", get(api::readyz))
         .route("/metrics", get(metrics_handler))
+        .route("/api/v1/overview", get(api::overview))
         .route("/api/v1/channels", get(api::list_channels))
         .route("/api/v1/channels/{name}", get(api::channel_detail))
         .route("/api/v1/channels/{name}/spectrum", get(api::spectrum))
         .route("/api/v1/channels/{name}/waveform", get(api::waveform))
+        .route("/api/v1/channels/{name}/trend", get(api::trend))
         .route("/api/v1/alarms", get(alarms::list))
         .route("/api/v1/alarms/{channel}/{band}/ack", post(alarms::ack))
         .route(

@@ -20,6 +20,7 @@
 
 pub mod reload;
 pub mod state;
+pub mod trend;
 pub mod worker;
 
 use std::collections::BTreeMap;
@@ -169,7 +170,8 @@ impl<'a> Builder<'a> {
             if self.only_source.as_ref().is_some_and(|s| &spec.source != s) {
                 continue;
             }
-            let (ch, inbox) = ChannelShared::with_alarm_commands(spec.clone());
+            let (ch, inbox) =
+                ChannelShared::with_alarm_commands(spec.clone(), config.trend_seconds);
             shared.push(Arc::new(ch));
             inboxes.push(inbox);
         }

@@ -157,6 +157,9 @@ pub(crate) fn plan(old: &Config, new: &Config) -> Result<Plan, Vec<Problem>> {
     if old.http != new.http {
         restart("server", "the HTTP limits");
     }
+    if old.trend_seconds != new.trend_seconds {
+        restart("server.trend_seconds", "the trend length");
+    }
     if !same(&old.web, &new.web) {
         restart("server.web_config", "TLS or basic auth");
     }
@@ -344,7 +347,8 @@ impl super::Pipeline {
                 continue;
             }
             let old = old_state.channel(&spec.name).cloned();
-            let (mut ch, inbox) = ChannelShared::with_alarm_commands(spec.clone());
+            let (mut ch, inbox) =
+                ChannelShared::with_alarm_commands(spec.clone(), new.trend_seconds);
             if let Some(o) = &old {
                 // Counters never go back: a restarted channel counts on.
                 ch.counters = o.counters.clone();

@@ -23,6 +23,8 @@ use crate::dsp::bands::BandValue;
 use crate::dsp::stats::Overall;
 use crate::dsp::window::Window;
 
+use super::trend::{Trend, DEFAULT_TREND_SECONDS};
+
 /// The latest results of one channel.
 #[derive(Debug, Clone, Default)]
 pub struct ChannelSnapshot {
@@ -71,19 +73,26 @@ pub struct ChannelShared {
     pub window_coherent_gain: f64,
     pub counters: Arc<ChannelCounters>,
     pub snapshot: ArcSwapOption<ChannelSnapshot>,
+    /// The last `trend_seconds` of band values and overall levels, one
+    /// point a second (the worker pushes at publish; HTTP reads).
+    pub trend: Arc<Trend>,
 }
 
 impl ChannelShared {
     /// A channel without alarms: a command to it is refused (`command`
     /// returns false).
     pub fn new(spec: ChannelSpec) -> ChannelShared {
-        ChannelShared::with_alarm_commands(spec).0
+        ChannelShared::with_alarm_commands(spec, DEFAULT_TREND_SECONDS).0
     }
 
     /// A channel and the receiving end of its operator commands, for the
-    /// alarm engine the pipeline builds.
-    pub fn with_alarm_commands(spec: ChannelSpec) -> (ChannelShared, Receiver<AlarmCommand>) {
+    /// alarm engine the pipeline builds; its trend keeps `trend_seconds`.
+    pub fn with_alarm_commands(
+        spec: ChannelSpec,
+        trend_seconds: usize,
+    ) -> (ChannelShared, Receiver<AlarmCommand>) {
         let w = Window::new(spec.window, spec.block);
+        let trend = Arc::new(Trend::new(trend_seconds, spec.bands.len()));
         let (tx, rx) = std::sync::mpsc::channel();
         let ch = ChannelShared {
             alarm_board: ArcSwapOption::empty(),
@@ -94,14 +103,15 @@ impl ChannelShared {
             spec: Arc::new(spec),
             counters: Arc::new(ChannelCounters::default()),
             snapshot: ArcSwapOption::empty(),
+            trend,
         };
         (ch, rx)
     }
 
     /// The same channel under a new spec whose signal settings are
     /// unchanged (a reload that changed only limits): shares the counters
-    /// and the operator command queue, starts from the current snapshot
-    /// and alarm board.
+    /// the operator command queue and the trend, starts from the current
+    /// snapshot and alarm board.
     pub fn carried_over(&self, spec: ChannelSpec) -> ChannelShared {
         let tx = self
             .alarm_commands
@@ -121,6 +131,7 @@ impl ChannelShared {
             window_coherent_gain: self.window_coherent_gain,
             counters: self.counters.clone(),
             snapshot: ArcSwapOption::new(self.snapshot.load_full()),
+            trend: self.trend.clone(),
         }
     }
 

@@ -677,6 +677,11 @@ impl ChannelDsp {
         snap.bands.extend_from_slice(&self.band_values);
         snap.waveform.clear();
         snap.waveform.extend_from_slice(&self.frame);
+        self.shared.trend.push(
+            snap.published_unix_ns / 1_000_000_000,
+            &snap.overall,
+            &snap.bands,
+        );
         if let (Some(a), Some(snap)) = (&mut self.alarms, Arc::get_mut(&mut arc)) {
             let spec = &self.shared.spec;
             a.evaluate(

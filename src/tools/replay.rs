@@ -532,6 +532,7 @@ fn capture_config(spec: ChannelSpec, speed_hz: Option<f64>) -> Config {
         listen: std::net::SocketAddr::from(([127, 0, 0, 1], 0)),
         http: crate::config::HttpLimits::default(),
         web: None,
+        trend_seconds: crate::pipeline::trend::DEFAULT_TREND_SECONDS,
         workers: 1,
         ring_seconds: 2.0,
         sources: vec![source],

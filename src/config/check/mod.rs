@@ -30,6 +30,7 @@ pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
     let listen = check_server(&mut issues, &raw.server);
     let http = check_http_limits(&mut issues, &raw.server);
     let web = check_web_config(&mut issues, &raw.server);
+    let trend_seconds = check_trend_seconds(&mut issues, &raw.server);
     let workers = check_dsp(&mut issues, &raw.dsp);
     let sources = sources::check_sources(&mut issues, &raw.sources);
     let channels = channels::check_channels(&mut issues, raw, &sources);
@@ -43,6 +44,7 @@ pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
             listen,
             http,
             web,
+            trend_seconds,
             workers,
             ring_seconds: raw.dsp.ring_seconds,
             sources,
@@ -88,6 +90,24 @@ fn check_http_limits(issues: &mut Issues, raw: &RawServer) -> HttpLimits {
         idle_timeout: seconds("idle_timeout_s", raw.idle_timeout_s),
         request_timeout: seconds("request_timeout_s", raw.request_timeout_s),
     }
+}
+
+/// Longest trend a channel keeps, seconds (`[server] trend_seconds`):
+/// one day. README "Config reference" gives the memory this costs.
+pub const MAX_TREND_SECONDS: u32 = 86_400;
+
+/// `[server] trend_seconds`: 10 s to a day.
+fn check_trend_seconds(issues: &mut Issues, raw: &RawServer) -> usize {
+    if !(10..=MAX_TREND_SECONDS).contains(&raw.trend_seconds) {
+        issues.add(
+            "server.trend_seconds",
+            format!(
+                "{} is out of range 10 to {MAX_TREND_SECONDS}",
+                raw.trend_seconds
+            ),
+        );
+    }
+    raw.trend_seconds.clamp(10, MAX_TREND_SECONDS) as usize
 }
 
 /// `[server] web_config`: the file is read and checked whole (TLS files,

@@ -177,6 +177,7 @@ mod encoder;
 mod endpoints;
 mod export;
 mod exposition;
+mod live;
 mod page;
 
 /// The value of the series `name{labels}` in a text exposition.

@@ -285,12 +285,16 @@ fn http_config(channels: usize, n: usize) -> Result<Config, BenchError> {
 
 /// The channels of the http phase, their DSP split over two rigs (one per
 /// thread), alarms armed, every channel published at least once.
-struct HttpSetup {
-    state: Arc<AppState>,
-    rigs: Vec<DspRig>,
+pub(crate) struct HttpSetup {
+    pub(crate) state: Arc<AppState>,
+    pub(crate) rigs: Vec<DspRig>,
 }
 
-fn http_setup(channels: usize, n: usize, signal: &Arc<Vec<f32>>) -> Result<HttpSetup, BenchError> {
+pub(crate) fn http_setup(
+    channels: usize,
+    n: usize,
+    signal: &Arc<Vec<f32>>,
+) -> Result<HttpSetup, BenchError> {
     let config = http_config(channels, n)?;
     let mut pipeline = inline_pipeline(&config, true)?;
     let state = pipeline.state.clone();
@@ -365,7 +369,7 @@ enum Probe {
 /// One DSP thread: flat out, or one round (a hop into every ring, then
 /// drain) every hop/fs seconds of wall time. Returns its rig, busy time
 /// and how far behind it ended.
-fn dsp_thread(
+pub(crate) fn dsp_thread(
     mut rig: DspRig,
     load: DspLoad,
     stop: &AtomicBool,

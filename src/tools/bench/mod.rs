@@ -22,6 +22,10 @@
 //!   daemon as a child process, fed live over UDP by a separate sender
 //!   process at plant scale (4096 channels × 25.6 kHz by default), scraped
 //!   like Prometheus; its CPU, losses, spectrum age, DSP lag and RSS.
+//! - `page`: not a phase of the default run (`--only page`): the daemon's
+//!   CPU per open operator page at 64 channels (the overview by list +
+//!   details, by `/api/v1/overview`, and a channel view), with 0 and
+//!   `--page-clients` pages side by side, and the bytes of one update.
 //! - `welch`: not a phase of the default run; the mode
 //!   `bench/compare_scipy.py` drives (`--signal FILE`).
 //!
@@ -42,6 +46,7 @@ pub use http::DspLoad;
 mod ingest;
 mod input;
 mod memory;
+mod page;
 mod path;
 mod plant;
 mod welch;
@@ -81,7 +86,8 @@ pub struct BenchArgs {
     #[arg(long, default_value_t = 0.5)]
     pub work_seconds: f64,
     /// Phases to run, comma separated: fft, dsp, path, memory, ingest, http
-    /// (default: all), plant (only when named), or welch (with --signal).
+    /// (default: all), plant and page (only when named), or welch (with
+    /// --signal).
     #[arg(long, value_enum, value_delimiter = ',')]
     pub only: Vec<Phase>,
     /// Also write the results as JSON here.
@@ -133,6 +139,12 @@ pub struct BenchArgs {
     /// (repeatable), e.g. what an open page polls.
     #[arg(long)]
     pub plant_poll: Vec<String>,
+    /// page: page clients polling every 1.5 s.
+    #[arg(long, default_value_t = 8)]
+    pub page_clients: usize,
+    /// page: seconds of each round (no client, then each way with clients).
+    #[arg(long, default_value_t = 12.0)]
+    pub page_seconds: f64,
     /// Internal: be the plant phase's sender process, sending to these UDP
     /// sources, and print one JSON line.
     #[arg(long, hide = true, value_delimiter = ',')]
@@ -323,6 +335,8 @@ pub enum Phase {
     Http,
     /// The plant-scale run (only when named).
     Plant,
+    /// CPU per open operator page (only when named).
+    Page,
     /// Welch spectra of --signal as JSON (for bench/compare_scipy.py).
     Welch,
 }
@@ -337,6 +351,7 @@ impl Phase {
             Phase::Ingest => "ingest",
             Phase::Http => "http",
             Phase::Plant => "plant",
+            Phase::Page => "page",
             Phase::Welch => "welch",
         }
     }
@@ -405,7 +420,8 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
         memory::memory_phase(args, &mut rows)?;
     }
 
-    let need_rt = wants(args, "ingest") || wants(args, "http");
+    let page = args.only.contains(&Phase::Page);
+    let need_rt = wants(args, "ingest") || wants(args, "http") || page;
     let rt = if need_rt {
         Some(
             tokio::runtime::Builder::new_multi_thread()
@@ -425,6 +441,11 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
 
     if let (true, Some(rt)) = (wants(args, "http"), &rt) {
         http::http_phase(rt, args, &signal, &mut rows, &mut notes)?;
+    }
+
+    // Only when named: a minute or more of rounds.
+    if let (true, Some(rt)) = (page, &rt) {
+        page::page_phase(rt, args, &signal, &mut rows, &mut notes)?;
     }
 
     // Only when named: it runs the daemon at plant scale for minutes.

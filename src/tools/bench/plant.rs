@@ -214,7 +214,7 @@ pub(crate) fn stat_cpu_ticks(stat: &str) -> Option<u64> {
 
 /// Clock ticks per second of `/proc/PID/stat` (`getconf CLK_TCK`), and
 /// whether it was read (else 100, Linux's USER_HZ on common platforms).
-fn clock_ticks() -> (f64, bool) {
+pub(crate) fn clock_ticks() -> (f64, bool) {
     Command::new("getconf")
         .arg("CLK_TCK")
         .output()
