@@ -129,7 +129,7 @@ function waveParams() {
 function trendSeries(t, kind) {
   if (kind.startsWith("overall:")) {
     const o = t.overall && t.overall[kind.slice(8)];
-    return o && { t: t.t, min: o.min, max: o.max, last: o.last, unit: o.unit, alert: null, danger: null };
+    return o && { t: t.t, min: o.min, max: o.max, last: o.last, unit: o.unit, alert: o.alert_limit, danger: o.danger_limit };
   }
   const b = (t.bands || []).find((x) => x.name === kind.slice(5));
   return b && { t: t.t, min: b.min, max: b.max, last: b.last, unit: `${b.unit} ${b.measure}`, alert: b.alert_limit, danger: b.danger_limit };
@@ -145,9 +145,19 @@ function bindOnce() {
   $("zoom-out").addEventListener("click", () => plot.zoom(2, plot.cursorHz()));
   $("zoom-reset").addEventListener("click", () => plot.reset());
   $("wave-reset").addEventListener("click", () => wave.reset());
-  for (const id of ["spec-kind", "spec-unit", "spec-scaling"]) {
+  for (const id of ["spec-unit", "spec-scaling"]) {
     $(id).addEventListener("change", () => { plot.view = null; current && current.refresh(); });
   }
+  // The envelope spectrum opens on its bands (the defect lines sit low, a
+  // few hundred Hz at most), not on the whole span up to Nyquist.
+  $("spec-kind").addEventListener("change", () => {
+    plot.view = null;
+    if ($("spec-kind").value === "envelope" && current && current.detail) {
+      const his = (current.detail.bands || []).filter((b) => b.spectrum === "envelope" && b.hi_hz != null).map((b) => b.hi_hz);
+      if (his.length) plot.pendingView = [0, Math.max(...his) * 1.5];
+    }
+    current && current.refresh();
+  });
   $("wave-kind").addEventListener("change", () => { wave.view = null; current && current.refresh(); });
   $("trend-kind").addEventListener("change", () => current && current.refresh());
   window.addEventListener("resize", () => { plot.draw(); wave.draw(); trendPlot.draw(); });
@@ -193,6 +203,11 @@ export function start(name, setLink) {
         .map((b) => ({ name: b.name, lo: b.lo_hz, hi: b.hi_hz, state: alarms.get(b.name) }));
       plot.limits = limitsFor(detail, s, envelope);
       plot.speedHz = s.speed_hz;
+      if (plot.pendingView) {
+        const top = s.f0_hz + s.df_hz * (s.values.length - 1);
+        plot.view = plot.pendingView[1] < top ? plot.pendingView : null;
+        plot.pendingView = null;
+      }
       plot.setData({ f0: s.f0_hz, df: s.df_hz, values: s.values, unit: s.unit });
       const age = detail.spectrum_age_seconds;
       $("channel-facts").replaceChildren(

@@ -65,9 +65,18 @@ function losses(details, sources) {
     }
     for (const [reason, n] of Object.entries(c.rejected || {})) rows.push([`source ${s.name}`, `rejected: ${reason}`, n]);
   }
-  return rows.map(([w, k, n]) => el("tr", n > 0 ? { class: "abnormal" } : {},
+  // Counters above zero one by one (marked); those at zero in one line.
+  const lost = rows.filter(([, , n]) => n > 0);
+  const zero = rows.length - lost.length;
+  const out = lost.map(([w, k, n]) => el("tr", { class: "abnormal" },
     el("td", { text: w }), el("td", { text: k }),
-    el("td", { class: "num" }, n > 0 ? badge("alert", String(n)) : String(n))));
+    el("td", { class: "num" }, badge("alert", String(n)))));
+  if (zero > 0) {
+    out.push(el("tr", {}, el("td", { text: lost.length ? "everywhere else" : "every channel and source" }),
+      el("td", { text: `${zero} counters (samples dropped by reason, CRC errors, missing samples, late frames, resyncs, skipped bytes, rejected frames)` }),
+      el("td", { class: "num", text: "0" })));
+  }
+  return out;
 }
 
 // Replaces the rows' cells but keeps each row's first cell (the channel

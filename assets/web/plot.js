@@ -205,7 +205,6 @@ export class SpectrumPlot {
     } else if (this.log) {
       bottom = Math.max(bottom, top - 100); top += 6;
     } else {
-      for (const l of this.limits) if (l.hi >= fa && l.lo <= fb && l.value > top) top = l.value;
       bottom = 0; top = top > 0 ? top * 1.12 : 1;
     }
     if (!(top > bottom)) top = bottom + 1;
@@ -229,6 +228,15 @@ export class SpectrumPlot {
     for (const l of this.limits) {
       if (l.hi < fa || l.lo > fb) continue;
       const x0 = Math.max(box.x, this.xOf(l.lo)), x1 = Math.min(box.x + box.w, this.xOf(l.hi));
+      const text = `${l.state === "danger" ? "◆ danger" : "▲ alert"} ${fmt(l.value)}`;
+      // A limit far above what is drawn does not squash the trace: it is
+      // named at the top of its span instead.
+      if (this.amp(l.value) > top) {
+        g.fillStyle = ink;
+        const t = `${text} (above the scale)`;
+        if (x1 - x0 > g.measureText(t).width + 4) g.fillText(t, x0 + 2, box.y + box.h - (l.state === "danger" ? 22 : 8));
+        continue;
+      }
       const y = Math.round(yOf(this.amp(l.value))) + 0.5;
       g.setLineDash(l.state === "danger" ? [8, 3] : [3, 3]);
       g.strokeStyle = css(l.state === "danger" ? "--danger" : "--alert-ink");
@@ -236,7 +244,6 @@ export class SpectrumPlot {
       g.beginPath(); g.moveTo(x0, y); g.lineTo(Math.max(x0 + 2, x1), y); g.stroke();
       g.setLineDash([]); g.lineWidth = 1;
       g.fillStyle = ink;
-      const text = `${l.state === "danger" ? "◆ danger" : "▲ alert"} ${fmt(l.value)}`;
       if (x1 - x0 > g.measureText(text).width + 4) g.fillText(text, x0 + 2, y - 3);
     }
     for (const m of this.markers) {

@@ -7,7 +7,7 @@
 
 import { niceTicks } from "./plot.js";
 
-const PAD = { l: 64, r: 16, t: 14, b: 36 };
+const PAD = { l: 76, r: 16, t: 14, b: 36 };
 
 function css(name) {
   return getComputedStyle(document.documentElement).getPropertyValue(name).trim() || "#000";
@@ -58,10 +58,12 @@ export class TrendPlot {
       if (s.max[i] != null && s.max[i] > top) top = s.max[i];
       if (s.min[i] != null && s.min[i] < bottom) bottom = s.min[i];
     }
-    for (const l of [s.alert, s.danger]) if (l != null && l > top) top = l;
+    // Scaled to the values, so that a change shows; a limit within twice
+    // the highest value is brought into view, one further off is named.
     if (!Number.isFinite(top)) { top = 1; bottom = 0; }
-    bottom = Math.min(0, bottom);
-    top = top > bottom ? top * 1.1 : bottom + 1;
+    for (const l of [s.alert, s.danger]) if (l != null && l > top && l < 2 * top) top = l;
+    const pad = (top - bottom) * 0.1 || Math.abs(top) * 0.1 || 1;
+    top += pad; bottom -= pad;
     const xOf = (t) => box.x + ((t - t0) / (t1 - t0)) * box.w;
     const yOf = (v) => box.y + box.h - ((v - bottom) / (top - bottom)) * box.h;
 
@@ -101,6 +103,12 @@ export class TrendPlot {
 
     for (const [state, v] of [["alert", s.alert], ["danger", s.danger]]) {
       if (v == null) continue;
+      const text = `${state === "danger" ? "◆ danger" : "▲ alert"} ${fmt(v)}`;
+      if (v > top || v < bottom) {
+        g.fillStyle = ink;
+        g.fillText(`${text} (${v > top ? "above" : "below"} the scale)`, box.x + 4, box.y + (state === "danger" ? 14 : 28));
+        continue;
+      }
       const y = Math.round(yOf(v)) + 0.5;
       g.setLineDash(state === "danger" ? [8, 3] : [3, 3]);
       g.strokeStyle = css(state === "danger" ? "--danger" : "--alert-ink");
@@ -108,7 +116,7 @@ export class TrendPlot {
       g.beginPath(); g.moveTo(box.x, y); g.lineTo(box.x + box.w, y); g.stroke();
       g.setLineDash([]); g.lineWidth = 1;
       g.fillStyle = ink;
-      g.fillText(`${state === "danger" ? "◆ danger" : "▲ alert"} ${fmt(v)}`, box.x + 4, y - 3);
+      g.fillText(text, box.x + 4, y - 3);
     }
 
     g.fillStyle = ink; g.strokeStyle = ink;

@@ -120,6 +120,10 @@ try {
   await page.waitForTimeout(2000);
   const focused = await page.evaluate(() => document.activeElement && document.activeElement.getAttribute("href"));
   if (focused !== "#/channel/motor-de") fail(`focus lost by the overview's update (now on ${focused})`);
+  // The daemon calls a channel's health unknown (no_data) until its first
+  // seconds of data are judged; the picture is taken once all read OK.
+  await page.locator('#channels tbody tr td:has-text("fault: no_data")').first().waitFor({ state: "detached", timeout: 20000 })
+    .catch(() => fail("a channel still reads no_data 20 s after start"));
   await page.screenshot({ path: path.join(shots, "overview.png"), fullPage: true });
 
   // Channel view of pump-de, reached by keyboard-free navigation (its link).
@@ -239,6 +243,7 @@ try {
   await page.locator('#alarm-message[data-outcome="refused"]').waitFor();
   const refusal = await page.textContent("#alarm-message");
   if (!/refused: the token was not accepted/.test(refusal)) fail(`wrong token message "${refusal}"`);
+  await page.screenshot({ path: path.join(shots, "alarms-refused.png"), fullPage: true });
   // The right token, kept only in the tab's session storage.
   const good = fs.readFileSync(tokenFile, "utf8").trim();
   await page.fill("#token-input", good);
