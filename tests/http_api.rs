@@ -13,7 +13,7 @@ use std::time::{Duration, Instant};
 use serde_json::Value;
 use tokio::sync::oneshot;
 
-use common::{get, try_get};
+use common::{get, get_with, try_get};
 
 const DEMO: &str = include_str!("../config/demo.toml");
 /// Bound on waiting for every channel's first spectrum.
@@ -256,6 +256,39 @@ async fn daemon_serves_the_demo_over_tcp() {
         r#"bandwatch_http_requests_total{path="/api/v1/channels/{name}/spectrum",status="200"}"#
     ));
 
+    // gzip only when asked (RFC 9110 §12.5.3 Accept-Encoding, RFC 1952):
+    // the gzipped body, unpacked by the system's `gzip -d` (not our code),
+    // is the same exposition: the same series, in the same order.
+    let gz = get_with(addr, "/metrics", "Accept-Encoding: gzip\r\n").await;
+    let plain = get(addr, "/metrics").await;
+    assert_eq!(gz.status, 200);
+    assert_eq!(gz.header("content-encoding"), Some("gzip"));
+    assert_eq!(gz.header("content-type"), Some("text/plain; version=0.0.4"));
+    assert_eq!(&gz.body[..2], &[0x1f, 0x8b], "gzip magic (RFC 1952 §2.3.1)");
+    assert_eq!(plain.header("content-encoding"), None);
+    assert!(plain.text().starts_with("# HELP "));
+    let unpacked = gunzip(&gz.body);
+    let series = |t: &str| -> Vec<String> {
+        t.lines()
+            .map(|l| l.rsplit_once(' ').map_or(l, |(k, _)| k).to_string())
+            .collect()
+    };
+    assert_eq!(series(&unpacked), series(&plain.text()));
+    assert!(
+        gz.body.len() * 4 < plain.body.len(),
+        "{} gzipped vs {} plain bytes",
+        gz.body.len(),
+        plain.body.len()
+    );
+    // The JSON API too.
+    let gz = get_with(addr, "/api/v1/channels", "Accept-Encoding: gzip\r\n").await;
+    assert_eq!(gz.header("content-encoding"), Some("gzip"));
+    let v: Value = serde_json::from_str(&gunzip(&gz.body)).expect("JSON");
+    assert!(
+        v.as_array().is_some_and(|a| !a.is_empty()) || v.is_object(),
+        "{v}"
+    );
+
     // Clean shutdown.
     let _ = stop_tx.send(());
     match tokio::time::timeout(Duration::from_secs(10), server).await {
@@ -268,6 +301,27 @@ async fn daemon_serves_the_demo_over_tcp() {
         try_get(addr, "/healthz").await.is_err(),
         "still answering after shutdown"
     );
+}
+
+/// `gzip -dc` of `body`: the system's gzip, independent of the server's
+/// compressor.
+fn gunzip(body: &[u8]) -> String {
+    use std::io::Write;
+    let mut child = std::process::Command::new("gzip")
+        .arg("-dc")
+        .stdin(std::process::Stdio::piped())
+        .stdout(std::process::Stdio::piped())
+        .spawn()
+        .expect("run gzip");
+    child
+        .stdin
+        .take()
+        .expect("stdin")
+        .write_all(body)
+        .expect("write to gzip");
+    let out = child.wait_with_output().expect("gzip output");
+    assert!(out.status.success(), "gzip -d failed: {out:?}");
+    String::from_utf8(out.stdout).expect("UTF-8")
 }
 
 /// Whether `a` and `b` have the same shape: the same keys, array lengths

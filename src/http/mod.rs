@@ -12,6 +12,9 @@
 //! - `auth`: basic auth for every route (`[server] web_config` users)
 //! - `page`: the operator page at `/` and its embedded `/assets/{name}`
 //! - `server`: the accept loop with its limits, and TLS
+//!
+//! Every response is gzipped when the request asks for it (`Accept-Encoding:
+//! gzip`), see [`router_with`].
 
 pub mod alarms;
 pub mod api;
@@ -148,6 +151,18 @@ pub fn router_with(st: HttpState) -> Router {
         .fallback(count_unmatched)
         .method_not_allowed_fallback(api::method_not_allowed)
         .with_state(st)
+        .layer(compression())
+}
+
+/// gzip for a client that sends `Accept-Encoding: gzip`, on every route;
+/// none without it. `/metrics` is the reason (its text shrinks about
+/// tenfold, and at thousands of channels the body is the cost of a
+/// scrape); the JSON spectra, waveforms and CSV/SVG downloads are large
+/// repetitive text too, and a browser on the plant network asks for it.
+/// tower-http's default predicate leaves bodies under 32 bytes, images
+/// and event streams alone.
+fn compression() -> tower_http::compression::CompressionLayer {
+    tower_http::compression::CompressionLayer::new()
 }
 
 /// Counts a request that matched a route, under its template

@@ -63,10 +63,23 @@ pub async fn get(addr: SocketAddr, path: &str) -> Response {
 /// As [`get`], but a connection failure is returned, not a panic (for
 /// polling a server that may not be up yet).
 pub async fn try_get(addr: SocketAddr, path: &str) -> Result<Response, String> {
+    try_get_with(addr, path, "").await
+}
+
+/// As [`get`], with extra request header lines (each ending `\r\n`).
+pub async fn get_with(addr: SocketAddr, path: &str, headers: &str) -> Response {
+    match tokio::time::timeout(REQUEST_TIMEOUT, try_get_with(addr, path, headers)).await {
+        Ok(Ok(r)) => r,
+        Ok(Err(e)) => panic!("GET {path}: {e}"),
+        Err(_) => panic!("GET {path}: no complete reply within {REQUEST_TIMEOUT:?}"),
+    }
+}
+
+async fn try_get_with(addr: SocketAddr, path: &str, headers: &str) -> Result<Response, String> {
     let mut s = TcpStream::connect(addr)
         .await
         .map_err(|e| format!("connect {addr}: {e}"))?;
-    let req = format!("GET {path} HTTP/1.1\r\nHost: {addr}\r\nConnection: close\r\n\r\n");
+    let req = format!("GET {path} HTTP/1.1\r\nHost: {addr}\r\nConnection: close\r\n{headers}\r\n");
     s.write_all(req.as_bytes())
         .await
         .map_err(|e| format!("write: {e}"))?;

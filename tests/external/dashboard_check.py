@@ -48,10 +48,7 @@ DATASOURCE = {"type": "prometheus", "uid": "${datasource}"}
 # one of them may return no series (a note is printed for each); it must
 # still parse. Remove a name once bandwatch exposes it (the check prints a
 # reminder when one returns data).
-PENDING_METRICS = [
-    "process_cpu_seconds_total",
-    "process_resident_memory_bytes",
-]
+PENDING_METRICS = []
 
 # Stand-ins for Grafana's built-in variables when a query is run by hand.
 BUILTINS = {

@@ -218,14 +218,14 @@ pub(crate) const FIXED: [(Fixed, &str, &str, MetricType, &[&str]); 39] = [
         "bandwatch_machine_speed_hertz",
         "Running speed of the machine (revolutions per second), while it is known.",
         MetricType::GAUGE,
-        &["machine", "source"],
+        &["machine", "method"],
     ),
     (
         Fixed::MachineSpeedKnown,
         "bandwatch_machine_speed_known",
         "1 while the machine's running speed is known and fresh, else 0.",
         MetricType::GAUGE,
-        &["machine", "source"],
+        &["machine", "method"],
     ),
     (
         Fixed::AlarmState,

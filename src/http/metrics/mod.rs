@@ -24,7 +24,8 @@
 //! [`RENDER_MAX_AGE`] of the start of its render; never longer.
 //!
 //! Files: `families` (the fixed families and the naming of the
-//! config-dependent ones), `walk` (the one walk of the state, feeding any
+//! config-dependent ones), `process` (the `process_*` series from
+//! `/proc/self`), `walk` (the one walk of the state, feeding any
 //! encoder), `text` (the direct encoder), `proto` (tests: the reference
 //! encoder on the prometheus crate).
 //!
@@ -34,6 +35,7 @@
 //! source, kind, reason, path, status).
 
 mod families;
+pub mod process;
 #[cfg(test)]
 pub(crate) mod proto;
 mod text;
@@ -65,6 +67,15 @@ pub const CONTENT_TYPE: &str = prometheus::TEXT_FORMAT;
 /// demo's settings), so a scrape sees values at most this much older than
 /// an uncached render would show.
 pub const RENDER_MAX_AGE: Duration = Duration::from_millis(200);
+
+/// `bandwatch_build_info`'s labels: version, git commit (12 hex digits,
+/// "unknown" when built outside a git checkout) and target triple, as
+/// build.rs found them.
+pub const BUILD_LABELS: [&str; 3] = [
+    env!("CARGO_PKG_VERSION"),
+    env!("BANDWATCH_GIT_COMMIT"),
+    env!("BANDWATCH_TARGET"),
+];
 
 /// Monotonic time for the render cache (tests step it by hand).
 pub type MonoClock = Arc<dyn Fn() -> Duration + Send + Sync>;
@@ -156,6 +167,10 @@ pub struct Metrics {
     connections: ConnectionMetrics,
     max_age: Duration,
     mono: MonoClock,
+    /// Whether the `process_*` series are exported (off where the
+    /// exposition must be reproducible: the golden file, the reference
+    /// encoder's comparison).
+    process: bool,
     cache: Mutex<Option<Cached>>,
     /// Held while rendering, so that concurrent scrapes wait for one
     /// render instead of each doing their own.
@@ -171,11 +186,13 @@ impl Metrics {
     /// programming error (two families of one name); that is logged and
     /// the remaining metrics are still served.
     pub fn new(app: Arc<AppState>) -> Metrics {
-        Metrics::with_clock(app, unix_now_ns)
+        let live = Arc::new(arc_swap::ArcSwap::new(app));
+        Metrics::live(live)
     }
 
     /// As [`Metrics::new`], with the wall clock used for ages replaced
-    /// (tests pin it to get a reproducible exposition).
+    /// (tests pin it to get a reproducible exposition) and without the
+    /// `process_*` series (they change by themselves).
     pub fn with_clock(app: Arc<AppState>, clock: fn() -> u64) -> Metrics {
         Metrics::with_cache(app, clock, RENDER_MAX_AGE, Arc::new(process_mono))
     }
@@ -190,12 +207,18 @@ impl Metrics {
         mono: MonoClock,
     ) -> Metrics {
         let live = Arc::new(arc_swap::ArcSwap::new(app));
-        Metrics::with_live(live, clock, max_age, mono)
+        Metrics::with_live(live, clock, max_age, mono, false)
     }
 
     /// The metrics of a state a reload may replace.
     pub fn live(live: LiveState) -> Metrics {
-        Metrics::with_live(live, unix_now_ns, RENDER_MAX_AGE, Arc::new(process_mono))
+        Metrics::with_live(
+            live,
+            unix_now_ns,
+            RENDER_MAX_AGE,
+            Arc::new(process_mono),
+            true,
+        )
     }
 
     fn with_live(
@@ -203,6 +226,7 @@ impl Metrics {
         clock: fn() -> u64,
         max_age: Duration,
         mono: MonoClock,
+        process: bool,
     ) -> Metrics {
         let app = live.load_full();
         let registry = Registry::new();
@@ -218,7 +242,7 @@ impl Metrics {
                 "bandwatch_build_info",
                 "Always 1; the labels name the running bandwatch build.",
             ),
-            &["version"],
+            &["version", "commit", "target"],
         );
         let start_time = Gauge::new(
             "bandwatch_start_time_seconds",
@@ -235,7 +259,7 @@ impl Metrics {
             }
         };
         if let Ok(g) = build_info {
-            g.with_label_values(&[env!("CARGO_PKG_VERSION")]).set(1);
+            g.with_label_values(&BUILD_LABELS).set(1);
             register(&registry, Box::new(g));
         }
         if let Ok(g) = start_time {
@@ -257,6 +281,7 @@ impl Metrics {
             clock,
             max_age,
             mono,
+            process,
             cache: Mutex::new(None),
             rendering: Mutex::new(()),
         }
@@ -335,6 +360,10 @@ impl Metrics {
             let mut text = Vec::new();
             TextEncoder::new().encode(std::slice::from_ref(&f), &mut text)?;
             statics.push((f.name().to_string(), text));
+        }
+        if self.process {
+            statics.extend(process::families());
+            statics.sort_by(|a, b| a.0.cmp(&b.0));
         }
         Ok(collector.encode(&statics))
     }

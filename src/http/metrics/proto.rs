@@ -26,12 +26,10 @@ pub fn render(app: Arc<AppState>, clock: fn() -> u64) -> Vec<u8> {
             "bandwatch_build_info",
             "Always 1; the labels name the running bandwatch build.",
         ),
-        &["version"],
+        &["version", "commit", "target"],
     )
     .expect("build info");
-    build_info
-        .with_label_values(&[env!("CARGO_PKG_VERSION")])
-        .set(1);
+    build_info.with_label_values(&super::BUILD_LABELS).set(1);
     registry.register(Box::new(build_info)).expect("register");
     let start_time = Gauge::new(
         "bandwatch_start_time_seconds",
@@ -167,7 +165,7 @@ impl ProtoSink<'_> {
             Labels::Rejected(k, reason) => vec![src(k), label("reason", reason)],
             Labels::Machine(k) => {
                 let m = &self.app.machines[k].spec;
-                vec![label("machine", &m.name), label("source", m.speed.as_str())]
+                vec![label("machine", &m.name), label("method", m.speed.as_str())]
             }
             Labels::Kind(k) => vec![label("kind", RECORD_KINDS[k])],
         }

@@ -247,7 +247,7 @@ impl PipelineCollector {
         let machines = app
             .machines
             .iter()
-            .map(|m| label_set(&[("machine", &m.spec.name), ("source", m.spec.speed.as_str())]))
+            .map(|m| label_set(&[("machine", &m.spec.name), ("method", m.spec.speed.as_str())]))
             .collect();
         let bufs = vec![String::new(); heads.len()];
         PipelineCollector {

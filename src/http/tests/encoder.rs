@@ -177,7 +177,7 @@ fn direct_encoder_matches_the_prometheus_crate() {
         r#"bandwatch_alarm_limit{channel="z-last",band="overall-crest-factor",level="danger"} 6"#,
         r#"bandwatch_alarm_limit_meters_per_second{channel="z-last",band="vel",level="alert"} 0.0045"#,
         r#"bandwatch_source_rejected_total{source="tcp2",reason="crc_mismatch"} 5"#,
-        r#"bandwatch_machine_speed_hertz{machine="m1",source="fixed"} 25"#,
+        r#"bandwatch_machine_speed_hertz{machine="m1",method="fixed"} 25"#,
         r#"bandwatch_channel_mean_meters_per_second_squared{channel="B-upper"} -0"#,
         r#"bandwatch_channel_samples_received_total{channel="a"} 1152921504606847000"#,
     ] {

@@ -143,11 +143,30 @@ async fn metrics_are_si_and_complete() {
             "{name}"
         );
     }
+    let [version, commit, target] = metrics::BUILD_LABELS;
+    assert_eq!(version, env!("CARGO_PKG_VERSION"));
     let build = format!(
-        r#"bandwatch_build_info{{version="{}"}}"#,
-        env!("CARGO_PKG_VERSION")
+        r#"bandwatch_build_info{{commit="{commit}",target="{target}",version="{version}"}}"#
     );
-    assert_eq!(sample(t, &build), Some(1.0));
+    assert_eq!(sample(t, &build), Some(1.0), "{t}");
+    // The commit and target as git and rustc name them (read here, apart
+    // from build.rs): the checkout's HEAD, or "unknown" outside git.
+    let run = |cmd: &str, args: &[&str]| {
+        std::process::Command::new(cmd)
+            .args(args)
+            .output()
+            .ok()
+            .filter(|o| o.status.success())
+            .map(|o| String::from_utf8_lossy(&o.stdout).trim().to_string())
+    };
+    if std::env::var_os("BANDWATCH_GIT_COMMIT").is_none() {
+        let head = run("git", &["rev-parse", "--short=12", "HEAD"]);
+        assert_eq!(commit, head.as_deref().unwrap_or("unknown"));
+    }
+    if let Some(v) = run("rustc", &["-vV"]) {
+        let host = v.lines().find_map(|l| l.strip_prefix("host: "));
+        assert_eq!(Some(target), host, "tests run on the host");
+    }
     let start = sample(t, "bandwatch_start_time_seconds").expect("start time");
     assert!(close(start, st.started_unix_ns as f64 * 1e-9, 1e-3));
     // Help strings are sentences; every family has a type.
@@ -216,12 +235,130 @@ async fn http_requests_are_counted_by_route_template() {
     assert!(!t.contains("path=\"/api/v1/channels/a\""));
 }
 
+/// The `process_*` series against /proc and tools read here: ps(1) for
+/// CPU time and elapsed time, /proc/self/status for memory (kB, proc(5)),
+/// getrlimit(2) for the fd limit.
+#[tokio::test]
+async fn process_series_match_proc() {
+    use metrics::process;
+    let st = ready_state();
+    let r = get(&st, "/metrics").await;
+    let t = &r.body;
+    let v = |name: &str| sample(t, name).unwrap_or_else(|| panic!("{name} missing:\n{t}"));
+    for (name, kind) in [
+        ("process_cpu_seconds_total", "counter"),
+        ("process_resident_memory_bytes", "gauge"),
+        ("process_virtual_memory_bytes", "gauge"),
+        ("process_open_fds", "gauge"),
+        ("process_max_fds", "gauge"),
+        ("process_start_time_seconds", "gauge"),
+    ] {
+        assert!(t.contains(&format!("# TYPE {name} {kind}\n")), "{name}");
+    }
+    let status = std::fs::read_to_string("/proc/self/status").expect("status");
+    let kb = |key: &str| -> f64 {
+        status
+            .lines()
+            .find_map(|l| l.strip_prefix(key))
+            .and_then(|l| l.trim().trim_end_matches("kB").trim().parse::<f64>().ok())
+            .unwrap_or_else(|| panic!("{key} in /proc/self/status"))
+            * 1024.0
+    };
+    // Other tests run in this process at the same time: memory within a
+    // factor of two of what status shows a moment later.
+    let (rss, vm) = (
+        v("process_resident_memory_bytes"),
+        v("process_virtual_memory_bytes"),
+    );
+    let (rss_now, vm_now) = (kb("VmRSS:"), kb("VmSize:"));
+    assert!(
+        rss > 1e6 && rss > rss_now / 2.0 && rss < rss_now * 2.0,
+        "{rss} vs {rss_now}"
+    );
+    assert!(
+        vm >= rss && vm > vm_now / 2.0 && vm < vm_now * 2.0,
+        "{vm} vs {vm_now}"
+    );
+    let (soft, _) = rlimit::getrlimit(rlimit::Resource::NOFILE).expect("getrlimit");
+    let max = v("process_max_fds");
+    if soft == rlimit::INFINITY {
+        assert!(max.is_infinite());
+    } else {
+        assert_eq!(max, soft as f64);
+    }
+    let fds = v("process_open_fds");
+    assert!(fds >= 3.0 && fds <= max, "{fds} open of {max}");
+    // ps: cumulative CPU time (whole seconds) and elapsed time since start.
+    let ps = std::process::Command::new("ps")
+        .args([
+            "-o",
+            "times=,etimes=",
+            "-p",
+            &std::process::id().to_string(),
+        ])
+        .output()
+        .expect("run ps");
+    let out = String::from_utf8_lossy(&ps.stdout);
+    let nums: Vec<f64> = out
+        .split_ascii_whitespace()
+        .map(|x| x.parse().expect("ps number"))
+        .collect();
+    let (cpu_ps, elapsed_ps) = (nums[0], nums[1]);
+    let cpu = v("process_cpu_seconds_total");
+    assert!(
+        cpu >= 0.0 && cpu <= cpu_ps + 2.0 && cpu >= cpu_ps - 10.0,
+        "{cpu} vs ps {cpu_ps}"
+    );
+    let now = unix_now_ns() as f64 * 1e-9;
+    let start = v("process_start_time_seconds");
+    assert!(
+        (start - (now - elapsed_ps)).abs() < 3.0,
+        "{start} vs now - {elapsed_ps}"
+    );
+    // Counters never decrease.
+    let again = get(&st, "/metrics").await;
+    let cpu2 = sample(&again.body, "process_cpu_seconds_total").expect("cpu");
+    assert!(cpu2 >= cpu);
+    // The parsers on proc(5)'s layouts, including a command name holding
+    // `) (` and spaces.
+    let stat = "4242 (a) (b c) S 1 2 3 4 5 6 7 8 9 10 150 25 0 0 20 0 3 0 9000 123456789 2048 18446744073709551615";
+    assert_eq!(
+        process::parse_stat(stat).expect("stat"),
+        process::Stat {
+            utime_ticks: 150,
+            stime_ticks: 25,
+            start_ticks: 9000,
+            vsize_bytes: 123_456_789,
+            rss_pages: 2048,
+        }
+    );
+    assert!(process::parse_stat("4242 (a) S 1 2").is_err());
+    assert!(process::parse_stat("no paren").is_err());
+    let limits = "Limit                     Soft Limit           Hard Limit           Units\n\
+                  Max open files            1024                 524288               files\n";
+    assert_eq!(process::parse_max_files(limits).expect("limits"), 1024.0);
+    let unlimited = "Max open files            unlimited            unlimited            files\n";
+    assert!(process::parse_max_files(unlimited)
+        .expect("limits")
+        .is_infinite());
+    assert!(process::parse_max_files("Max cpu time unlimited").is_err());
+    assert_eq!(
+        process::parse_btime("cpu 1 2\nbtime 1700000000\n").expect("btime"),
+        1_700_000_000
+    );
+    assert!(process::parse_btime("cpu 1 2\n").is_err());
+}
+
 #[test]
 fn golden_exposition() {
     let app = golden_state();
     let m = metrics::Metrics::with_clock(app, golden_clock);
     let text = String::from_utf8(m.render_fresh().expect("render")).expect("utf-8");
-    let text = text.replace(env!("CARGO_PKG_VERSION"), "VERSION");
+    let [version, commit, target] = metrics::BUILD_LABELS;
+    let text = text
+        .replace(&format!("version=\"{version}\""), "version=\"VERSION\"")
+        .replace(&format!("commit=\"{commit}\""), "commit=\"COMMIT\"")
+        .replace(&format!("target=\"{target}\""), "target=\"TARGET\"");
     let path = concat!(env!("CARGO_MANIFEST_DIR"), "/tests/golden/metrics.prom");
     if std::env::var_os("BANDWATCH_BLESS").is_some() {
         std::fs::write(path, &text).expect("write golden");
