@@ -17,12 +17,19 @@
 # 4. on the central store: the pump-de/bpfo band series arrives from both
 #    PCs with their external labels; the dashboard's instance variable
 #    query sees both PCs;
-# 5. SIGTERM to PC 1's daemon: its agent's scrapes fail (up 0), and the
+# 5. what one PC sends: series per scrape, samples/s, bytes/sample on the
+#    wire and in the agent's WAL, from the agent's own counters
+#    (docs/scale-out.md, "Sizing");
+# 6. the link drops: the central store is stopped for 10 s and started
+#    again on its port and data; pc2's up samples of those 10 s must reach
+#    it from the agent's WAL (docs/scale-out.md, "When the link drops");
+# 7. SIGTERM to PC 1's daemon: its agent's scrapes fail (up 0), and the
 #    central store's BandwatchTargetDown fires for pc="pc1" (and not for
-#    pc2) within 60 s, read from /api/v1/alerts;
-# 6. what one PC sends: series per scrape, samples/s, bytes/sample on the
-#    wire, from the agent's own remote-write counters (docs/scale-out.md,
-#    "Sizing").
+#    pc2) within 60 s, read from /api/v1/alerts and /api/v1/rules;
+# 8. PC 1's agent stopped: nothing arrives from pc1 any more, and the
+#    central store's BandwatchPcSilent (deploy/scale-out/central-rules.yml,
+#    loaded as is; the central store runs with a 5 s lookback instead of
+#    5 min to keep the test short) fires for pc1 and not for pc2.
 #
 # Needs curl, python3, promtool and prometheus (Debian package
 # `prometheus`). Everything binds 127.0.0.1 only; every step is
@@ -182,8 +189,12 @@ global:
   evaluation_interval: 1s
 rule_files:
   - $work/rules.yml
+  - $root/deploy/scale-out/central-rules.yml
 EOF
-start_prom central --storage.tsdb.path="$work/central-data" --web.enable-remote-write-receiver
+# --query.lookback-delta=5s (default 5m): BandwatchPcSilent fires once a
+# PC has been silent for the lookback; 5 s keeps the test short.
+start_prom central --storage.tsdb.path="$work/central-data" --web.enable-remote-write-receiver \
+    --query.lookback-delta=5s
 central="$prom_url"
 central_pid="$prom_pid"
 
@@ -220,6 +231,7 @@ out="$(timeout 60 promtool check config "$work/agent-pc1.yml" 2>&1)" || fail "pr
 start_prom agent-pc1 --enable-feature=agent --storage.agent.path="$work/agent-pc1-wal" \
     --storage.remote.flush-deadline=2s
 agent1="$prom_url"
+agent1_pid="$prom_pid"
 start_prom agent-pc2 --enable-feature=agent --storage.agent.path="$work/agent-pc2-wal" \
     --storage.remote.flush-deadline=2s
 
@@ -280,7 +292,7 @@ t_down="$(date +%s)"
 sleep 10
 t_up="$(date +%s)"
 PROM_PORT="${central##*:}" start_prom central --storage.tsdb.path="$work/central-data" \
-    --web.enable-remote-write-receiver
+    --web.enable-remote-write-receiver --query.lookback-delta=5s
 [ "$prom_url" = "$central" ] || fail "the central store came back on $prom_url, not $central"
 gap=$((t_up - t_down))
 # up{instance="pc2"} is scraped every second: over the outage the central
@@ -343,5 +355,33 @@ printf '%s\n' "$rules" | sed 's/^/   rules API: /'
 printf '%s\n' "$rules" | grep -q '^BandwatchTargetDown firing ok$' || fail "the rules API does not show BandwatchTargetDown firing"
 printf '%s\n' "$rules" | grep -q '^BandwatchTargetAbsent inactive ok$' \
     || fail "BandwatchTargetAbsent is not inactive while pc2 still reports"
+
+# ---------------------------------------------------------------------------
+step "stop pc1's agent; BandwatchPcSilent{pc=\"pc1\"} (deploy/scale-out/central-rules.yml) must fire (up to 60 s)"
+stop_pid "$agent1_pid"
+kill -0 "$agent1_pid" 2>/dev/null && fail "pc1's agent did not stop"
+t0=$SECONDS
+silent=""
+deadline=$((SECONDS + 60))
+while [ "$SECONDS" -lt "$deadline" ]; do
+    body="$(curl -sf --max-time 5 "$central/api/v1/alerts" || true)"
+    silent="$(printf '%s' "$body" | python3 -c '
+import json, sys
+try:
+    alerts = json.load(sys.stdin)["data"]["alerts"]
+except Exception:
+    sys.exit(0)
+for a in alerts:
+    l = a["labels"]
+    if l.get("alertname") == "BandwatchPcSilent":
+        print(l.get("pc", "-"), a["state"], l.get("instance", "-"))
+')"
+    printf '%s\n' "$silent" | grep -q '^pc1 firing ' && break
+    sleep 0.5
+done
+printf '%s\n' "$silent" | grep -q '^pc1 firing pc1$' \
+    || fail "BandwatchPcSilent did not fire for pc1 within 60 s (alerts: ${body:-none})"
+echo "   firing after $((SECONDS - t0)) s: $(printf '%s\n' "$silent" | grep '^pc1 firing')"
+printf '%s\n' "$silent" | grep -q '^pc2 firing' && fail "BandwatchPcSilent also fires for pc2, which still reports: $silent"
 
 echo "scale_out: OK ($((SECONDS - started)) s)"
