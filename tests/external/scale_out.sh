@@ -31,8 +31,14 @@
 #    loaded as is; the central store runs with a 5 s lookback instead of
 #    5 min to keep the test short) fires for pc1 and not for pc2.
 #
-# Needs curl, python3, promtool and prometheus (Debian package
-# `prometheus`). Everything binds 127.0.0.1 only; every step is
+# Remote write goes over TLS with basic auth, as in deploy/scale-out/:
+# the central store has a web config (a self-signed certificate made with
+# openssl, one bcrypt account per PC and one for the test's queries), each
+# agent trusts the certificate and reads its password from a file, and a
+# write without credentials is refused (401).
+#
+# Needs curl, openssl, python3 with bcrypt (the .venv of .ci/run), promtool
+# and prometheus (Debian package `prometheus`). Everything binds 127.0.0.1 only; every step is
 # time-bounded; whatever this script started is stopped on exit.
 # Exit 0 on success, 1 on any failure.
 # Usage: bash tests/external/scale_out.sh
@@ -76,10 +82,12 @@ fail() {
     exit 1
 }
 
-for tool in curl python3 promtool prometheus timeout; do
+for tool in curl openssl python3 promtool prometheus timeout; do
     command -v "$tool" >/dev/null 2>&1 \
-        || fail "$tool not found (Debian: apt-get install -y prometheus curl python3)"
+        || fail "$tool not found (Debian: apt-get install -y prometheus curl openssl python3)"
 done
+python3 -c 'import bcrypt' 2>/dev/null \
+    || fail "python3 has no bcrypt module (pip install -r tests/reference/requirements.txt)"
 
 # A loopback TCP port nobody listens on right now (Prometheus cannot take
 # port 0 and tell us the port it got).
@@ -95,9 +103,14 @@ free_port() {
     return 1
 }
 
-# json_query URL PROMQL: the query API's JSON reply on stdout.
+# ccurl ARGS...: curl to the central store (its CA, the reader account).
+ccurl() {
+    curl -sf --max-time 5 --cacert "$work/central.crt" -u "reader:$reader_pw" "$@"
+}
+
+# json_query URL PROMQL: the central store's query API's JSON reply.
 json_query() {
-    curl -sf --max-time 5 -G --data-urlencode "query=$2" "$1/api/v1/query"
+    ccurl -G --data-urlencode "query=$2" "$1/api/v1/query"
 }
 
 bin="${BANDWATCH_BIN:-}"
@@ -138,8 +151,8 @@ start_demo() {
 
 # start_prom NAME ARGS...: prometheus on a free loopback port (or on
 # $PROM_PORT when set) with --config.file=$work/NAME.yml and ARGS (3 attempts
-# at a port; 30 s each for /-/ready); sets $prom_url and $prom_pid and
-# appends the pid to $pids.
+# at a port; 30 s each for /-/ready, over https with ccurl when $PROM_TLS is
+# set); sets $prom_url and $prom_pid and appends the pid to $pids.
 start_prom() {
     local name="$1" port p
     shift
@@ -155,8 +168,14 @@ start_prom() {
         pids="$pids $p"
         for _ in $(seq 1 300); do
             kill -0 "$p" 2>/dev/null || break
-            if curl -sf --max-time 2 -o /dev/null "http://127.0.0.1:$port/-/ready"; then
+            if [ -n "${PROM_TLS:-}" ]; then
+                if ccurl -o /dev/null "https://127.0.0.1:$port/-/ready"; then
+                    prom_url="https://127.0.0.1:$port"
+                fi
+            elif curl -sf --max-time 2 -o /dev/null "http://127.0.0.1:$port/-/ready"; then
                 prom_url="http://127.0.0.1:$port"
+            fi
+            if [ -n "$prom_url" ]; then
                 prom_pid="$p"
                 return 0
             fi
@@ -184,6 +203,31 @@ grep -A3 'alert: BandwatchTargetDown$' "$work/rules.yml" | grep -q 'for: 2s$' \
     || fail "BandwatchTargetDown's for: was not shortened"
 out="$(timeout 60 promtool check rules "$work/rules.yml" 2>&1)" || fail "promtool rejects the test copy: $out"
 
+step "central store's TLS certificate (openssl) and accounts (bcrypt): pc1, pc2, reader"
+timeout 60 openssl req -x509 -newkey ec -pkeyopt ec_paramgen_curve:prime256v1 -nodes \
+    -keyout "$work/central.key" -out "$work/central.crt" -days 2 -subj "/CN=localhost" \
+    -addext "subjectAltName=DNS:localhost,IP:127.0.0.1" >"$work/openssl.log" 2>&1 \
+    || fail "openssl req failed: $(cat "$work/openssl.log")"
+bcrypt_hash() {
+    timeout 60 python3 -c 'import bcrypt, sys; print(bcrypt.hashpw(sys.argv[1].encode(), bcrypt.gensalt(10)).decode())' "$1"
+}
+reader_pw="reader-$RANDOM-$RANDOM"
+for pc in pc1 pc2; do
+    printf 'write-%s-%s-%s' "$pc" "$RANDOM" "$RANDOM" >"$work/$pc.pass"
+    chmod 600 "$work/$pc.pass"
+done
+{
+    echo "tls_server_config:"
+    echo "  cert_file: central.crt"
+    echo "  key_file: central.key"
+    echo "basic_auth_users:"
+    echo "  pc1: $(bcrypt_hash "$(cat "$work/pc1.pass")")"
+    echo "  pc2: $(bcrypt_hash "$(cat "$work/pc2.pass")")"
+    echo "  reader: $(bcrypt_hash "$reader_pw")"
+} >"$work/central-web.yml"
+out="$(timeout 30 promtool check web-config "$work/central-web.yml" 2>&1)" \
+    || fail "promtool rejects the central web config: $out"
+
 cat >"$work/central.yml" <<EOF
 global:
   evaluation_interval: 1s
@@ -193,8 +237,8 @@ rule_files:
 EOF
 # --query.lookback-delta=5s (default 5m): BandwatchPcSilent fires once a
 # PC has been silent for the lookback; 5 s keeps the test short.
-start_prom central --storage.tsdb.path="$work/central-data" --web.enable-remote-write-receiver \
-    --query.lookback-delta=5s
+PROM_TLS=1 start_prom central --storage.tsdb.path="$work/central-data" --web.enable-remote-write-receiver \
+    --query.lookback-delta=5s --web.config.file="$work/central-web.yml"
 central="$prom_url"
 central_pid="$prom_pid"
 
@@ -218,12 +262,26 @@ scrape_configs:
         replacement: $1
 remote_write:
   - url: $central/api/v1/write
+    tls_config:
+      ca_file: $work/central.crt
+    basic_auth:
+      username: $1
+      password_file: $work/$1.pass
     queue_config:
       batch_send_deadline: 1s
       min_backoff: 100ms
       max_backoff: 1s
 EOF
 }
+step "the central store refuses a remote write without credentials, or with a wrong password"
+code="$(curl -s -o /dev/null -w '%{http_code}' --max-time 5 --cacert "$work/central.crt" \
+    -X POST --data-binary @/dev/null "$central/api/v1/write" || true)"
+[ "$code" = 401 ] || fail "a remote write without credentials got HTTP $code, expected 401"
+code="$(curl -s -o /dev/null -w '%{http_code}' --max-time 5 --cacert "$work/central.crt" \
+    -u "pc1:wrong" -X POST --data-binary @/dev/null "$central/api/v1/write" || true)"
+[ "$code" = 401 ] || fail "a remote write with a wrong password got HTTP $code, expected 401"
+echo "   401 both times"
+
 write_agent pc1 "$bw1"
 write_agent pc2 "$bw2"
 out="$(timeout 60 promtool check config "$work/agent-pc1.yml" 2>&1)" || fail "promtool rejects the agent config: $out"
@@ -291,8 +349,8 @@ kill -0 "$central_pid" 2>/dev/null && fail "the central store did not stop"
 t_down="$(date +%s)"
 sleep 10
 t_up="$(date +%s)"
-PROM_PORT="${central##*:}" start_prom central --storage.tsdb.path="$work/central-data" \
-    --web.enable-remote-write-receiver --query.lookback-delta=5s
+PROM_TLS=1 PROM_PORT="${central##*:}" start_prom central --storage.tsdb.path="$work/central-data" \
+    --web.enable-remote-write-receiver --query.lookback-delta=5s --web.config.file="$work/central-web.yml"
 [ "$prom_url" = "$central" ] || fail "the central store came back on $prom_url, not $central"
 gap=$((t_up - t_down))
 # up{instance="pc2"} is scraped every second: over the outage the central
@@ -325,7 +383,7 @@ t0=$SECONDS
 state=""
 deadline=$((SECONDS + 60))
 while [ "$SECONDS" -lt "$deadline" ]; do
-    body="$(curl -sf --max-time 5 "$central/api/v1/alerts" || true)"
+    body="$(ccurl "$central/api/v1/alerts" || true)"
     state="$(printf '%s' "$body" | python3 -c '
 import json, sys
 try:
@@ -344,7 +402,7 @@ printf '%s\n' "$state" | grep -q '^pc1 firing pc1 test-plant p2$' \
     || fail "BandwatchTargetDown did not fire for pc1 within 60 s (alerts: ${body:-none})"
 echo "   firing after $((SECONDS - t0)) s: $(printf '%s\n' "$state" | grep '^pc1 firing')"
 printf '%s\n' "$state" | grep -q '^pc2 ' && fail "BandwatchTargetDown also names pc2, which is up: $state"
-rules="$(curl -sf --max-time 5 "$central/api/v1/rules?type=alert" | python3 -c '
+rules="$(ccurl "$central/api/v1/rules?type=alert" | python3 -c '
 import json, sys
 for g in json.load(sys.stdin)["data"]["groups"]:
     for r in g["rules"]:
@@ -364,7 +422,7 @@ t0=$SECONDS
 silent=""
 deadline=$((SECONDS + 60))
 while [ "$SECONDS" -lt "$deadline" ]; do
-    body="$(curl -sf --max-time 5 "$central/api/v1/alerts" || true)"
+    body="$(ccurl "$central/api/v1/alerts" || true)"
     silent="$(printf '%s' "$body" | python3 -c '
 import json, sys
 try:
