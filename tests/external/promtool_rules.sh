@@ -1,8 +1,9 @@
 #!/usr/bin/env bash
 # Checks the example alerting rules with promtool (Debian package
 # "prometheus"): syntax and lint (check rules), then behaviour on synthetic
-# series (test rules). Exit 0 if both pass; promtool's exit code otherwise;
-# 2 if promtool is missing.
+# series (test rules), for deploy/prometheus-rules.yml and for the central
+# store's deploy/scale-out/central-rules.yml. Exit 0 if all pass; promtool's
+# exit code otherwise; 2 if promtool is missing.
 # Usage: bash tests/external/promtool_rules.sh
 set -euo pipefail
 root="$(cd "$(dirname "${BASH_SOURCE[0]}")/../.." && pwd)"
@@ -10,3 +11,7 @@ command -v promtool >/dev/null || { echo "promtool_rules: promtool not found (ap
 cd "$root/deploy"
 timeout 60 promtool check rules prometheus-rules.yml
 timeout 120 promtool test rules prometheus-rules.test.yml
+# The central store's extra rule for many PCs (docs/scale-out.md).
+cd "$root/deploy/scale-out"
+timeout 60 promtool check rules central-rules.yml
+timeout 120 promtool test rules central-rules.test.yml
