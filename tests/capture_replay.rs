@@ -25,32 +25,6 @@ use bandwatch::tools::replay::{replay_capture, ReplayError, ReplayLine, REPRODUC
 /// difference should be 0; see `tools::replay::REPRODUCE_REL`.
 const BOUND: f64 = 1e-6;
 
-/// The demo config, sped up `speed` times, storing into `dir`, with
-/// pump-de's BPFO alert limit lowered so that it trips at once.
-fn demo_text(dir: &Path, speed: f64) -> String {
-    let text = std::fs::read_to_string("config/demo.toml").unwrap();
-    assert!(text.contains("alert = { limit = 0.05 }    # g envelope RMS"));
-    text.replace("seed = 2", &format!("seed = 2\nspeed = {speed}"))
-        .replace(
-            "storage_dir = \"../demo-data\"",
-            &format!("storage_dir = {:?}", dir.join("data").display().to_string()),
-        )
-        .replace(
-            "token_file = \"demo-token\"",
-            &format!(
-                "token_file = {:?}",
-                std::fs::canonicalize("config/demo-token")
-                    .unwrap()
-                    .display()
-                    .to_string()
-            ),
-        )
-        .replace(
-            "alert = { limit = 0.05 }    # g envelope RMS",
-            "alert = { limit = 0.0001 }",
-        )
-}
-
 fn config(text: &str) -> Config {
     match parse_str(text) {
         Ok(c) => c,
@@ -61,7 +35,7 @@ fn config(text: &str) -> Config {
 /// Runs the sped-up demo until pump-de's BPFO alarm has stored a complete
 /// capture; returns the capture directory and its id.
 async fn demo_capture(dir: &Path) -> (PathBuf, String) {
-    let cfg = config(&demo_text(dir, 10.0));
+    let cfg = config(&alarm_common::demo_text(dir, 10.0));
     let p = bandwatch::Pipeline::start(&cfg).unwrap();
     let caps = dir.join("data/captures");
     let deadline = Instant::now() + Duration::from_secs(120);
@@ -262,7 +236,7 @@ async fn a_demo_trip_capture_replays_to_its_stored_spectrum_and_bands() {
         "{stderr}"
     );
     // With the config that produced it, the old capture replays too.
-    let cfg = config(&demo_text(dir.path(), 10.0));
+    let cfg = config(&alarm_common::demo_text(dir.path(), 10.0));
     let r3 = replay_capture(&old_json, Some(&cfg), &mut Vec::new()).unwrap();
     let c3 = r3.check.unwrap();
     assert!(c3.reproduced(), "{c3}");

@@ -27,29 +27,7 @@ use tower::ServiceExt;
 /// The demo config, sped up 10×, storing into `dir`, with pump-de's BPFO
 /// alert limit lowered so that it trips at once.
 fn demo_config(dir: &Path) -> bandwatch::config::Config {
-    let text = std::fs::read_to_string("config/demo.toml").unwrap();
-    assert!(text.contains("alert = { limit = 0.05 }    # g envelope RMS"));
-    let text = text
-        .replace("seed = 2", "seed = 2\nspeed = 10.0")
-        .replace(
-            "storage_dir = \"../demo-data\"",
-            &format!("storage_dir = {:?}", dir.join("data").display().to_string()),
-        )
-        .replace(
-            "token_file = \"demo-token\"",
-            &format!(
-                "token_file = {:?}",
-                std::fs::canonicalize("config/demo-token")
-                    .unwrap()
-                    .display()
-                    .to_string()
-            ),
-        )
-        .replace(
-            "alert = { limit = 0.05 }    # g envelope RMS",
-            "alert = { limit = 0.0001 }",
-        );
-    match bandwatch::config::parse_str(&text) {
+    match bandwatch::config::parse_str(&alarm_common::demo_text(dir, 10.0)) {
         Ok(c) => c,
         Err(e) => panic!("{e:?}"),
     }

@@ -44,3 +44,29 @@ pub fn names(dir: &Path) -> Vec<String> {
     v.sort();
     v
 }
+
+/// The demo config, sped up `speed` times, storing into `dir`, with
+/// pump-de's BPFO alert limit lowered so that it trips at once.
+pub fn demo_text(dir: &Path, speed: f64) -> String {
+    let text = std::fs::read_to_string("config/demo.toml").unwrap();
+    assert!(text.contains("alert = { limit = 0.05 }    # g envelope RMS"));
+    text.replace("seed = 2", &format!("seed = 2\nspeed = {speed}"))
+        .replace(
+            "storage_dir = \"../demo-data\"",
+            &format!("storage_dir = {:?}", dir.join("data").display().to_string()),
+        )
+        .replace(
+            "token_file = \"demo-token\"",
+            &format!(
+                "token_file = {:?}",
+                std::fs::canonicalize("config/demo-token")
+                    .unwrap()
+                    .display()
+                    .to_string()
+            ),
+        )
+        .replace(
+            "alert = { limit = 0.05 }    # g envelope RMS",
+            "alert = { limit = 0.0001 }",
+        )
+}
