@@ -30,17 +30,8 @@ work="$(mktemp -d "${TMPDIR:-/tmp}/bandwatch-page.XXXXXX")"
 shots="${CARGO_TARGET_DIR:-$root/target}/page-screenshots"
 pids=""
 
-stop_pid() { # pid: TERM, wait up to 10 s, then KILL
-    local pid="$1"
-    [ -n "$pid" ] || return 0
-    kill -0 "$pid" 2>/dev/null || return 0
-    kill -TERM "$pid" 2>/dev/null || true
-    for _ in $(seq 1 100); do
-        kill -0 "$pid" 2>/dev/null || return 0
-        sleep 0.1
-    done
-    kill -KILL "$pid" 2>/dev/null || true
-}
+# stop_pid PID: TERM, wait up to 10 s, then KILL.
+. "$root/tests/external/lib/common.bash"
 
 cleanup() {
     for pid in $pids; do stop_pid "$pid"; done
