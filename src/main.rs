@@ -412,7 +412,7 @@ fn main() -> ExitCode {
             state_dir: dir,
         } => {
             let state_dir = state_dir(dir);
-            let mut cfg = match bandwatch::config::load_with(&config, state_dir.as_deref()) {
+            let mut cfg = match load_config(&config, state_dir.as_deref()) {
                 Ok(c) => c,
                 Err(e) => {
                     eprintln!("{e}");
@@ -430,7 +430,7 @@ fn main() -> ExitCode {
             // the same --listen override and state directory.
             let loader: bandwatch::pipeline::reload::ConfigLoader =
                 std::sync::Arc::new(move || {
-                    let mut c = bandwatch::config::load_with(&config, state_dir.as_deref())?;
+                    let mut c = load_config(&config, state_dir.as_deref())?;
                     if let Some(l) = listen {
                         c.listen = l;
                     }
@@ -602,9 +602,27 @@ fn shutdown_signal() -> impl std::future::Future<Output = ()> {
     }
 }
 
+/// Reads and checks the config file, and its `[metrics] exclude` against
+/// the families it exports (known to the HTTP layer, above the config).
+fn load_config(
+    path: &std::path::Path,
+    state_dir: Option<&std::path::Path>,
+) -> Result<bandwatch::config::Config, bandwatch::config::ConfigError> {
+    let c = bandwatch::config::load_with(path, state_dir)?;
+    let issues = bandwatch::http::metrics::check_exposition(&c);
+    if issues.is_empty() {
+        Ok(c)
+    } else {
+        Err(bandwatch::config::ConfigError::Invalid {
+            path: path.to_path_buf(),
+            issues,
+        })
+    }
+}
+
 /// `bandwatch check`: the file, then (unless `no_env`) the environment.
 fn check(config: &std::path::Path, state_dir: Option<&std::path::Path>, no_env: bool) -> ExitCode {
-    let c = match bandwatch::config::load_with(config, state_dir) {
+    let c = match load_config(config, state_dir) {
         Ok(c) => c,
         Err(e) => {
             eprintln!("{e}");

@@ -27,6 +27,7 @@ pub mod alarms;
 pub mod bearing;
 mod check;
 pub mod environment;
+pub mod exposition;
 pub mod fixture;
 pub mod health;
 mod issue;

@@ -28,6 +28,9 @@ pub struct RawConfig {
     pub channels: Vec<RawChannel>,
     /// Where alarm records live; required when any alarm is configured.
     pub alarms: Option<RawAlarms>,
+    /// What `/metrics` leaves out (default: nothing).
+    #[serde(default)]
+    pub metrics: super::exposition::RawMetrics,
 }
 
 /// Alarms on a channel's time-domain overall levels.

@@ -36,6 +36,8 @@ pub struct Config {
     /// Seconds of trend each channel keeps in memory (`[server]
     /// trend_seconds`, README "Config reference").
     pub trend_seconds: usize,
+    /// What `/metrics` leaves out (`[metrics]`).
+    pub exposition: super::exposition::ExpositionSpec,
     pub workers: usize,
     pub ring_seconds: f64,
     pub sources: Vec<SourceSpec>,

@@ -513,6 +513,8 @@ pub struct AppState {
     pub by_name: HashMap<String, usize>,
     pub sources: Vec<Arc<SourceCounters>>,
     pub started_unix_ns: u64,
+    /// What `/metrics` leaves out (`[metrics]`; a reload applies it).
+    pub exposition: crate::config::exposition::ExpositionSpec,
 }
 
 impl AppState {
@@ -554,6 +556,7 @@ impl AppState {
             by_name,
             sources,
             started_unix_ns: unix_now_ns(),
+            exposition: config.exposition.clone(),
         }
     }
 

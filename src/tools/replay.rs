@@ -533,6 +533,7 @@ fn capture_config(spec: ChannelSpec, speed_hz: Option<f64>) -> Config {
         http: crate::config::HttpLimits::default(),
         web: None,
         trend_seconds: crate::pipeline::trend::DEFAULT_TREND_SECONDS,
+        exposition: Default::default(),
         workers: 1,
         ring_seconds: 2.0,
         sources: vec![source],

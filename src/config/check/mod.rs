@@ -37,6 +37,7 @@ pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
     check_ring_memory(&mut issues, raw.dsp.ring_seconds, &channels);
     let machines = machines::check_machines(&mut issues, &raw.machines, &raw.channels);
     let alarms = check_alarms_table(&mut issues, raw.alarms.as_ref(), &channels);
+    let exposition = crate::config::exposition::check_metrics(&mut issues, &raw.metrics);
 
     match (issues.is_empty(), listen) {
         (true, Some(listen)) => Ok(Config {
@@ -45,6 +46,7 @@ pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
             http,
             web,
             trend_seconds,
+            exposition,
             workers,
             ring_seconds: raw.dsp.ring_seconds,
             sources,

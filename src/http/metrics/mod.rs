@@ -152,6 +152,30 @@ impl ReloadMetrics {
     }
 }
 
+/// `[metrics] exclude` against the families `config` exports: an entry
+/// that matches none of the channel, band, alarm, source, machine or
+/// storage families is a mistake (a typo, or one of the daemon's own
+/// families, which are always exported) and is reported at its index.
+/// `bandwatch check`, the start and every reload run this.
+pub fn check_exposition(config: &crate::config::Config) -> Vec<crate::config::ConfigIssue> {
+    let layout = walk::DynLayout::new(config.channels.iter());
+    config
+        .exposition
+        .exclude
+        .iter()
+        .enumerate()
+        .filter(|(_, p)| !layout.names().any(|n| p.matches(n)))
+        .map(|(k, p)| crate::config::ConfigIssue {
+            path: format!("metrics.exclude[{k}]"),
+            message: format!(
+                "\"{p}\" matches no family this config exports (the daemon's own \
+                 bandwatch_build_info, bandwatch_http_*, bandwatch_config_*, \
+                 bandwatch_start_time_seconds and process_* are always exported)"
+            ),
+        })
+        .collect()
+}
+
 /// The registry behind `/metrics`, the static series the HTTP layer
 /// updates, and the render cache.
 pub struct Metrics {

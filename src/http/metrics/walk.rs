@@ -19,6 +19,8 @@ use prometheus::proto::MetricType;
 
 use super::families::{band_family, band_help, si_words, Fixed, FIXED, OVERALL};
 use crate::alarm::state::AlarmState;
+use crate::config::exposition::BandExport;
+use crate::config::{AlarmTarget, ChannelSpec};
 use crate::counters::{ChannelCounters, GapReason};
 use crate::pipeline::state::AppState;
 
@@ -89,6 +91,9 @@ pub(crate) struct DynFamily {
 #[derive(Debug)]
 pub(crate) struct Layout {
     pub dynamic: Vec<DynFamily>,
+    /// Per family (fixed in table order, then dynamic): left out by
+    /// `[metrics] exclude`.
+    pub off: Vec<bool>,
     /// Per channel, per band: index into `dynamic`.
     pub band_slot: Vec<Vec<usize>>,
     /// Per channel: index of the first of its 4 overall families.
@@ -97,7 +102,8 @@ pub(crate) struct Layout {
     /// (None: dimensionless, exported in `bandwatch_alarm_limit`).
     pub limit_slot: Vec<Vec<Option<usize>>>,
     pub channel_order: Vec<usize>,
-    /// Per channel: its bands, alarms by name.
+    /// Per channel: its bands (those `[metrics] bands` exports), alarms
+    /// by name.
     pub band_order: Vec<Vec<usize>>,
     pub alarm_order: Vec<Vec<usize>>,
     pub source_order: Vec<usize>,
@@ -115,8 +121,18 @@ fn order_by<T, K: Ord>(items: &[T], key: impl Fn(&T) -> K) -> Vec<usize> {
     o
 }
 
-impl Layout {
-    pub fn new(app: &AppState) -> Layout {
+/// The config-dependent families of `channels`, and which of them each
+/// channel writes (`Layout`'s `dynamic`, `band_slot`, `overall_slot`,
+/// `limit_slot`).
+pub(crate) struct DynLayout {
+    pub dynamic: Vec<DynFamily>,
+    pub band_slot: Vec<Vec<usize>>,
+    pub overall_slot: Vec<usize>,
+    pub limit_slot: Vec<Vec<Option<usize>>>,
+}
+
+impl DynLayout {
+    pub fn new<'a>(channels: impl Iterator<Item = &'a ChannelSpec>) -> DynLayout {
         let mut dynamic: Vec<DynFamily> = Vec::new();
         let mut index: HashMap<String, usize> = HashMap::new();
         let mut slot = |name: String, help: String, labels: &'static [&'static str]| {
@@ -125,11 +141,10 @@ impl Layout {
                 dynamic.len() - 1
             })
         };
-        let mut band_slot = Vec::with_capacity(app.channels.len());
-        let mut overall_slot = Vec::with_capacity(app.channels.len());
-        let mut limit_slot = Vec::with_capacity(app.channels.len());
-        for ch in &app.channels {
-            let spec = &ch.spec;
+        let mut band_slot = Vec::new();
+        let mut overall_slot = Vec::new();
+        let mut limit_slot = Vec::new();
+        for spec in channels {
             let q = spec.unit.quantity;
             // The four overall families of a quantity are created together,
             // so `first..first + 4` holds them even when a later channel
@@ -173,12 +188,57 @@ impl Layout {
                 .collect();
             limit_slot.push(limits);
         }
+        DynLayout {
+            dynamic,
+            band_slot,
+            overall_slot,
+            limit_slot,
+        }
+    }
+
+    /// Names of every family the walk can write for these channels: the
+    /// fixed ones, then the dynamic ones.
+    pub fn names(&self) -> impl Iterator<Item = &str> {
+        FIXED
+            .iter()
+            .map(|(_, name, ..)| *name)
+            .chain(self.dynamic.iter().map(|d| d.name.as_str()))
+    }
+}
+
+/// Whether a channel's band is exported under `[metrics] bands`.
+fn band_exported(spec: &ChannelSpec, band: usize, mode: BandExport) -> bool {
+    match mode {
+        BandExport::All => true,
+        BandExport::Alarmed => spec
+            .alarms
+            .iter()
+            .any(|a| a.target == AlarmTarget::Band(band)),
+    }
+}
+
+impl Layout {
+    pub fn new(app: &AppState) -> Layout {
+        let DynLayout {
+            dynamic,
+            band_slot,
+            overall_slot,
+            limit_slot,
+        } = DynLayout::new(app.channels.iter().map(|c| &*c.spec));
+        let ex = &app.exposition;
+        let off: Vec<bool> = FIXED
+            .iter()
+            .map(|(_, name, ..)| *name)
+            .chain(dynamic.iter().map(|d| d.name.as_str()))
+            .map(|name| ex.excludes(name))
+            .collect();
         let mut reasons = GapReason::ALL.to_vec();
         reasons.sort_by_key(|r| r.as_str());
         let mut states: Vec<usize> = (0..AlarmState::ALL.len()).collect();
         states.sort_by_key(|&k| AlarmState::ALL[k].as_str());
         Layout {
             dynamic,
+            off,
             band_slot,
             overall_slot,
             limit_slot,
@@ -186,7 +246,11 @@ impl Layout {
             band_order: app
                 .channels
                 .iter()
-                .map(|c| order_by(&c.spec.bands, |b| b.name.clone()))
+                .map(|c| {
+                    let mut o = order_by(&c.spec.bands, |b| b.name.clone());
+                    o.retain(|&j| band_exported(&c.spec, j, ex.bands));
+                    o
+                })
                 .collect(),
             alarm_order: app
                 .channels
@@ -233,8 +297,51 @@ fn bit(b: bool) -> f64 {
     }
 }
 
-/// Visits every sample of `app` (ages against `now_ns`) into `sink`.
+impl Layout {
+    /// Whether `[metrics] exclude` leaves `f` out.
+    #[inline]
+    fn is_off(&self, f: Fam) -> bool {
+        let i = match f {
+            Fam::Fixed(f) => f as usize,
+            Fam::Dyn(s) => FIXED.len() + s,
+        };
+        self.off.get(i).copied().unwrap_or(false)
+    }
+}
+
+/// Passes on the samples of the families `[metrics]` keeps.
+struct Trimmed<'a, S> {
+    layout: &'a Layout,
+    inner: &'a mut S,
+}
+
+impl<S: Sink> Sink for Trimmed<'_, S> {
+    #[inline]
+    fn gauge(&mut self, fam: Fam, labels: Labels<'_>, v: f64) {
+        if !self.layout.is_off(fam) {
+            self.inner.gauge(fam, labels, v);
+        }
+    }
+
+    #[inline]
+    fn counter(&mut self, fam: Fam, labels: Labels<'_>, v: u64) {
+        if !self.layout.is_off(fam) {
+            self.inner.counter(fam, labels, v);
+        }
+    }
+}
+
+/// Visits every sample of `app` (ages against `now_ns`) into `sink`,
+/// leaving out what `[metrics]` trims.
 pub(crate) fn walk<S: Sink>(app: &AppState, layout: &Layout, now_ns: u64, sink: &mut S) {
+    let mut trimmed = Trimmed {
+        layout,
+        inner: sink,
+    };
+    walk_all(app, layout, now_ns, &mut trimmed);
+}
+
+fn walk_all<S: Sink>(app: &AppState, layout: &Layout, now_ns: u64, sink: &mut S) {
     use Fam::Fixed as F;
     for &i in &layout.channel_order {
         let ch = &app.channels[i];

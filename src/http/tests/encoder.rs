@@ -86,10 +86,16 @@ block = 256
 "#;
 
 fn rich_state() -> Arc<AppState> {
+    rich_state_trimmed(Default::default())
+}
+
+/// [`rich_state`] with `[metrics]` set to `exposition`.
+fn rich_state_trimmed(exposition: crate::config::exposition::ExpositionSpec) -> Arc<AppState> {
     use crate::alarm::engine::{AlarmBoard, AlarmView, HealthView};
     use crate::alarm::state::AlarmState;
     let cfg = parse_str(RICH).expect("rich config is valid");
     let mut app = AppState::new(&cfg);
+    app.exposition = exposition;
     app.started_unix_ns = TS_NS - 3_600_000_000_000;
     let app = Arc::new(app);
     // z-last: both bands valued; B-upper: one band out of service; a: none.
@@ -183,6 +189,127 @@ fn direct_encoder_matches_the_prometheus_crate() {
     ] {
         assert!(ours.contains(series), "{series} missing:\n{ours}");
     }
+}
+
+/// The family a line of the text format belongs to: the sample's name, or
+/// the name a `# HELP`/`# TYPE` line describes.
+fn family_of(line: &str) -> &str {
+    match line.strip_prefix("# ") {
+        Some(rest) => rest.split(' ').nth(1).unwrap_or(""),
+        None => line.split(['{', ' ']).next().unwrap_or(""),
+    }
+}
+
+/// `[metrics]` trims exactly what it names: the trimmed exposition is the
+/// full one less the excluded families' lines and the band series of bands
+/// no alarm watches (B-upper's `x` and `w`), a family left with no sample
+/// losing its HELP and TYPE too. Derived here from the full text by line
+/// filtering, independently of the walk; the reference encoder agrees.
+#[test]
+fn trimmed_exposition_is_the_full_one_less_what_is_trimmed() {
+    use crate::config::exposition::{BandExport, ExpositionSpec, FamilyPattern};
+    let render = |app: Arc<AppState>| {
+        let body = metrics::Metrics::with_clock(app, golden_clock)
+            .render_fresh()
+            .expect("render");
+        String::from_utf8(body).expect("utf-8")
+    };
+    let full = render(rich_state());
+    let spec = ExpositionSpec {
+        exclude: vec![
+            FamilyPattern {
+                text: "bandwatch_band_peak_frequency_hertz".into(),
+                prefix: false,
+            },
+            FamilyPattern {
+                text: "bandwatch_alarm_limit_".into(),
+                prefix: true,
+            },
+            FamilyPattern {
+                text: "bandwatch_channel_discontinuities_total".into(),
+                prefix: false,
+            },
+        ],
+        bands: BandExport::Alarmed,
+    };
+    let trimmed = render(rich_state_trimmed(spec.clone()));
+
+    let dropped = |line: &str| {
+        let f = family_of(line);
+        f == "bandwatch_band_peak_frequency_hertz"
+            || f.starts_with("bandwatch_alarm_limit_")
+            || f == "bandwatch_channel_discontinuities_total"
+            || (f.starts_with("bandwatch_band_")
+                && !line.starts_with('#')
+                && line.contains(r#"channel="B-upper""#))
+    };
+    let kept: Vec<&str> = full.lines().filter(|l| !dropped(l)).collect();
+    let with_samples: std::collections::BTreeSet<&str> = kept
+        .iter()
+        .filter(|l| !l.starts_with('#'))
+        .map(|l| family_of(l))
+        .collect();
+    let expected: String = kept
+        .iter()
+        .filter(|l| !l.starts_with('#') || with_samples.contains(family_of(l)))
+        .map(|l| format!("{l}\n"))
+        .collect();
+    assert_eq!(trimmed, expected);
+    // The trim did something of each kind (a check that cannot pass on an
+    // untrimmed or empty exposition).
+    assert!(full.contains(r#"bandwatch_band_in_service{channel="B-upper",band="w"}"#));
+    assert!(
+        !trimmed.contains(r#"channel="B-upper",band="w""#),
+        "{trimmed}"
+    );
+    assert!(trimmed.contains(r#"bandwatch_band_in_service{channel="z-last",band="vel"} 1"#));
+    assert!(full.contains("bandwatch_alarm_limit_meters_per_second{"));
+    assert!(!trimmed.contains("bandwatch_alarm_limit_meters_per_second"));
+    // `bandwatch_alarm_limit` (dimensionless) is not under the prefix.
+    assert!(trimmed.contains(r#"bandwatch_alarm_limit{channel="z-last""#));
+    assert!(!trimmed.contains("bandwatch_channel_discontinuities_total"));
+    assert!(trimmed.contains("bandwatch_channel_samples_dropped_total{"));
+    assert!(
+        full.len() - trimmed.len() > 1000,
+        "{}",
+        full.len() - trimmed.len()
+    );
+
+    // The reference encoder walks the same trimmed state.
+    let theirs = String::from_utf8(metrics::proto::render(
+        rich_state_trimmed(spec),
+        golden_clock,
+    ))
+    .expect("utf-8");
+    let inf = r#"bandwatch_channel_crest_factor{channel="B-upper"} "#;
+    assert_eq!(
+        trimmed,
+        theirs.replace(&format!("{inf}inf\n"), &format!("{inf}+Inf\n"))
+    );
+}
+
+/// An `[metrics] exclude` entry must match a family the config exports;
+/// the daemon's own families cannot be excluded (the entry says so).
+#[test]
+fn exclusions_matching_nothing_are_config_errors() {
+    let cfg = parse_str(&format!(
+        "{RICH}\n[metrics]\nexclude = [\"bandwatch_band_peak_frequency_hertz\", \
+         \"bandwatch_band_rms_*\", \"bandwatch_build_info\", \"bandwatch_band_rsm_*\", \
+         \"bandwatch_source_rejected_total\"]\n"
+    ))
+    .expect("the entries' form is valid");
+    let issues = metrics::check_exposition(&cfg);
+    let paths: Vec<&str> = issues.iter().map(|i| i.path.as_str()).collect();
+    assert_eq!(
+        paths,
+        ["metrics.exclude[2]", "metrics.exclude[3]"],
+        "{issues:?}"
+    );
+    assert!(issues[0].message.contains("always exported"), "{issues:?}");
+    assert!(
+        issues[1].message.contains("bandwatch_band_rsm_*"),
+        "{issues:?}"
+    );
 }
 
 /// Prometheus "Exposition formats", text format details: in label values
