@@ -118,4 +118,27 @@ fn exit_codes_of_the_readme_table() {
     }
     let (c, text) = code(&["check", "--config", bad]);
     assert!(text.contains("server.listen"), "{c:?} {text}");
+
+    // `[metrics] exclude`: an entry that matches no family of the config
+    // fails `check` and `run` with its index (README "Trimming /metrics").
+    let good_text = std::fs::read_to_string(good).expect("read");
+    let trim = |name: &str, entry: &str| {
+        temp_file(
+            name,
+            &format!("{good_text}[metrics]\nexclude = [\"bandwatch_channel_crest_factor\", \"{entry}\"]\n"),
+        )
+    };
+    let ok = trim("trim-ok.toml", "bandwatch_source_*");
+    let typo = trim("trim-typo.toml", "bandwatch_chanel_*");
+    let own = trim("trim-own.toml", "bandwatch_build_info");
+    let (c, text) = code(&["check", "--no-env", "--config", ok.to_str().expect("utf8")]);
+    assert_eq!(c, Some(0), "{text}");
+    for f in [&typo, &own] {
+        let f = f.to_str().expect("utf8");
+        for cmd in ["check", "run"] {
+            let (c, text) = code(&[cmd, "--config", f]);
+            assert_eq!(c, Some(1), "{cmd} {f}: {text}");
+            assert!(text.contains("metrics.exclude[1]"), "{cmd} {f}: {text}");
+        }
+    }
 }

@@ -544,6 +544,66 @@ fn sighup_reloads_the_real_daemon() {
     );
     let stderr = std::fs::read_to_string(dir.join("stderr")).expect("stderr");
     assert!(stderr.contains("config reloaded"), "{stderr}");
+
+    // `[metrics]` is applied by a reload; an entry that matches no
+    // family is refused (README "Trimming /metrics"), the old trim runs on.
+    let scrape = |rt: &tokio::runtime::Runtime| {
+        let r = rt
+            .block_on(common::try_get(addr, "/metrics"))
+            .expect("GET /metrics");
+        assert_eq!(r.status, 200);
+        String::from_utf8(r.body).expect("utf-8")
+    };
+    let peak = "bandwatch_band_peak_frequency_hertz{";
+    let limit = "bandwatch_alarm_limit_meters_per_second_squared{";
+    let body = scrape(&rt);
+    assert!(body.contains(peak) && body.contains(limit), "{body}");
+    let base = text(&Knobs {
+        gone: false,
+        new: true,
+        ..knobs
+    });
+    std::fs::write(
+        &file,
+        format!("{base}[metrics]\nexclude = [\"bandwatch_band_peak_frequency_hertz\"]\n"),
+    )
+    .expect("write");
+    kill("-HUP");
+    let mut trimmed = false;
+    for _ in 0..100 {
+        std::thread::sleep(Duration::from_millis(100));
+        let body = scrape(&rt);
+        if !body.contains(peak) {
+            assert!(
+                body.contains(limit),
+                "only the excluded family goes: {body}"
+            );
+            trimmed = true;
+            break;
+        }
+    }
+    assert!(trimmed, "the [metrics] reload took effect");
+    std::fs::write(
+        &file,
+        format!("{base}[metrics]\nexclude = [\"bandwatch_band_peak_frequency_herz\"]\n"),
+    )
+    .expect("write");
+    kill("-HUP");
+    let mut refused = String::new();
+    for _ in 0..100 {
+        std::thread::sleep(Duration::from_millis(100));
+        let stderr = std::fs::read_to_string(dir.join("stderr")).expect("stderr");
+        if stderr.contains("metrics.exclude[0]") {
+            refused = stderr;
+            break;
+        }
+    }
+    assert!(
+        refused.contains("bandwatch_band_peak_frequency_herz"),
+        "the typo is named: {refused}"
+    );
+    let body = scrape(&rt);
+    assert!(!body.contains(peak), "the old trim runs on");
     kill("-TERM");
     let mut status = None;
     for _ in 0..200 {

@@ -251,7 +251,7 @@ const HTTP_BAND_ALARMS: [(&str, f64, f64, &str, &str, f64, f64); 5] = [
 /// and danger limit on every band, so that /metrics carries the band and
 /// alarm series a configured plant's would. The alarm storage is never
 /// opened (no journal is started).
-fn http_config(channels: usize, n: usize) -> Result<Config, BenchError> {
+pub(crate) fn http_config_of(channels: usize, n: usize) -> Result<Config, BenchError> {
     let storage = std::env::temp_dir().join("bandwatch-bench-unused");
     let mut t = format!(
         "[server]\nlisten = \"127.0.0.1:0\"\n[dsp]\nworkers = 2\n[alarms]\nstorage_dir = {:?}\n",
@@ -295,7 +295,7 @@ pub(crate) fn http_setup(
     n: usize,
     signal: &Arc<Vec<f32>>,
 ) -> Result<HttpSetup, BenchError> {
-    let config = http_config(channels, n)?;
+    let config = http_config_of(channels, n)?;
     let mut pipeline = inline_pipeline(&config, true)?;
     let state = pipeline.state.clone();
     let mut writers = take_writers(&mut pipeline);

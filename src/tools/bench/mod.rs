@@ -40,6 +40,7 @@
 //! test signal they share.
 
 mod dsp;
+mod exposition;
 mod fft;
 mod http;
 pub use http::DspLoad;
@@ -99,6 +100,9 @@ pub struct BenchArgs {
     /// welch: channels in --signal.
     #[arg(long, default_value_t = 1)]
     pub signal_channels: usize,
+    /// exposition: channel counts of the /metrics size and render rows.
+    #[arg(long, value_delimiter = ',', default_value = "64,1024,4096")]
+    pub exposition_channels: Vec<usize>,
     /// http: channel counts (each also gets the render and body-size rows).
     #[arg(long, value_delimiter = ',', default_value = "64")]
     pub http_channels: Vec<usize>,
@@ -333,6 +337,8 @@ pub enum Phase {
     Ingest,
     /// HTTP latency under DSP load.
     Http,
+    /// /metrics size and render, full and trimmed.
+    Exposition,
     /// The plant-scale run (only when named).
     Plant,
     /// CPU per open operator page (only when named).
@@ -350,6 +356,7 @@ impl Phase {
             Phase::Memory => "memory",
             Phase::Ingest => "ingest",
             Phase::Http => "http",
+            Phase::Exposition => "exposition",
             Phase::Plant => "plant",
             Phase::Page => "page",
             Phase::Welch => "welch",
@@ -396,15 +403,19 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
     if args.channels.iter().any(|&c| c == 0 || c > 1024) {
         return Err(BenchError::Usage("--channels must be 1 to 1024".into()));
     }
-    if args
-        .http_channels
-        .iter()
-        .any(|&c| c == 0 || c > http::MAX_HTTP_CHANNELS)
-    {
-        return Err(BenchError::Usage(format!(
-            "--http-channels must be 1 to {}",
-            http::MAX_HTTP_CHANNELS
-        )));
+    for (flag, counts) in [
+        ("--http-channels", &args.http_channels),
+        ("--exposition-channels", &args.exposition_channels),
+    ] {
+        if counts
+            .iter()
+            .any(|&c| c == 0 || c > http::MAX_HTTP_CHANNELS)
+        {
+            return Err(BenchError::Usage(format!(
+                "{flag} must be 1 to {}",
+                http::MAX_HTTP_CHANNELS
+            )));
+        }
     }
     let repeats = args.repeats.max(1);
     let n = args.n;
@@ -421,7 +432,7 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
     }
 
     let page = args.only.contains(&Phase::Page);
-    let need_rt = wants(args, "ingest") || wants(args, "http") || page;
+    let need_rt = wants(args, "ingest") || wants(args, "http") || wants(args, "exposition") || page;
     let rt = if need_rt {
         Some(
             tokio::runtime::Builder::new_multi_thread()
@@ -441,6 +452,10 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
 
     if let (true, Some(rt)) = (wants(args, "http"), &rt) {
         http::http_phase(rt, args, &signal, &mut rows, &mut notes)?;
+    }
+
+    if let (true, Some(rt)) = (wants(args, "exposition"), &rt) {
+        exposition::exposition_phase(rt, args, &signal, &mut rows, &mut notes)?;
     }
 
     // Only when named: a minute or more of rounds.
