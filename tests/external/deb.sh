@@ -89,6 +89,12 @@ expect=(
     ./usr/share/doc/bandwatch/examples/demo.toml
     ./usr/share/doc/bandwatch/examples/udp.toml
     ./usr/share/doc/bandwatch/examples/serial.toml
+    ./usr/share/doc/bandwatch/examples/prometheus-rules.yml
+    ./usr/share/doc/bandwatch/examples/grafana/bandwatch.json
+    ./usr/share/doc/bandwatch/examples/grafana/provisioning/dashboards/bandwatch.yaml
+    ./usr/share/doc/bandwatch/examples/grafana/provisioning/datasources/prometheus.yaml
+    ./usr/share/doc/bandwatch/examples/scale-out/agent.yml
+    ./usr/share/doc/bandwatch/examples/scale-out/central-rules.yml
 )
 for p in "${expect[@]}"; do
     grep -x -F "$p" "$work/paths" >/dev/null || fail "the package lacks $p"
