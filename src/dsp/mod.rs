@@ -8,6 +8,7 @@
 //! - `bands`: band RMS / peak from a spectrum, with unit conversion and
 //!   integration
 //! - `stats`: time-domain overall levels
+//! - `trend`: Theil–Sen slope, Mann–Kendall test, time to a limit
 //! - `orders`: bearing defect frequencies in orders of running speed
 //! - `speed`: running speed from a tach pulse train or a tracked peak
 //! - `envelope`: band-pass + analytic signal → envelope (demodulation)
@@ -23,4 +24,5 @@ pub mod simd;
 pub mod spectrum;
 pub mod speed;
 pub mod stats;
+pub mod trend;
 pub mod window;

@@ -14,6 +14,13 @@ What is written:
 
 - windows.json: scipy.signal.get_window (periodic) for every window
   bandwatch offers, N = 4096: coherent gain, ENBW in bins, a few samples.
+- trend_stats.json: scipy.stats.theilslopes (slope, intercept and the
+  95 % interval of the slope), scipy.stats.kendalltau (time index against
+  the values, asymptotic p) and pymannkendall.original_test (S, Var(S) with
+  ties, Z with the continuity correction, p, tau) of band-history-like
+  series: linear and exponential growth with noise, ties from rounding,
+  no trend, repeated times, the fewest points; and synthetic growth with a
+  known limit crossing time.
 - fft_roundtrip.json: numpy.fft.rfft of a short float32 signal and
   numpy.fft.irfft of that spectrum.
 - welch_<signal>.json, one per signal: the input as float32 bit patterns
@@ -39,8 +46,10 @@ import os
 import sys
 
 import numpy as np
+import pymannkendall
 import scipy
 import scipy.signal
+import scipy.stats
 
 SEED = 20_260_611
 FS = 25_600.0  # the sample rate of bandwatch's built-in source (README, demo)
@@ -436,6 +445,106 @@ def gap_fixture():
     return doc
 
 
+def trend_case(name, description, x, y):
+    """One series: inputs rounded to DIGITS first, so that the references
+    are computed on exactly the numbers the fixture holds."""
+    x = np.asarray(nums(x))
+    y = np.asarray(nums(y))
+    ts = scipy.stats.theilslopes(y, x, 0.95)
+    kt = scipy.stats.kendalltau(np.arange(len(y)), y, method="asymptotic")
+    mk = pymannkendall.original_test(y, alpha=0.05)
+    case = {
+        "name": name,
+        "description": description,
+        "x": nums(x),
+        "y": nums(y),
+        "theilslopes": {
+            "slope": num(ts.slope),
+            "intercept": num(ts.intercept),
+            "low_slope": num(ts.low_slope),
+            "high_slope": num(ts.high_slope),
+        },
+        "kendalltau": {"tau_b": num(kt.statistic), "p": num(kt.pvalue)},
+        "mann_kendall": {
+            "s": num(mk.s),
+            "var_s": num(mk.var_s),
+            "z": num(mk.z),
+            "p": num(mk.p),
+            "tau": num(mk.Tau),
+        },
+    }
+    if np.all(y > 0):
+        tl = scipy.stats.theilslopes(np.log(y), x, 0.95)
+        case["theilslopes_log"] = {
+            "slope": num(tl.slope),
+            "intercept": num(tl.intercept),
+            "low_slope": num(tl.low_slope),
+            "high_slope": num(tl.high_slope),
+        }
+    return case
+
+
+def trend_fixture():
+    cases = []
+    minute = 60.0
+    # Linear growth: 2 mm/s at the start, +0.5 mm/s a day, noise 0.1 mm/s,
+    # one point a minute for 6 h (361 points).
+    rng = rng_for(300)
+    x = np.arange(361) * minute
+    y = 2.0 + 0.5 / 86400.0 * x + rng.normal(0, 0.1, x.size)
+    cases.append(trend_case("linear", "2 + 0.5/day, N(0, 0.1) noise, 1/min for 6 h", x, y))
+    # Exponential growth: 1.5 mm/s, doubling every 5 days, 3 % noise, one
+    # point an hour for 10 days (241 points).
+    rng = rng_for(301)
+    x = np.arange(241) * 3600.0
+    y = 1.5 * np.exp(np.log(2) / (5 * 86400.0) * x) * (1 + rng.normal(0, 0.03, x.size))
+    cases.append(trend_case("exponential", "1.5 doubling in 5 days, 3 % noise, 1/h for 10 days", x, y))
+    # Ties: the linear series rounded to 0.1 (many equal values).
+    rng = rng_for(302)
+    x = np.arange(120) * minute
+    y = np.round(1.0 + 0.2 / 3600.0 * x + rng.normal(0, 0.15, x.size), 1)
+    cases.append(trend_case("ties", "a slow rise rounded to 0.1: groups of equal values", x, y))
+    # No trend: white noise.
+    rng = rng_for(303)
+    x = np.arange(200) * minute
+    y = 3.0 + rng.normal(0, 0.2, x.size)
+    cases.append(trend_case("flat", "3 + N(0, 0.2), no trend", x, y))
+    # Repeated times (two values in some minutes) and a gap.
+    rng = rng_for(304)
+    x = np.sort(np.concatenate([np.arange(30), np.arange(0, 30, 3), np.arange(60, 80)])) * minute
+    y = 0.8 + 0.01 / minute * x / 10 + rng.normal(0, 0.05, x.size)
+    cases.append(trend_case("repeated_times", "equal times (ties in x) and a 30 min gap", x, y))
+    # The fewest points a projection takes.
+    rng = rng_for(305)
+    x = np.arange(10) * minute
+    y = 1.0 + 0.05 * np.arange(10) + rng.normal(0, 0.02, 10)
+    cases.append(trend_case("ten_points", "10 points, a clear rise", x, y))
+    # Decreasing, for the falling direction.
+    rng = rng_for(306)
+    x = np.arange(150) * minute
+    y = 5.0 - 1.0 / 3600.0 * x + rng.normal(0, 0.3, x.size)
+    cases.append(trend_case("falling", "5 - 1/h, N(0, 0.3)", x, y))
+
+    # Known crossing times: the series above are made with known lines, so
+    # the time a limit is reached is known exactly.
+    crossings = [
+        # linear: 2 + 0.5/day * t = 4.5 at t = 5 days.
+        {"case": "linear", "growth": "linear", "limit": 4.5, "rising": True,
+         "true_crossing_s": num(5 * 86400.0)},
+        # exponential: 1.5 * 2^(t / 5 d) = 12 at t = 15 days.
+        {"case": "exponential", "growth": "exponential", "limit": 12.0, "rising": True,
+         "true_crossing_s": num(15 * 86400.0)},
+        # falling: 5 - t/h = 1 at t = 4 h.
+        {"case": "falling", "growth": "linear", "limit": 1.0, "rising": False,
+         "true_crossing_s": num(4 * 3600.0)},
+    ]
+    doc = header("trend statistics: scipy.stats.theilslopes, scipy.stats.kendalltau, pymannkendall.original_test")
+    doc["versions"]["pymannkendall"] = pymannkendall.__version__
+    doc["cases"] = cases
+    doc["crossings"] = crossings
+    return doc
+
+
 def main():
     here = os.path.dirname(os.path.abspath(__file__))
     out_dir = sys.argv[1] if len(sys.argv) > 1 else os.path.join(here, "fixtures")
@@ -443,6 +552,7 @@ def main():
     write(out_dir, "windows.json", windows_fixture())
     write(out_dir, "fft_roundtrip.json", fft_fixture())
     write(out_dir, "gap_resets.json", gap_fixture())
+    write(out_dir, "trend_stats.json", trend_fixture())
     for name, stream, description, x in signals():
         x32 = np.asarray(x, dtype=np.float32)
         x64 = x32.astype(np.float64)
