@@ -41,7 +41,7 @@ use bandwatch::units::line_factor;
 use realfft::num_complex::Complex;
 use realfft::RealFftPlanner;
 use serde_json::Value;
-use support::{f32_from_hex, run, Band, Chan, FS};
+use support::{f32_from_hex, f64s, fixture, run, Band, Chan, FS};
 
 const RTOL: f64 = 2e-5;
 const FLOOR: f64 = 1e-9;
@@ -57,28 +57,6 @@ const SIGNALS: [&str; 9] = [
     "chirp",
     "impacts",
 ];
-
-fn fixture(name: &str) -> Value {
-    let path: PathBuf = [
-        env!("CARGO_MANIFEST_DIR"),
-        "tests",
-        "reference",
-        "fixtures",
-        name,
-    ]
-    .iter()
-    .collect();
-    let text = std::fs::read_to_string(&path).unwrap_or_else(|e| panic!("{path:?}: {e}"));
-    serde_json::from_str(&text).unwrap_or_else(|e| panic!("{path:?}: {e}"))
-}
-
-fn f64s(v: &Value) -> Vec<f64> {
-    v.as_array()
-        .expect("array")
-        .iter()
-        .map(|x| x.as_f64().expect("number"))
-        .collect()
-}
 
 fn usizes(v: &Value) -> Vec<usize> {
     v.as_array()

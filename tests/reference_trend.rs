@@ -28,34 +28,14 @@
 //! reaches a limit is known exactly; the projection must land within 10 %
 //! of it and its interval contain it.
 
-use std::path::PathBuf;
+#[path = "reference/support.rs"]
+mod support;
 
 use bandwatch::dsp::trend::{
     mann_kendall, normal_two_sided, project, theil_sen, Growth, Reach, MIN_POINTS,
 };
 use serde_json::Value;
-
-fn fixture() -> Value {
-    let path: PathBuf = [
-        env!("CARGO_MANIFEST_DIR"),
-        "tests",
-        "reference",
-        "fixtures",
-        "trend_stats.json",
-    ]
-    .iter()
-    .collect();
-    let text = std::fs::read_to_string(&path).unwrap_or_else(|e| panic!("{path:?}: {e}"));
-    serde_json::from_str(&text).unwrap_or_else(|e| panic!("{path:?}: {e}"))
-}
-
-fn f64s(v: &Value) -> Vec<f64> {
-    v.as_array()
-        .expect("array")
-        .iter()
-        .map(|x| x.as_f64().expect("number"))
-        .collect()
-}
+use support::f64s;
 
 fn num(v: &Value, key: &str) -> f64 {
     v[key].as_f64().unwrap_or_else(|| panic!("{key}: {v}"))
@@ -72,7 +52,7 @@ fn close(what: &str, ours: f64, theirs: f64) {
 
 #[test]
 fn theil_sen_matches_scipy_theilslopes() {
-    let doc = fixture();
+    let doc = support::fixture("trend_stats.json");
     let cases = doc["cases"].as_array().expect("cases");
     assert!(cases.len() >= 7, "{} cases", cases.len());
     for c in cases {
@@ -99,7 +79,7 @@ fn theil_sen_matches_scipy_theilslopes() {
 
 #[test]
 fn mann_kendall_matches_pymannkendall_and_kendalltau() {
-    let doc = fixture();
+    let doc = support::fixture("trend_stats.json");
     let mut tied = 0;
     for c in doc["cases"].as_array().expect("cases") {
         let name = c["name"].as_str().expect("name");
@@ -154,7 +134,7 @@ fn mann_kendall_matches_pymannkendall_and_kendalltau() {
 
 #[test]
 fn projections_find_the_known_crossing_times() {
-    let doc = fixture();
+    let doc = support::fixture("trend_stats.json");
     let cases = doc["cases"].as_array().expect("cases");
     let crossings = doc["crossings"].as_array().expect("crossings");
     assert_eq!(crossings.len(), 3);
@@ -206,7 +186,7 @@ fn projections_find_the_known_crossing_times() {
 
 #[test]
 fn no_significant_trend_gives_no_time() {
-    let doc = fixture();
+    let doc = support::fixture("trend_stats.json");
     let c = doc["cases"]
         .as_array()
         .expect("cases")

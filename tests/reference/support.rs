@@ -37,3 +37,27 @@ pub fn f32_from_hex(hex: &str) -> Vec<f32> {
         })
         .collect()
 }
+
+/// A fixture of tests/reference/fixtures, parsed.
+pub fn fixture(name: &str) -> serde_json::Value {
+    let path: std::path::PathBuf = [
+        env!("CARGO_MANIFEST_DIR"),
+        "tests",
+        "reference",
+        "fixtures",
+        name,
+    ]
+    .iter()
+    .collect();
+    let text = std::fs::read_to_string(&path).unwrap_or_else(|e| panic!("{path:?}: {e}"));
+    serde_json::from_str(&text).unwrap_or_else(|e| panic!("{path:?}: {e}"))
+}
+
+/// A JSON array of numbers.
+pub fn f64s(v: &serde_json::Value) -> Vec<f64> {
+    v.as_array()
+        .expect("array")
+        .iter()
+        .map(|x| x.as_f64().expect("number"))
+        .collect()
+}

@@ -4,7 +4,8 @@
 //! on the same published state (the http phase's rig: five bands with an
 //! alert and a danger alarm on every channel, every channel published):
 //!
-//! - `render`: one uncached render (`Metrics::render_fresh`), ms;
+//! - `render`: one uncached render (`Metrics::render_fresh`, the http
+//!   phase's `render_probe`), ms;
 //! - `body` and `gzip body`: the plain body, and the body the real router
 //!   sends when asked for gzip (tower-http's compression layer), bytes;
 //! - `gzip`: one gzip request served from the render cache (a plain
@@ -16,7 +17,7 @@ use std::time::{Duration, Instant};
 use axum::http::{header, Request};
 use tower::ServiceExt as _;
 
-use super::http::{http_config_of, http_setup, percentile};
+use super::http::{http_config_of, http_setup, render_probe};
 use super::{BenchArgs, BenchError, Row, Summary};
 use crate::config::exposition::{BandExport, ExpositionSpec, FamilyPattern};
 use crate::pipeline::state::AppState;
@@ -135,24 +136,14 @@ pub(crate) fn exposition_phase(
             app.machines = base.machines.clone();
             app.alarm_io = base.alarm_io.clone();
             let app = Arc::new(app);
-            let m = crate::http::metrics::Metrics::new(app.clone());
-            let router = crate::http::router(app);
+            let router = crate::http::router(app.clone());
             let (mut render, mut bytes, mut lines, mut gz_bytes, mut gz_ms) =
                 (vec![], vec![], vec![], vec![], vec![]);
             for _ in 0..repeats {
-                let mut times = Vec::new();
-                let mut body = Vec::new();
-                let t0 = Instant::now();
-                while times.len() < 3 || t0.elapsed() < min {
-                    let t = Instant::now();
-                    body = m
-                        .render_fresh()
-                        .map_err(|e| BenchError::Lost(format!("render /metrics: {e}")))?;
-                    times.push(t.elapsed().as_secs_f64() * 1e3);
-                }
-                render.push(percentile(&times, 50.0));
-                bytes.push(body.len() as f64);
-                lines.push(body.iter().filter(|&&b| b == b'\n').count() as f64);
+                let (ms, b, l) = render_probe(&app, min)?;
+                render.push(ms);
+                bytes.push(b as f64);
+                lines.push(l as f64);
                 let (ms, n, enc) = rt.block_on(async {
                     // The plain request renders and caches; the gzip one
                     // right after is served from that cache.

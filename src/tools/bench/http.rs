@@ -324,7 +324,10 @@ pub(crate) fn http_setup(
 
 /// Renders /metrics the way the handler does, without any cache: the
 /// encoder's cost alone. Returns (median ms over the renders, bytes, lines).
-fn render_probe(state: &Arc<AppState>, min: Duration) -> Result<(f64, usize, usize), BenchError> {
+pub(crate) fn render_probe(
+    state: &Arc<AppState>,
+    min: Duration,
+) -> Result<(f64, usize, usize), BenchError> {
     let m = crate::http::metrics::Metrics::new(state.clone());
     let mut times = Vec::new();
     let mut body = Vec::new();
