@@ -24,6 +24,7 @@ pub mod export;
 pub mod gate;
 pub mod metrics;
 pub mod page;
+pub mod projection;
 pub mod reload;
 pub mod scaling;
 pub mod server;
