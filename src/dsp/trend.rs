@@ -17,7 +17,7 @@
 //!   computes it, which the tests check it against; S and the variance
 //!   also against `scipy.stats.kendalltau` on the time index. Rank based:
 //!   the same on the values and on their logarithm.
-//! - [`project`]: both on a window of points, and the time a limit is
+//! - [`fit_trend`] and [`Projection::reach`]: both on a window of points, and the time a limit is
 //!   reached: on the values (linear growth) or on their natural logarithm
 //!   (exponential growth: a constant percentage per unit time, how a
 //!   developing defect's level commonly grows, common practice). Only when
@@ -292,7 +292,7 @@ pub enum Reach {
     },
 }
 
-/// A trend and where it leads.
+/// A fitted and tested trend.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct Projection {
     pub growth: Growth,
@@ -300,53 +300,71 @@ pub struct Projection {
     pub fit: TheilSen,
     pub test: MannKendall,
     pub alpha: f64,
-    pub reach: Reach,
 }
 
-/// Fits `y` over `x` (seconds; any origin) and finds when the fitted line
-/// reaches `limit`, rising toward it when `rising` (an alarm above the
-/// limit), falling otherwise; `now` is the time the answer is for (a line
-/// already past the limit then is [`Reach::Beyond`]). `alpha`: the
-/// significance level of the Mann–Kendall test, and 1 − the confidence
-/// of the slope's interval.
-pub fn project(
+/// Fits `y` over `x` (seconds; any origin) under `growth` and tests it;
+/// `alpha`: the significance level of the Mann–Kendall test, and 1 − the
+/// confidence of the slope's interval.
+pub fn fit_trend(
     x: &[f64],
     y: &[f64],
     growth: Growth,
-    limit: f64,
-    rising: bool,
     alpha: f64,
-    now: f64,
 ) -> Result<Projection, TrendError> {
     check(x, y, MIN_POINTS)?;
-    let (values, target) = match growth {
-        Growth::Linear => (y.to_vec(), limit),
+    let values = match growth {
+        Growth::Linear => y.to_vec(),
         Growth::Exponential => {
             if let Some(i) = y.iter().position(|&v| v <= 0.0) {
                 return Err(TrendError::NotPositive(i));
             }
-            if limit <= 0.0 {
-                return Err(TrendError::NotPositive(y.len()));
-            }
-            (y.iter().map(|v| v.ln()).collect(), limit.ln())
+            y.iter().map(|v| v.ln()).collect()
         }
     };
-    let fit = theil_sen(x, &values, 1.0 - alpha)?;
-    let test = mann_kendall(&values)?;
-    let toward = |b: f64| if rising { b > 0.0 } else { b < 0.0 };
-    let at_now = fit.y_median + fit.slope * (now - fit.x_median);
-    let beyond = if rising {
-        at_now >= target
-    } else {
-        at_now <= target
-    };
-    let reach = if test.p.is_nan() || test.p >= alpha {
-        Reach::NoSignificantTrend
-    } else if beyond {
-        Reach::Beyond
-    } else if !toward(fit.slope) {
-        Reach::Away
-    } else {
+    Ok(Projection {
+        growth,
+        fit: theil_sen(x, &values, 1.0 - alpha)?,
+        test: mann_kendall(&values)?,
+        alpha,
+    })
+}
+
+impl Projection {
+    /// Whether the Mann–Kendall p value is below the significance level.
+    pub fn significant(&self) -> bool {
+        self.test.p < self.alpha
+    }
+
+    /// When the fitted line reaches `limit`, rising toward it when
+    /// `rising` (a high limit), falling otherwise; `now` is the time the
+    /// answer is for (a line already past the limit then is
+    /// [`Reach::Beyond`]). A limit not above zero under exponential growth
+    /// is never reached ([`Reach::Away`] when the trend is significant).
+    pub fn reach(&self, limit: f64, rising: bool, now: f64) -> Reach {
+        if !self.significant() {
+            return Reach::NoSignificantTrend;
+        }
+        let target = match self.growth {
+            Growth::Linear => limit,
+            Growth::Exponential if limit > 0.0 => limit.ln(),
+            Growth::Exponential => {
+                return if rising { Reach::Beyond } else { Reach::Away };
+            }
+        };
+        let fit = &self.fit;
+        let toward = |b: f64| if rising { b > 0.0 } else { b < 0.0 };
+        let at_now = fit.y_median + fit.slope * (now - fit.x_median);
+        let beyond = if rising {
+            at_now >= target
+        } else {
+            at_now <= target
+        };
+        if beyond {
+            return Reach::Beyond;
+        }
+        if !toward(fit.slope) {
+            return Reach::Away;
+        }
         let cross = |b: f64| fit.x_median + (target - fit.y_median) / b;
         let (steep, shallow) = if rising {
             (fit.high_slope, fit.low_slope)
@@ -362,14 +380,22 @@ pub fn project(
             },
             latest: toward(shallow).then(|| cross(shallow)),
         }
-    };
-    Ok(Projection {
-        growth,
-        fit,
-        test,
-        alpha,
-        reach,
-    })
+    }
+}
+
+/// [`fit_trend`] and [`Projection::reach`] in one: the trend of `y` over
+/// `x` and where it leads relative to `limit` at `now`.
+pub fn project(
+    x: &[f64],
+    y: &[f64],
+    growth: Growth,
+    limit: f64,
+    rising: bool,
+    alpha: f64,
+    now: f64,
+) -> Result<(Projection, Reach), TrendError> {
+    let p = fit_trend(x, y, growth, alpha)?;
+    Ok((p, p.reach(limit, rising, now)))
 }
 
 #[cfg(test)]
@@ -412,41 +438,39 @@ mod tests {
     #[test]
     fn no_trend_gives_no_time() {
         let (x, y) = ramp(40, 0.0, 0.5);
-        let p = project(&x, &y, Growth::Linear, 10.0, true, 0.05, 2400.0).expect("fit");
-        assert_eq!(p.reach, Reach::NoSignificantTrend, "{p:?}");
+        let (p, reach) = project(&x, &y, Growth::Linear, 10.0, true, 0.05, 2400.0).expect("fit");
+        assert_eq!(reach, Reach::NoSignificantTrend, "{p:?}");
     }
 
     #[test]
     fn falling_trend_and_low_limits() {
         let (x, y) = ramp(40, -1e-4, 0.01);
-        let p = project(&x, &y, Growth::Linear, 0.5, false, 0.05, 2340.0).expect("fit");
-        let Reach::At { at, .. } = p.reach else {
+        let (p, reach) = project(&x, &y, Growth::Linear, 0.5, false, 0.05, 2340.0).expect("fit");
+        let Reach::At { at, .. } = reach else {
             panic!("{p:?}")
         };
         // 1 − 1e-4 t = 0.5 at t = 5000 s.
         assert!((at - 5000.0).abs() < 100.0, "{at}");
-        let p = project(&x, &y, Growth::Linear, 10.0, true, 0.05, 2340.0).expect("fit");
-        assert_eq!(p.reach, Reach::Away);
-        let p = project(&x, &y, Growth::Linear, 0.9, false, 0.05, 2340.0).expect("fit");
-        assert_eq!(p.reach, Reach::Beyond);
+        assert_eq!(p.reach(10.0, true, 2340.0), Reach::Away);
+        assert_eq!(p.reach(0.9, false, 2340.0), Reach::Beyond);
     }
 
     #[test]
     fn bad_input_is_an_error() {
         assert_eq!(
-            project(&[0.0; 5], &[1.0; 5], Growth::Linear, 1.0, true, 0.05, 0.0),
+            fit_trend(&[0.0; 5], &[1.0; 5], Growth::Linear, 0.05),
             Err(TrendError::TooFew(5))
         );
         let x: Vec<f64> = (0..12).map(f64::from).collect();
         let mut y = vec![1.0; 12];
         y[3] = f64::NAN;
         assert_eq!(
-            project(&x, &y, Growth::Linear, 2.0, true, 0.05, 0.0),
+            fit_trend(&x, &y, Growth::Linear, 0.05),
             Err(TrendError::NotFinite(3))
         );
         y[3] = -1.0;
         assert_eq!(
-            project(&x, &y, Growth::Exponential, 2.0, true, 0.05, 0.0),
+            fit_trend(&x, &y, Growth::Exponential, 0.05),
             Err(TrendError::NotPositive(3))
         );
         assert_eq!(theil_sen(&[1.0; 12], &x, 0.95), Err(TrendError::NoSpread));

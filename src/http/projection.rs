@@ -18,7 +18,7 @@
 use crate::alarm::engine::AlarmView;
 use crate::config::alarms::Direction;
 use crate::config::{AlarmTarget, ChannelAlarm};
-use crate::dsp::trend::{project, Growth, Projection, Reach, TrendError, MAX_POINTS};
+use crate::dsp::trend::{fit_trend, Growth, Projection, Reach, TrendError, MAX_POINTS};
 use crate::pipeline::trend::{TrendColumns, OVERALL_MEASURES};
 
 /// The significance level of the Mann–Kendall test, and 1 − the
@@ -105,27 +105,18 @@ pub fn project_alarms(
                     .into_iter()
                     .filter_map(|(l, lim)| lim.filter(|v| v.is_finite()).map(|v| (l, v)))
                     .collect();
-            let mut levels = Vec::new();
-            let mut fit = Err(TrendError::TooFew(x.len()));
-            for &(level, limit) in &limits {
-                let p = project(&x, &y, growth, limit, high, ALPHA, now_s);
-                if let Ok(p) = &p {
-                    levels.push(LevelReach {
+            let fit = fit_trend(&x, &y, growth, ALPHA);
+            let levels = match &fit {
+                Ok(p) => limits
+                    .iter()
+                    .map(|&(level, limit)| LevelReach {
                         level,
                         limit,
-                        reach: p.reach,
-                    });
-                }
-                if fit.is_err() {
-                    fit = p;
-                }
-            }
-            if limits.is_empty() {
-                // No limit in force (a baseline still learning): the trend
-                // alone, against a limit that cannot be reached.
-                let far = if high { f64::MAX } else { f64::MIN_POSITIVE };
-                fit = project(&x, &y, growth, far, high, ALPHA, now_s);
-            }
+                        reach: p.reach(limit, high, now_s),
+                    })
+                    .collect(),
+                Err(_) => Vec::new(),
+            };
             AlarmProjection {
                 name: a.name.clone(),
                 direction,
