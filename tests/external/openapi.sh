@@ -26,7 +26,7 @@
 # Needs curl, python3 and schemathesis (.venv/bin/st, which .ci/run installs
 # from tests/reference/requirements.txt; or SCHEMATHESIS=path), and a Rust
 # toolchain (or BANDWATCH_BIN pointing at a built binary). Everything binds
-# 127.0.0.1 only; every step is time-bounded (about a minute in all on
+# 127.0.0.1 only; every step is time-bounded (about 25 s after the build on
 # 2 cores); whatever this script started is stopped on exit.
 # Exit 0 on success, 1 on any failure.
 # Usage: bash tests/external/openapi.sh
@@ -186,8 +186,12 @@ run_st() {
     local name="$1" location="$2"
     shift 2
     step "schemathesis: $name"
+    # One worker: with two, schemathesis' threads can import its lazily
+    # loaded modules at once, which CPython 3.11 answers with a
+    # SystemError ("AST constructor recursion depth mismatch") now and
+    # then: a flake of the tool, not of the API.
     if ! (cd "$work" && timeout 240 "$st" run "$location" --url "$bw" --checks "$checks" \
-        --max-examples 15 --seed 16 --workers 2 --request-timeout 20 \
+        --max-examples 15 --seed 16 --workers 1 --request-timeout 20 \
         --warnings off --no-color "$@" >"$work/$name.log" 2>&1); then
         cat "$work/$name.log" >&2
         fail "schemathesis found failures in $name (above)"
