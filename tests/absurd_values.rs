@@ -83,7 +83,7 @@ fn a_band_whose_power_overflows_is_out_of_range_not_ok() {
     assert!((s.bands[0].value - 2f64.sqrt().recip()).abs() < 1e-3);
 }
 
-/// The channel's health as the API shows it (`board_json`, the `health`
+/// The channel's health as the API shows it (`board_body`, the `health`
 /// object of `/api/v1/channels/{name}`) after `samples`, on a channel with
 /// the 50–150 Hz band or with no band at all.
 fn health_after(samples: &[f32], with_band: bool) -> serde_json::Value {
@@ -110,8 +110,8 @@ fn health_after(samples: &[f32], with_band: bool) -> serde_json::Value {
     let mut w = p.take_inputs().remove(0).writer;
     assert_eq!(w.write(0, 0, samples), samples.len());
     p.drain();
-    let (health, _) = bandwatch::http::alarms::board_json(&p.state.channels[0]);
-    health
+    let (health, _) = bandwatch::http::alarms::board_body(&p.state.channels[0]);
+    serde_json::to_value(health).expect("health serialises")
 }
 
 fn reasons(h: &serde_json::Value) -> Vec<String> {

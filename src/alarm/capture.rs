@@ -170,7 +170,7 @@ impl HistoryRing {
 }
 
 /// The averaged spectrum at the trip.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct SpectrumAtTrip {
     /// How `values` are scaled, e.g. "power" (units² per line, amplitude
     /// corrected, single-sided).
@@ -199,15 +199,18 @@ pub struct SpectrumAtTrip {
 /// replay` needs to recompute the spectrum and band values stored with it
 /// without the config (README, "Captures"). Values are those the channel
 /// ran with (validated config), in the config's vocabulary.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct CaptureSettings {
     pub block: usize,
     pub nfft: usize,
     /// Samples between the starts of consecutive blocks.
     pub hop: usize,
     pub overlap: f64,
+    #[schema(value_type = String)]
     pub window: WindowKind,
+    #[schema(value_type = String)]
     pub detrend: Detrend,
+    #[schema(value_type = String)]
     pub averaging: AveragingMode,
     pub average_count: u32,
     pub integration_low_cut_hz: f64,
@@ -222,7 +225,7 @@ pub struct CaptureSettings {
 }
 
 /// One band of [`CaptureSettings`].
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct BandSettings {
     pub name: String,
     /// Fixed edges `[lo_hz, hi_hz]`, or
@@ -231,14 +234,17 @@ pub struct BandSettings {
     /// windows in orders of running speed (several for bearing harmonics).
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub orders: Vec<[f64; 2]>,
+    #[schema(value_type = String)]
     pub measure: Measure,
     /// Unit of the band's value.
     pub unit: String,
+    #[schema(value_type = String)]
     pub spectrum: SpectrumKind,
     /// Bearing bands: which bearing and defect (shown, not computed).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub bearing: Option<String>,
     #[serde(default, skip_serializing_if = "Option::is_none")]
+    #[schema(value_type = String)]
     pub defect: Option<Defect>,
 }
 
@@ -462,7 +468,7 @@ impl CaptureSettings {
 }
 
 /// One band's value at the trip.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct BandAtTrip {
     pub band: String,
     pub value: f64,
@@ -470,7 +476,7 @@ pub struct BandAtTrip {
 }
 
 /// What started a capture; filled in by the worker at the trip.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct TripInfo {
     pub unix_ns: u64,
     pub time: String,
@@ -487,7 +493,7 @@ pub struct TripInfo {
 }
 
 /// Where the waveform is and what it holds.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct WaveformInfo {
     /// File name next to the metadata.
     pub file: String,
@@ -510,7 +516,7 @@ pub struct WaveformInfo {
 }
 
 /// `<id>.json`.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct CaptureMeta {
     /// Format version of this file: [`META_VERSION`] (2: with `settings`
     /// and the spectrum's sample range); 1 before.
@@ -745,7 +751,7 @@ pub struct Cleanup {
 }
 
 /// One stored capture, as listed.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct CaptureInfo {
     pub id: String,
     pub channel: String,

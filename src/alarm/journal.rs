@@ -39,7 +39,7 @@ pub use crate::config::alarms::JournalLimits;
 pub const ACTIVE: &str = "journal.jsonl";
 
 /// What an event records.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(rename_all = "kebab-case")]
 pub enum EventKind {
     /// The shown state of an alarm changed.
@@ -59,14 +59,14 @@ pub enum EventKind {
 }
 
 /// Limits in force at the event, in the band's unit.
-#[derive(Debug, Clone, Copy, PartialEq, Default, Serialize, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Default, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct EventLimits {
     pub alert: Option<f64>,
     pub danger: Option<f64>,
 }
 
 /// One line of the journal.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct Event {
     /// Increases by one per event over the life of the storage directory.
     pub seq: u64,

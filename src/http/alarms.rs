@@ -13,18 +13,20 @@ use axum::extract::{Path, Query};
 use axum::http::{header, HeaderMap};
 use axum::response::{IntoResponse, Response};
 use axum::Json;
-use serde_json::{json, Value};
+use serde::Serialize;
+use serde_json::Value;
+use utoipa::{IntoParams, ToSchema};
 
 use crate::alarm::capture;
 use crate::alarm::engine::{AlarmBoard, AlarmCommand, AlarmView, CommandError};
-use crate::alarm::journal::rfc3339;
+use crate::alarm::journal::{rfc3339, Event};
 use crate::config::zones::GUIDANCE;
 use crate::config::AlarmTarget;
 use crate::config::SpectrumKind;
 use crate::frame::bwf1::StreamDecoder;
 use crate::frame::Samples;
-use crate::http::api::{num, Params};
-use crate::http::error::ApiError;
+use crate::http::api::{enum_schema, num, sorted, Params};
+use crate::http::error::{ApiError, ErrorBody};
 use crate::http::export::{self, Amp, Format, Plot, Span};
 use crate::http::scaling::Scaling;
 use crate::http::{HttpState, Live};
@@ -34,15 +36,90 @@ use crate::units::Unit;
 /// How long an action waits for the worker.
 const COMMAND_TIMEOUT: Duration = Duration::from_secs(5);
 
-fn time(ns: u64) -> Value {
-    if ns == 0 {
-        Value::Null
-    } else {
-        Value::String(rfc3339(ns))
-    }
+fn time(ns: u64) -> Option<String> {
+    (ns != 0).then(|| rfc3339(ns))
 }
 
-fn view_json(ch: &ChannelShared, i: usize, v: Option<&AlarmView>) -> Value {
+/// An alarm of a channel (a band or an overall level), as the channel
+/// detail, the alarm list and the operator actions show it. Keys are
+/// written in alphabetical order, as always.
+#[derive(Serialize, ToSchema)]
+pub struct AlarmBody {
+    acknowledged: Option<bool>,
+    /// Limits now, in `unit` (null: none, or a baseline still learning).
+    alert_limit: Option<f64>,
+    /// The band or overall measure the alarm watches.
+    band: String,
+    channel: String,
+    danger_limit: Option<f64>,
+    latched: Option<bool>,
+    latching: bool,
+    /// Baseline learning: fraction done (null: not learning).
+    learning: Option<f64>,
+    /// What the action did (acknowledge, re-learn replies only).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    #[schema(value_type = String)]
+    outcome: Option<&'static str>,
+    /// When `state` last changed (null: not yet).
+    since: Option<String>,
+    /// "normal", "alert", "danger", "inhibited", or "unknown" before the
+    /// worker first evaluated it.
+    #[schema(value_type = String)]
+    state: &'static str,
+    /// Transitions into each state (null before the first evaluation).
+    transitions: Option<Transitions>,
+    #[schema(value_type = Option<String>)]
+    unit: Option<&'static str>,
+    /// The value now (null: none yet, or no ok value).
+    value: Option<f64>,
+    /// The zone preset the limits come from, if any.
+    zone: Option<ZoneBody>,
+}
+
+/// Transitions into each state since start.
+#[derive(Serialize, ToSchema)]
+pub struct Transitions {
+    alert: u64,
+    danger: u64,
+    inhibited: u64,
+    normal: u64,
+}
+
+/// A vibration severity zone preset (ISO 20816-3 groups, guidance only).
+#[derive(Serialize, ToSchema)]
+pub struct ZoneBody {
+    boundaries_mm_s: ZoneBoundaries,
+    #[schema(value_type = String)]
+    guidance: &'static str,
+    /// Machine group "1" or "2".
+    #[schema(value_type = String, pattern = "^[12]$")]
+    group: crate::config::zones::MachineGroup,
+    /// "rigid" or "flexible".
+    #[schema(value_type = String, pattern = "^(rigid|flexible)$")]
+    support: crate::config::zones::Support,
+}
+
+/// Zone boundaries A/B, B/C, C/D in mm/s RMS.
+#[derive(Serialize, ToSchema)]
+pub struct ZoneBoundaries {
+    ab: f64,
+    bc: f64,
+    cd: f64,
+}
+
+/// A channel's sensor health.
+#[derive(Serialize, ToSchema)]
+pub struct HealthBody {
+    /// True OK, false not OK (alarms inhibited), null before the first data.
+    ok: Option<bool>,
+    /// Why not OK.
+    #[schema(value_type = Vec<String>)]
+    reasons: Vec<&'static str>,
+    /// Since when (null: not yet known).
+    since: Option<String>,
+}
+
+fn alarm_body(ch: &ChannelShared, i: usize, v: Option<&AlarmView>) -> AlarmBody {
     let a = &ch.spec.alarms[i];
     let snap = ch.latest();
     let value = match a.target {
@@ -57,60 +134,86 @@ fn view_json(ch: &ChannelShared, i: usize, v: Option<&AlarmView>) -> Value {
     };
     let zone = a.spec.zone.map(|z| {
         let l = z.limits(a.unit.map_or(1.0, |u| u.to_si));
-        json!({
-            "group": z.group,
-            "support": z.support,
-            "boundaries_mm_s": l.boundaries_mm_s,
-            "guidance": GUIDANCE,
-        })
+        ZoneBody {
+            boundaries_mm_s: ZoneBoundaries {
+                ab: l.boundaries_mm_s.ab,
+                bc: l.boundaries_mm_s.bc,
+                cd: l.boundaries_mm_s.cd,
+            },
+            guidance: GUIDANCE,
+            group: z.group,
+            support: z.support,
+        }
     });
-    json!({
-        "channel": ch.spec.name,
-        "band": a.name,
-        "unit": a.unit.map(|u| u.symbol),
-        "state": v.map_or("unknown", |v| v.state.as_str()),
-        "latched": v.map(|v| v.latched),
-        "acknowledged": v.map(|v| v.acknowledged),
-        "latching": a.spec.latching,
-        "since": v.map_or(Value::Null, |v| time(v.since_unix_ns)),
-        "value": value,
-        "alert_limit": v.and_then(|v| v.alert_limit),
-        "danger_limit": v.and_then(|v| v.danger_limit),
-        "learning": v.and_then(|v| v.learning),
-        "transitions": v.map(|v| json!({
-            "normal": v.transitions[0],
-            "alert": v.transitions[1],
-            "danger": v.transitions[2],
-            "inhibited": v.transitions[3],
-        })),
-        "zone": zone,
-    })
+    AlarmBody {
+        acknowledged: v.map(|v| v.acknowledged),
+        alert_limit: v.and_then(|v| v.alert_limit),
+        band: a.name.clone(),
+        channel: ch.spec.name.clone(),
+        danger_limit: v.and_then(|v| v.danger_limit),
+        latched: v.map(|v| v.latched),
+        latching: a.spec.latching,
+        learning: v.and_then(|v| v.learning),
+        outcome: None,
+        since: v.and_then(|v| time(v.since_unix_ns)),
+        state: v.map_or("unknown", |v| v.state.as_str()),
+        transitions: v.map(|v| Transitions {
+            alert: v.transitions[1],
+            danger: v.transitions[2],
+            inhibited: v.transitions[3],
+            normal: v.transitions[0],
+        }),
+        unit: a.unit.map(|u| u.symbol),
+        value,
+        zone,
+    }
 }
 
 /// The channel's health and alarms, for the channel detail and the list.
-pub fn board_json(ch: &ChannelShared) -> (Value, Vec<Value>) {
+pub fn board_body(ch: &ChannelShared) -> (HealthBody, Vec<AlarmBody>) {
     let board: Option<std::sync::Arc<AlarmBoard>> = ch.alarm_board.load_full();
     let health = match &board {
-        Some(b) => json!({
-            "ok": b.health.ok,
-            "reasons": b.health.reasons.names(),
-            "since": time(b.health.since_unix_ns),
-        }),
-        None => json!({ "ok": Value::Null, "reasons": [], "since": Value::Null }),
+        Some(b) => HealthBody {
+            ok: Some(b.health.ok),
+            reasons: b.health.reasons.names(),
+            since: time(b.health.since_unix_ns),
+        },
+        None => HealthBody {
+            ok: None,
+            reasons: Vec::new(),
+            since: None,
+        },
     };
     let alarms = (0..ch.spec.alarms.len())
-        .map(|i| view_json(ch, i, board.as_ref().and_then(|b| b.alarms.get(i))))
+        .map(|i| alarm_body(ch, i, board.as_ref().and_then(|b| b.alarms.get(i))))
         .collect();
     (health, alarms)
 }
 
-pub async fn list(Live(st): Live) -> Json<Value> {
-    let mut all = Vec::new();
+/// `GET /api/v1/alarms`.
+#[derive(Serialize, ToSchema)]
+pub struct AlarmList {
+    alarms: Vec<AlarmBody>,
+    /// What the alarms are and are not.
+    #[schema(value_type = String)]
+    caution: &'static str,
+}
+
+/// Every alarm of every channel.
+#[utoipa::path(get, path = "/api/v1/alarms", tag = "alarms", responses(
+    (status = 200, description = "Every alarm, channel by channel", body = AlarmList),
+    (status = 500, description = "A body could not be serialised (logged)", body = ErrorBody),
+))]
+pub async fn list(Live(st): Live) -> Result<Json<Value>, ApiError> {
+    let mut alarms = Vec::new();
     for ch in &st.app.channels {
-        let (_, alarms) = board_json(ch);
-        all.extend(alarms);
+        let (_, a) = board_body(ch);
+        alarms.extend(a);
     }
-    Json(json!({ "alarms": all, "caution": CAUTION }))
+    Ok(Json(sorted(&AlarmList {
+        alarms,
+        caution: CAUTION,
+    })?))
 }
 
 /// Said wherever alarm states are shown.
@@ -158,11 +261,9 @@ async fn run_command(
     }
     match tokio::time::timeout(COMMAND_TIMEOUT, rx).await {
         Ok(Ok(Ok(reply))) => {
-            let mut body = view_json(ch, i, Some(&reply.view));
-            if let Value::Object(m) = &mut body {
-                m.insert("outcome".into(), reply.outcome.into());
-            }
-            Ok(Json(body))
+            let mut body = alarm_body(ch, i, Some(&reply.view));
+            body.outcome = Some(reply.outcome);
+            Ok(Json(sorted(&body)?))
         }
         Ok(Ok(Err(e))) => Err(ApiError::Conflict(e.to_string())),
         _ => Err(ApiError::NotReady(
@@ -171,6 +272,21 @@ async fn run_command(
     }
 }
 
+/// Acknowledges a latched alarm (bearer token).
+#[utoipa::path(post, path = "/api/v1/alarms/{channel}/{band}/ack", tag = "alarms",
+    params(
+        ("channel" = String, Path, description = "Channel name"),
+        ("band" = String, Path, description = "The alarm's band or overall measure"),
+    ),
+    security(("bearer" = [])),
+    responses(
+        (status = 200, description = "The alarm after the acknowledge, with `outcome`", body = AlarmBody),
+        (status = 401, description = "Missing or wrong bearer token (or no token configured)", body = ErrorBody),
+        (status = 404, description = "No such channel, or no such alarm on it", body = ErrorBody),
+        (status = 409, description = "Nothing to acknowledge in the alarm's state", body = ErrorBody),
+        (status = 500, description = "The channel's worker is gone (logged)", body = ErrorBody),
+        (status = 503, description = "The channel's worker did not answer in time", body = ErrorBody),
+    ))]
 pub async fn ack(
     Live(st): Live,
     Path((channel, band)): Path<(String, String)>,
@@ -181,6 +297,21 @@ pub async fn ack(
     run_command(ch, |reply| AlarmCommand::Ack { alarm: i, reply }, i).await
 }
 
+/// Starts learning an alarm's baseline again (bearer token).
+#[utoipa::path(post, path = "/api/v1/alarms/{channel}/{band}/relearn", tag = "alarms",
+    params(
+        ("channel" = String, Path, description = "Channel name"),
+        ("band" = String, Path, description = "The alarm's band or overall measure"),
+    ),
+    security(("bearer" = [])),
+    responses(
+        (status = 200, description = "The alarm after the request, with `outcome`", body = AlarmBody),
+        (status = 401, description = "Missing or wrong bearer token (or no token configured)", body = ErrorBody),
+        (status = 404, description = "No such channel, or no such alarm on it", body = ErrorBody),
+        (status = 409, description = "The alarm has no baseline to re-learn", body = ErrorBody),
+        (status = 500, description = "The channel's worker is gone (logged)", body = ErrorBody),
+        (status = 503, description = "The channel's worker did not answer in time", body = ErrorBody),
+    ))]
 pub async fn relearn(
     Live(st): Live,
     Path((channel, band)): Path<(String, String)>,
@@ -191,6 +322,42 @@ pub async fn relearn(
     run_command(ch, |reply| AlarmCommand::Relearn { alarm: i, reply }, i).await
 }
 
+/// An event of the journal as listed, with what became of its capture.
+#[derive(Serialize, ToSchema)]
+pub struct ListedEvent<'a> {
+    #[serde(flatten)]
+    event: &'a Event,
+    /// Events with a capture: "stored", "pending", "lost" or "pruned".
+    #[serde(skip_serializing_if = "Option::is_none")]
+    #[schema(value_type = String)]
+    capture_status: Option<&'static str>,
+    /// Why the capture was never written ("lost" only).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    capture_lost_reason: Option<String>,
+}
+
+/// A capture an event named that was never written.
+#[derive(Serialize, ToSchema)]
+pub struct LostCapture {
+    id: String,
+    reason: String,
+}
+
+/// `GET /api/v1/events`.
+#[derive(Serialize, ToSchema)]
+pub struct EventList<'a> {
+    /// The captures on disk.
+    captures: Vec<capture::CaptureInfo>,
+    /// The most recent events of the journal, oldest first.
+    events: Vec<ListedEvent<'a>>,
+    lost_captures: Vec<LostCapture>,
+}
+
+/// The recent alarm events and the stored captures.
+#[utoipa::path(get, path = "/api/v1/events", tag = "events", responses(
+    (status = 200, description = "Recent events and the captures on disk", body = EventList),
+    (status = 500, description = "The capture directory could not be listed (logged)", body = ErrorBody),
+))]
 pub async fn events(Live(st): Live) -> Result<Json<Value>, ApiError> {
     let events = st
         .app
@@ -212,28 +379,28 @@ pub async fn events(Live(st): Live) -> Result<Json<Value>, ApiError> {
     let mut lost = Vec::new();
     let mut listed = Vec::with_capacity(events.len());
     for e in &events {
-        let mut v = serde_json::to_value(e).map_err(|_| ApiError::Internal)?;
-        if let (Some(id), Some(io), Some(dir), Value::Object(m)) =
-            (&e.capture, io, &st.app.captures_dir, &mut v)
-        {
+        let mut item = ListedEvent {
+            event: e,
+            capture_status: None,
+            capture_lost_reason: None,
+        };
+        if let (Some(id), Some(io), Some(dir)) = (&e.capture, io, &st.app.captures_dir) {
             let fate = io.capture_fate(dir, id);
-            m.insert("capture_status".into(), fate.as_str().into());
-            if let Some(r) = fate.reason() {
-                m.insert("capture_lost_reason".into(), r.into());
-            }
+            item.capture_status = Some(fate.as_str());
+            item.capture_lost_reason = fate.reason().map(str::to_string);
         }
-        listed.push(v);
+        listed.push(item);
     }
     if let Some(io) = io {
         for (id, reason) in io.lost_captures() {
-            lost.push(json!({ "id": id, "reason": reason }));
+            lost.push(LostCapture { id, reason });
         }
     }
-    Ok(Json(json!({
-        "events": listed,
-        "captures": captures,
-        "lost_captures": lost,
-    })))
+    Ok(Json(sorted(&EventList {
+        captures,
+        events: listed,
+        lost_captures: lost,
+    })?))
 }
 
 /// A capture that cannot be read: one an event names but that is not on
@@ -269,14 +436,76 @@ fn capture_error(st: &HttpState, e: capture::CaptureError) -> ApiError {
     }
 }
 
+/// `GET /api/v1/events/{id}`: the capture's metadata file and where its
+/// waveform is.
+#[derive(Serialize, ToSchema)]
+pub struct EventBody<'a> {
+    #[serde(flatten)]
+    meta: &'a capture::CaptureMeta,
+    /// `/api/v1/events/{id}/waveform`.
+    waveform_url: String,
+}
+
+/// The query of one capture.
+#[derive(IntoParams)]
+#[into_params(parameter_in = Query)]
+#[allow(dead_code)] // describes the query string; `Params` reads it
+pub struct EventQuery {
+    /// json (default: the metadata), or the spectrum at the trip as a csv
+    /// or svg download.
+    #[param(schema_with = format_schema)]
+    format: Option<String>,
+    /// The image's amplitude axis (format=svg only): linear (default) or log (dB).
+    #[param(schema_with = amp_schema)]
+    amp: Option<String>,
+}
+
+fn format_schema() -> utoipa::openapi::Object {
+    enum_schema(crate::http::api::FORMATS)
+}
+
+fn amp_schema() -> utoipa::openapi::Object {
+    enum_schema(crate::http::api::AMPS)
+}
+
+/// The values `format=` of a capture's waveform takes.
+pub(crate) const WAVEFORM_FORMATS: [&str; 3] = ["bwf1", "csv", "svg"];
+
+fn waveform_format_schema() -> utoipa::openapi::Object {
+    enum_schema(WAVEFORM_FORMATS)
+}
+
+/// The query of a capture's waveform.
+#[derive(IntoParams)]
+#[into_params(parameter_in = Query)]
+#[allow(dead_code)] // describes the query string; `Params` reads it
+pub struct EventWaveformQuery {
+    /// bwf1 (default: the file as stored), or a csv or svg download.
+    #[param(schema_with = waveform_format_schema)]
+    format: Option<String>,
+}
+
 /// One capture's metadata (trip, limits, spectrum at the trip); with
 /// `?format=csv|svg` the spectrum at the trip as a download.
+#[utoipa::path(get, path = "/api/v1/events/{id}", tag = "events",
+    params(("id" = String, Path, description = "Capture id (as `/api/v1/events` lists them)"), EventQuery),
+    responses(
+        (status = 200, description = "The capture's metadata (JSON), or its spectrum at the trip as a download (`format=csv|svg`)",
+            content(
+                (EventBody = "application/json"),
+                (String = "text/csv"),
+                (String = "image/svg+xml"),
+            )),
+        (status = 400, description = "A query parameter is unknown, repeated or out of range", body = ErrorBody),
+        (status = 404, description = "No such capture; one not on disk (pending, lost, pruned: `capture_status` says); or, for a download, no spectrum at the trip", body = ErrorBody),
+        (status = 500, description = "The capture could not be read (logged)", body = ErrorBody),
+    ))]
 pub async fn event(
     Live(st): Live,
     Path(id): Path<String>,
     q: Result<Query<Vec<(String, String)>>, QueryRejection>,
 ) -> Result<Response, ApiError> {
-    let params = Params::new(q, &["format", "amp"])?;
+    let params = Params::of::<EventQuery>(q)?;
     let format = params.format()?;
     let amp = Amp::parse(params.get("amp"), format)?;
     let dir = st
@@ -286,13 +515,10 @@ pub async fn event(
         .ok_or_else(|| ApiError::UnknownCapture(id.clone()))?;
     let meta = capture::read_meta(dir, &id).map_err(|e| capture_error(&st, e))?;
     if format == Format::Json {
-        let mut body = serde_json::to_value(&meta).map_err(|_| ApiError::Internal)?;
-        if let Value::Object(m) = &mut body {
-            m.insert(
-                "waveform_url".into(),
-                format!("/api/v1/events/{id}/waveform").into(),
-            );
-        }
+        let body = sorted(&EventBody {
+            meta: &meta,
+            waveform_url: format!("/api/v1/events/{id}/waveform"),
+        })?;
         return Ok(Json(body).into_response());
     }
     let Some(sp) = &meta.spectrum else {
@@ -439,19 +665,33 @@ fn capture_samples(id: &str, bytes: &[u8]) -> Result<Vec<f32>, ApiError> {
 }
 
 /// A capture's waveform: the raw BWF1 file (default), or `?format=csv|svg`.
+#[utoipa::path(get, path = "/api/v1/events/{id}/waveform", tag = "events",
+    params(("id" = String, Path, description = "Capture id (as `/api/v1/events` lists them)"), EventWaveformQuery),
+    responses(
+        (status = 200, description = "The capture's samples: the BWF1 file as stored (default), or a csv or svg download",
+            content(
+                (Vec<u8> = "application/octet-stream"),
+                (String = "text/csv"),
+                (String = "image/svg+xml"),
+            )),
+        (status = 400, description = "A query parameter is unknown, repeated or out of range", body = ErrorBody),
+        (status = 404, description = "No such capture, or one not on disk (pending, lost, pruned: `capture_status` says)", body = ErrorBody),
+        (status = 500, description = "The capture could not be read or decoded (logged)", body = ErrorBody),
+    ))]
 pub async fn event_waveform(
     Live(st): Live,
     Path(id): Path<String>,
     q: Result<Query<Vec<(String, String)>>, QueryRejection>,
 ) -> Result<Response, ApiError> {
-    let params = Params::new(q, &["format"])?;
+    let params = Params::of::<EventWaveformQuery>(q)?;
     let format = match params.get("format") {
         None | Some("bwf1") => None,
         Some("csv") => Some(Format::Csv),
         Some("svg") => Some(Format::Svg),
         Some(other) => {
             return Err(ApiError::BadQuery(format!(
-                "format={other:?} is not known (known: bwf1, csv, svg)"
+                "format={other:?} is not known (known: {})",
+                WAVEFORM_FORMATS.join(", ")
             )))
         }
     };

@@ -10,14 +10,15 @@ use axum::extract::{Path, Query};
 use axum::response::{IntoResponse, Response};
 use axum::Json;
 use serde::Serialize;
-use serde_json::{json, Map, Value};
+use serde_json::Value;
+use utoipa::{IntoParams, ToSchema};
 
 use crate::clock::unix_now_ns;
 use crate::config::{AlarmTarget, AveragingMode, BandEdges, ChannelSpec};
 use crate::counters::SourceCounters;
 use crate::counters::{ChannelCounters, GapReason};
 use crate::dsp::bands::BandStatus;
-use crate::http::error::ApiError;
+use crate::http::error::{ApiError, ErrorBody};
 use crate::http::export::{self, Amp, Format, Plot, Span};
 use crate::http::scaling::{line_range, Conversion, Scaling};
 use crate::http::Live;
@@ -62,6 +63,16 @@ impl Params {
         Ok(Params(pairs))
     }
 
+    /// As [`Params::new`], with the keys of the query type `Q` (the type the
+    /// OpenAPI document describes the query string with), in its order.
+    pub(crate) fn of<Q: IntoParams>(
+        q: Result<Query<Vec<(String, String)>>, QueryRejection>,
+    ) -> Result<Params, ApiError> {
+        let names = query_names::<Q>();
+        let known: Vec<&str> = names.iter().map(String::as_str).collect();
+        Params::new(q, &known)
+    }
+
     pub(crate) fn get(&self, key: &str) -> Option<&str> {
         self.0
             .iter()
@@ -83,6 +94,56 @@ impl Params {
     pub(crate) fn format(&self) -> Result<Format, ApiError> {
         Format::parse(self.get("format"))
     }
+}
+
+/// The query keys a handler takes: the fields of its query type.
+pub(crate) fn query_names<Q: IntoParams>() -> Vec<String> {
+    Q::into_params(|| Some(utoipa::openapi::path::ParameterIn::Query))
+        .into_iter()
+        .map(|p| p.name)
+        .collect()
+}
+
+/// A string schema with a fixed set of values (the query's vocabularies,
+/// taken from the same lists the handlers parse with).
+pub(crate) fn enum_schema<'a>(
+    values: impl IntoIterator<Item = &'a str>,
+) -> utoipa::openapi::Object {
+    utoipa::openapi::ObjectBuilder::new()
+        .schema_type(utoipa::openapi::schema::Type::String)
+        .enum_values(Some(values.into_iter().map(str::to_string)))
+        .build()
+}
+
+/// `format=`: the values [`Format::parse`] takes.
+pub(crate) const FORMATS: [&str; 3] = ["json", "csv", "svg"];
+/// `amp=`: the values [`Amp::parse`] takes.
+pub(crate) const AMPS: [&str; 2] = ["linear", "log"];
+
+fn format_schema() -> utoipa::openapi::Object {
+    enum_schema(FORMATS)
+}
+
+fn amp_schema() -> utoipa::openapi::Object {
+    enum_schema(AMPS)
+}
+
+fn scaling_schema() -> utoipa::openapi::Object {
+    enum_schema(Scaling::ALL.map(Scaling::as_str))
+}
+
+fn unit_schema() -> utoipa::openapi::Object {
+    enum_schema(Unit::all().map(|u| u.symbol))
+}
+
+/// A body as a JSON value, whose objects keep their keys in alphabetical
+/// order: the order these endpoints have always written (they were built
+/// as `serde_json::Value`s before they had types).
+pub(crate) fn sorted<T: Serialize>(body: &T) -> Result<Value, ApiError> {
+    serde_json::to_value(body).map_err(|e| {
+        tracing::error!(error = %e, "cannot serialise a response body");
+        ApiError::Internal
+    })
 }
 
 // ---------------------------------------------------------------------------
@@ -151,11 +212,37 @@ fn latest_of(ch: &ChannelShared) -> Result<Arc<ChannelSnapshot>, ApiError> {
 // Health
 // ---------------------------------------------------------------------------
 
-pub async fn healthz() -> Json<Value> {
-    Json(json!({ "status": "ok" }))
+/// `GET /healthz`.
+#[derive(Serialize, ToSchema)]
+pub struct Health {
+    /// Always "ok": the process answers.
+    #[schema(value_type = String, example = "ok")]
+    status: &'static str,
 }
 
-pub async fn readyz(Live(st): Live) -> Result<Json<Value>, ApiError> {
+/// `GET /readyz` when every channel has published.
+#[derive(Serialize, ToSchema)]
+pub struct Ready {
+    /// How many channels there are.
+    channels: usize,
+    /// Always "ready".
+    #[schema(value_type = String, example = "ready")]
+    status: &'static str,
+}
+
+/// Liveness: the process answers.
+#[utoipa::path(get, path = "/healthz", tag = "health",
+    responses((status = 200, description = "The process answers", body = Health)))]
+pub async fn healthz() -> Json<Health> {
+    Json(Health { status: "ok" })
+}
+
+/// Readiness: every channel has published a first spectrum.
+#[utoipa::path(get, path = "/readyz", tag = "health", responses(
+    (status = 200, description = "Every channel has published a spectrum", body = Ready),
+    (status = 503, description = "Some channels have not published yet (`waiting` names them)", body = ErrorBody),
+))]
+pub async fn readyz(Live(st): Live) -> Result<Json<Ready>, ApiError> {
     let waiting: Vec<String> = st
         .app
         .channels
@@ -164,9 +251,10 @@ pub async fn readyz(Live(st): Live) -> Result<Json<Value>, ApiError> {
         .map(|c| c.spec.name.clone())
         .collect();
     if waiting.is_empty() {
-        Ok(Json(
-            json!({ "status": "ready", "channels": st.app.channels.len() }),
-        ))
+        Ok(Json(Ready {
+            channels: st.app.channels.len(),
+            status: "ready",
+        }))
     } else {
         Err(ApiError::Waiting(waiting))
     }
@@ -176,43 +264,72 @@ pub async fn readyz(Live(st): Live) -> Result<Json<Value>, ApiError> {
 // Channels
 // ---------------------------------------------------------------------------
 
-#[derive(Serialize)]
-struct SourceInfo<'a> {
+/// A DAQ source.
+#[derive(Serialize, ToSchema)]
+pub struct SourceInfo<'a> {
     name: &'a str,
+    /// The source kind (e.g. "sim", "tcp-connect"); "unknown" when the
+    /// state holds no such source.
     kind: &'a str,
     /// `connected` or `disconnected`.
+    #[schema(value_type = String, pattern = "^(connected|disconnected)$")]
     state: &'static str,
     /// Seconds since the last good frame (null: none yet).
     last_frame_age_seconds: Option<f64>,
-    /// The source's counters (as in `/metrics`).
-    counters: Value,
+    /// The source's counters (as in `/metrics`); null when the state
+    /// holds no such source.
+    counters: Option<SourceCountersBody>,
 }
 
-#[derive(Serialize)]
-struct Averaging {
+/// A source's counters (fields in alphabetical order, as always written).
+#[derive(Serialize, ToSchema)]
+pub struct SourceCountersBody {
+    bytes: u64,
+    connections: u64,
+    crc_errors: u64,
+    frames: u64,
+    late_frames: u64,
+    missing_samples: u64,
+    /// Rejected frames by reason.
+    rejected: std::collections::BTreeMap<String, u64>,
+    resyncs: u64,
+    skipped_bytes: u64,
+}
+
+#[derive(Serialize, ToSchema)]
+pub struct Averaging {
+    /// "none", "linear", "exponential" or "peak-hold".
+    #[schema(value_type = String)]
     mode: &'static str,
     count: u32,
 }
 
-#[derive(Serialize)]
-struct ChannelSummary<'a> {
+/// One channel as `GET /api/v1/channels` lists it.
+#[derive(Serialize, ToSchema)]
+pub struct ChannelSummary<'a> {
     name: &'a str,
     /// Sensor health: true OK, false not OK (alarms inhibited), null before
     /// the first data.
     health_ok: Option<bool>,
     /// The most severe alarm state of the channel: "normal", "alert",
     /// "danger", "inhibited", or null without alarms.
+    #[schema(value_type = Option<String>)]
     alarm_state: Option<&'static str>,
+    #[schema(value_type = String)]
     unit: &'static str,
+    #[schema(value_type = String)]
     quantity: &'static str,
     /// Every unit the spectrum endpoint's `unit=` takes for this channel
     /// (its own first), and every `scaling=`.
+    #[schema(value_type = Vec<String>)]
     spectrum_units: Vec<&'static str>,
+    #[schema(value_type = Vec<String>)]
     spectrum_scalings: Vec<&'static str>,
     sample_rate_hz: f64,
     block: usize,
     nfft: usize,
     hop: usize,
+    #[schema(value_type = String)]
     window: &'static str,
     overlap: f64,
     averaging: Averaging,
@@ -302,19 +419,23 @@ fn source_info<'a>(name: &'a str, source: Option<&SourceCounters>, now_ns: u64) 
             .map(|s| SourceCounters::get(&s.last_frame_unix_ns))
             .filter(|&t| t != 0)
             .map(|t| now_ns.saturating_sub(t) as f64 * 1e-9),
-        counters: source.map_or(Value::Null, |s| {
+        counters: source.map(|s| {
             let g = SourceCounters::get;
-            json!({
-                "connections": g(&s.connections),
-                "frames": g(&s.frames),
-                "bytes": g(&s.bytes),
-                "crc_errors": g(&s.crc_errors),
-                "resyncs": g(&s.resyncs),
-                "skipped_bytes": g(&s.bytes_skipped),
-                "missing_samples": g(&s.samples_missing),
-                "late_frames": g(&s.frames_late),
-                "rejected": s.rejected().into_iter().collect::<std::collections::BTreeMap<_, _>>(),
-            })
+            SourceCountersBody {
+                bytes: g(&s.bytes),
+                connections: g(&s.connections),
+                crc_errors: g(&s.crc_errors),
+                frames: g(&s.frames),
+                late_frames: g(&s.frames_late),
+                missing_samples: g(&s.samples_missing),
+                rejected: s
+                    .rejected()
+                    .into_iter()
+                    .map(|(k, v)| (k.to_string(), v))
+                    .collect(),
+                resyncs: g(&s.resyncs),
+                skipped_bytes: g(&s.bytes_skipped),
+            }
         }),
     }
 }
@@ -332,24 +453,38 @@ fn machine_info<'a>(name: &'a str, machine: Option<&MachineShared>) -> MachineIn
     }
 }
 
-pub async fn list_channels(Live(st): Live) -> Json<Value> {
+/// `GET /api/v1/channels`.
+#[derive(Serialize, ToSchema)]
+pub struct ChannelList<'a> {
+    /// Config order.
+    channels: Vec<ChannelSummary<'a>>,
+}
+
+/// Every channel, summarised.
+#[utoipa::path(get, path = "/api/v1/channels", tag = "channels", responses(
+    (status = 200, description = "Every channel, config order", body = ChannelList),
+    (status = 500, description = "A body could not be serialised (logged)", body = ErrorBody),
+))]
+pub async fn list_channels(Live(st): Live) -> Result<Json<Value>, ApiError> {
     let now = unix_now_ns();
-    let list: Vec<Value> = st
+    let snaps: Vec<_> = st.app.channels.iter().map(|ch| ch.latest()).collect();
+    let channels = st
         .app
         .channels
         .iter()
-        .map(|ch| {
-            let snap = ch.latest();
-            serde_json::to_value(summary(&st.app, ch, snap.as_deref(), now)).unwrap_or(Value::Null)
-        })
+        .zip(&snaps)
+        .map(|(ch, snap)| summary(&st.app, ch, snap.as_deref(), now))
         .collect();
-    Json(json!({ "channels": list }))
+    Ok(Json(sorted(&ChannelList { channels })?))
 }
 
-#[derive(Serialize)]
-struct MachineInfo<'a> {
+/// A machine whose running speed order bands follow.
+#[derive(Serialize, ToSchema)]
+pub struct MachineInfo<'a> {
     name: &'a str,
-    /// "fixed", "tach" or "peak".
+    /// "fixed", "tach" or "peak" ("unknown" when the state holds no such
+    /// machine).
+    #[schema(value_type = String)]
     speed_source: &'static str,
     /// Null while the speed is unknown or stale.
     speed_hz: Option<f64>,
@@ -360,8 +495,19 @@ struct MachineInfo<'a> {
     speed_late_results: u64,
 }
 
-#[derive(Serialize)]
-struct BandInfo<'a> {
+/// A machine in the overview: [`MachineInfo`] and when its speed was
+/// last measured.
+#[derive(Serialize, ToSchema)]
+pub struct MachineState<'a> {
+    #[serde(flatten)]
+    machine: MachineInfo<'a>,
+    /// When the speed was last measured (null: fixed speed, or never).
+    speed_updated: Option<String>,
+}
+
+/// A band of a channel, with its latest value.
+#[derive(Serialize, ToSchema)]
+pub struct BandInfo<'a> {
     name: &'a str,
     /// Edges in Hz: fixed, or (order and bearing bands) at the speed of the
     /// latest spectrum; null while that speed is unknown.
@@ -370,48 +516,111 @@ struct BandInfo<'a> {
     /// Order windows [lo, hi] for order and bearing bands.
     orders: Option<Vec<[f64; 2]>>,
     bearing: Option<&'a str>,
+    #[schema(value_type = Option<String>)]
     defect: Option<&'static str>,
     /// "raw" or "envelope": which spectrum the band reads.
+    #[schema(value_type = String)]
     spectrum: &'static str,
     /// "ok", or why there is no value: "no_speed", "above_nyquist", "no_line".
+    /// Null before the first spectrum.
+    #[schema(value_type = Option<String>)]
     status: Option<&'static str>,
+    #[schema(value_type = String)]
     measure: &'static str,
+    #[schema(value_type = String)]
     unit: &'static str,
+    #[schema(value_type = String)]
     quantity: &'static str,
     /// Null before the first spectrum.
     value: Option<f64>,
     peak_hz: Option<f64>,
 }
 
-#[derive(Serialize)]
-struct OverallInfo {
+/// Overall levels of the latest block, in the channel's unit.
+#[derive(Serialize, ToSchema)]
+pub struct OverallInfo {
     mean: f64,
     rms: f64,
     peak: f64,
     peak_to_peak: f64,
+    /// peak / RMS (0 when the RMS is 0).
     crest_factor: f64,
+    #[schema(value_type = String)]
     unit: &'static str,
 }
 
-fn reasons(f: impl Fn(GapReason) -> u64) -> Map<String, Value> {
+/// A channel's sample counters (as in `/metrics`).
+#[derive(Serialize, ToSchema)]
+pub struct ChannelCountersBody {
+    blocks: u64,
+    /// Discontinuities by reason.
+    discontinuities: std::collections::BTreeMap<String, u64>,
+    samples_dropped: std::collections::BTreeMap<String, u64>,
+    samples_dropped_total: u64,
+    samples_in: u64,
+    samples_processed: u64,
+    spectra: u64,
+}
+
+/// Where the latest spectrum sits in the sample stream.
+#[derive(Serialize, ToSchema)]
+pub struct SpectrumPlace {
+    averages: u32,
+    end_sample: u64,
+    first_sample: u64,
+    oldest_first_sample: u64,
+    /// When the worker published it.
+    published: Option<String>,
+    seq: u64,
+    /// Time of `first_sample`, from the frames.
+    timestamp: Option<String>,
+}
+
+fn reasons(f: impl Fn(GapReason) -> u64) -> std::collections::BTreeMap<String, u64> {
     GapReason::ALL
         .iter()
-        .map(|&r| (r.as_str().to_string(), Value::from(f(r))))
+        .map(|&r| (r.as_str().to_string(), f(r)))
         .collect()
 }
 
-fn counters_json(c: &ChannelCounters) -> Value {
-    json!({
-        "samples_in": ChannelCounters::get(&c.samples_in),
-        "samples_processed": ChannelCounters::get(&c.samples_processed),
-        "samples_dropped": reasons(|r| c.dropped(r)),
-        "samples_dropped_total": c.dropped_total(),
-        "discontinuities": reasons(|r| c.discontinuities(r)),
-        "blocks": ChannelCounters::get(&c.blocks),
-        "spectra": ChannelCounters::get(&c.spectra),
-    })
+fn counters_body(c: &ChannelCounters) -> ChannelCountersBody {
+    ChannelCountersBody {
+        blocks: ChannelCounters::get(&c.blocks),
+        discontinuities: reasons(|r| c.discontinuities(r)),
+        samples_dropped: reasons(|r| c.dropped(r)),
+        samples_dropped_total: c.dropped_total(),
+        samples_in: ChannelCounters::get(&c.samples_in),
+        samples_processed: ChannelCounters::get(&c.samples_processed),
+        spectra: ChannelCounters::get(&c.spectra),
+    }
 }
 
+/// The body of `GET /api/v1/channels/{name}`: the summary of the list,
+/// then bands, health, alarms, overall levels, counters and the latest
+/// spectrum's place. The overview holds one per channel.
+#[derive(Serialize, ToSchema)]
+pub struct ChannelDetail<'a> {
+    #[serde(flatten)]
+    summary: ChannelSummary<'a>,
+    integration_low_cut_hz: f64,
+    bands: Vec<BandInfo<'a>>,
+    health: crate::http::alarms::HealthBody,
+    alarms: Vec<crate::http::alarms::AlarmBody>,
+    /// Null before the first spectrum.
+    overall: Option<OverallInfo>,
+    counters: ChannelCountersBody,
+    /// The latest spectrum's place; null before the first.
+    spectrum: Option<SpectrumPlace>,
+}
+
+/// One channel: settings, bands, health, alarms, levels and counters.
+#[utoipa::path(get, path = "/api/v1/channels/{name}", tag = "channels",
+    params(("name" = String, Path, description = "Channel name")),
+    responses(
+        (status = 200, description = "The channel", body = ChannelDetail),
+        (status = 404, description = "No such channel", body = ErrorBody),
+        (status = 500, description = "A body could not be serialised (logged)", body = ErrorBody),
+    ))]
 pub async fn channel_detail(
     Live(st): Live,
     Path(name): Path<String>,
@@ -420,17 +629,10 @@ pub async fn channel_detail(
     Ok(Json(detail(&st.app, ch, unix_now_ns())?))
 }
 
-/// The body of `GET /api/v1/channels/{name}`: the summary of the list,
-/// then bands, health, alarms, overall levels, counters and the latest
-/// spectrum's place. The overview holds one per channel.
+/// [`ChannelDetail`] of a channel as a JSON value (keys sorted).
 fn detail(app: &AppState, ch: &ChannelShared, now_ns: u64) -> Result<Value, ApiError> {
     let snap = ch.latest();
     let spec = &ch.spec;
-    let mut body =
-        serde_json::to_value(summary(app, ch, snap.as_deref(), now_ns)).map_err(|e| {
-            tracing::error!(error = %e, channel = %spec.name, "cannot serialise a channel summary");
-            ApiError::Internal
-        })?;
     let bands: Vec<BandInfo> = spec
         .bands
         .iter()
@@ -474,44 +676,43 @@ fn detail(app: &AppState, ch: &ChannelShared, now_ns: u64) -> Result<Value, ApiE
         crest_factor: s.overall.crest_factor,
         unit: spec.unit.symbol,
     });
-    if let Value::Object(m) = &mut body {
-        m.insert(
-            "integration_low_cut_hz".into(),
-            spec.integration_low_cut_hz.into(),
-        );
-        m.insert("bands".into(), json!(bands));
-        let (health, alarms) = crate::http::alarms::board_json(ch);
-        m.insert("health".into(), health);
-        m.insert("alarms".into(), Value::Array(alarms));
-        m.insert("overall".into(), json!(overall));
-        m.insert("counters".into(), counters_json(&ch.counters));
-        m.insert(
-            "spectrum".into(),
-            match &snap {
-                Some(s) => json!({
-                    "seq": s.seq,
-                    "averages": s.averages,
-                    "first_sample": s.first_sample,
-                    "oldest_first_sample": s.oldest_first_sample,
-                    "end_sample": s.first_sample + spec.block as u64,
-                    "timestamp": rfc3339_ns(s.timestamp_ns),
-                    "published": rfc3339_ns(s.published_unix_ns),
-                }),
-                None => Value::Null,
-            },
-        );
-    }
-    Ok(body)
+    let (health, alarms) = crate::http::alarms::board_body(ch);
+    sorted(&ChannelDetail {
+        summary: summary(app, ch, snap.as_deref(), now_ns),
+        integration_low_cut_hz: spec.integration_low_cut_hz,
+        bands,
+        health,
+        alarms,
+        overall,
+        counters: counters_body(&ch.counters),
+        spectrum: snap.as_ref().map(|s| SpectrumPlace {
+            averages: s.averages,
+            end_sample: s.first_sample + spec.block as u64,
+            first_sample: s.first_sample,
+            oldest_first_sample: s.oldest_first_sample,
+            published: rfc3339_ns(s.published_unix_ns),
+            seq: s.seq,
+            timestamp: rfc3339_ns(s.timestamp_ns),
+        }),
+    })
 }
 
 // ---------------------------------------------------------------------------
 // Overview
 // ---------------------------------------------------------------------------
 
-#[derive(Serialize)]
-struct Overview<'a> {
+/// `GET /api/v1/overview`. Channels and machines keep their keys sorted
+/// (as the channel endpoint writes them), the top level and the sources
+/// in field order, as always.
+#[derive(Serialize, ToSchema)]
+pub struct Overview<'a> {
+    /// When the body was made.
     time: Option<String>,
+    /// Each one a [`ChannelDetail`].
+    #[schema(value_type = Vec<ChannelDetail>)]
     channels: Vec<Value>,
+    /// Each one a [`MachineState`].
+    #[schema(value_type = Vec<MachineState>)]
     machines: Vec<Value>,
     sources: Vec<SourceInfo<'a>>,
 }
@@ -519,6 +720,10 @@ struct Overview<'a> {
 /// `GET /api/v1/overview`: what the overview page shows in one request:
 /// every channel's detail (the body of `/api/v1/channels/{name}`, config
 /// order), every machine (also those no channel follows) and every source.
+#[utoipa::path(get, path = "/api/v1/overview", tag = "channels", responses(
+    (status = 200, description = "Every channel's detail, every machine and source", body = Overview),
+    (status = 500, description = "A body could not be serialised (logged)", body = ErrorBody),
+))]
 pub async fn overview(Live(st): Live) -> Result<Response, ApiError> {
     let now = unix_now_ns();
     let app = &st.app;
@@ -527,23 +732,19 @@ pub async fn overview(Live(st): Live) -> Result<Response, ApiError> {
         .iter()
         .map(|ch| detail(app, ch, now))
         .collect::<Result<Vec<Value>, ApiError>>()?;
-    let machines: Vec<Value> = app
+    let machines = app
         .machines
         .iter()
         .map(|m| {
-            let mut v = json!(machine_info(&m.spec.name, Some(m)));
-            if let Value::Object(o) = &mut v {
-                o.insert(
-                    "speed_updated".into(),
-                    json!(m
-                        .is_measured()
-                        .then(|| rfc3339_ns(m.updated_unix_ns()))
-                        .flatten()),
-                );
-            }
-            v
+            sorted(&MachineState {
+                machine: machine_info(&m.spec.name, Some(m)),
+                speed_updated: m
+                    .is_measured()
+                    .then(|| rfc3339_ns(m.updated_unix_ns()))
+                    .flatten(),
+            })
         })
-        .collect();
+        .collect::<Result<Vec<Value>, ApiError>>()?;
     let sources: Vec<SourceInfo> = app
         .sources
         .iter()
@@ -563,12 +764,18 @@ pub async fn overview(Live(st): Live) -> Result<Response, ApiError> {
 // Trend
 // ---------------------------------------------------------------------------
 
-#[derive(Serialize)]
-struct TrendSeries<'a> {
+/// One series of a trend: per second, the min, max and last value (null
+/// where there was no ok value).
+#[derive(Serialize, ToSchema)]
+pub struct TrendSeries<'a> {
+    /// The band (bands only).
     #[serde(skip_serializing_if = "Option::is_none")]
     name: Option<&'a str>,
+    #[schema(value_type = String)]
     unit: &'static str,
+    /// The band's measure (bands only).
     #[serde(skip_serializing_if = "Option::is_none")]
+    #[schema(value_type = String)]
     measure: Option<&'static str>,
     /// The alarm's limits now (null without an alarm on this value, or
     /// while a baseline is being learned).
@@ -579,15 +786,49 @@ struct TrendSeries<'a> {
     last: Vec<Option<f32>>,
 }
 
+/// `GET /api/v1/channels/{name}/trend`.
+#[derive(Serialize, ToSchema)]
+pub struct Trend<'a> {
+    bands: Vec<TrendSeries<'a>>,
+    capacity_seconds: usize,
+    channel: &'a str,
+    /// Seconds between points: 1.
+    interval_s: u32,
+    /// The overall levels by measure: rms, peak, peak_to_peak,
+    /// crest_factor, mean.
+    overall: std::collections::BTreeMap<&'static str, TrendSeries<'a>>,
+    /// Unix seconds of the points, oldest first.
+    t: Vec<u64>,
+}
+
+/// The query of the trend endpoint.
+#[derive(IntoParams)]
+#[into_params(parameter_in = Query)]
+#[allow(dead_code)] // describes the query string; `Params` reads it
+pub struct TrendQuery {
+    /// Seconds of trend, newest last (default, and at most, what the
+    /// channel keeps: `[server] trend_seconds`).
+    #[param(minimum = 1)]
+    seconds: Option<u64>,
+}
+
 /// `GET /api/v1/channels/{name}/trend?seconds=N`: the channel's trend
 /// (`pipeline::trend`), columnar, oldest point first; `seconds` defaults
 /// to (and is cut to) what the channel keeps.
+#[utoipa::path(get, path = "/api/v1/channels/{name}/trend", tag = "channels",
+    params(("name" = String, Path, description = "Channel name"), TrendQuery),
+    responses(
+        (status = 200, description = "The trend, columnar", body = Trend),
+        (status = 400, description = "A query parameter is unknown, repeated or out of range", body = ErrorBody),
+        (status = 404, description = "No such channel", body = ErrorBody),
+        (status = 500, description = "A body could not be serialised (logged)", body = ErrorBody),
+    ))]
 pub async fn trend(
     Live(st): Live,
     Path(name): Path<String>,
     q: Result<Query<Vec<(String, String)>>, QueryRejection>,
 ) -> Result<Json<Value>, ApiError> {
-    let params = Params::new(q, &["seconds"])?;
+    let params = Params::of::<TrendQuery>(q)?;
     let ch = channel_of(&st.app, &name)?;
     let spec = &ch.spec;
     let capacity = ch.trend.capacity_seconds();
@@ -614,7 +855,7 @@ pub async fn trend(
             .map_or((None, None), |a| (a.alert_limit, a.danger_limit))
     };
     let mut series = cols.series.into_iter();
-    let mut overall = Map::new();
+    let mut overall = std::collections::BTreeMap::new();
     for measure in OVERALL_MEASURES {
         let s = series.next().unwrap_or_default();
         let target = match measure {
@@ -625,8 +866,8 @@ pub async fn trend(
         };
         let (alert_limit, danger_limit) = target.map_or((None, None), limits);
         overall.insert(
-            measure.to_string(),
-            json!(TrendSeries {
+            measure,
+            TrendSeries {
                 name: None,
                 unit: if measure == "crest_factor" {
                     "1"
@@ -639,7 +880,7 @@ pub async fn trend(
                 min: s.min,
                 max: s.max,
                 last: s.last,
-            }),
+            },
         );
     }
     let bands: Vec<TrendSeries> = spec
@@ -661,23 +902,25 @@ pub async fn trend(
             }
         })
         .collect();
-    Ok(Json(json!({
-        "channel": spec.name,
-        "interval_s": 1,
-        "capacity_seconds": capacity,
-        "t": cols.t,
-        "overall": overall,
-        "bands": bands,
-    })))
+    Ok(Json(sorted(&Trend {
+        bands,
+        capacity_seconds: capacity,
+        channel: &spec.name,
+        interval_s: 1,
+        overall,
+        t: cols.t,
+    })?))
 }
 
 // ---------------------------------------------------------------------------
 // Spectrum
 // ---------------------------------------------------------------------------
 
-#[derive(Serialize)]
-struct SpectrumBody<'a> {
+/// `GET /api/v1/channels/{name}/spectrum` (JSON).
+#[derive(Serialize, ToSchema)]
+pub struct SpectrumBody<'a> {
     /// "raw", or "envelope" for the envelope spectrum (`?spectrum=envelope`).
+    #[schema(value_type = String)]
     spectrum: &'static str,
     /// Running speed of the channel's machine when the spectrum was made, Hz.
     speed_hz: Option<f64>,
@@ -685,8 +928,11 @@ struct SpectrumBody<'a> {
     /// Unit of `values` (e.g. `mm/s`, `g^2/Hz`).
     unit: String,
     /// Quantity of the unit asked for (acceleration, velocity…).
+    #[schema(value_type = String)]
     quantity: &'static str,
+    #[schema(value_type = String)]
     scaling: &'static str,
+    #[schema(value_type = String)]
     window: &'static str,
     block: usize,
     nfft: usize,
@@ -698,6 +944,7 @@ struct SpectrumBody<'a> {
     /// Equivalent noise bandwidth of the window in Hz.
     enbw_hz: f64,
     averages: u32,
+    #[schema(value_type = String)]
     averaging: &'static str,
     /// Stream index of the first sample of the newest block.
     first_sample: u64,
@@ -712,20 +959,67 @@ struct SpectrumBody<'a> {
     f0_hz: f64,
     /// Lines below this are zero when the unit integrates the channel's.
     integration_low_cut_hz: Option<f64>,
+    /// One value per line from `f0_hz`, `df_hz` apart; null where the
+    /// value does not fit an f32 (a power beyond f32's range).
+    #[schema(value_type = Vec<Option<f32>>)]
     values: Vec<f32>,
 }
 
+/// The query of the spectrum endpoint.
+#[derive(IntoParams)]
+#[into_params(parameter_in = Query)]
+#[allow(dead_code)] // describes the query string; `Params` reads it
+pub struct SpectrumQuery {
+    /// Amplitude scaling (default rms).
+    #[param(schema_with = scaling_schema)]
+    scaling: Option<String>,
+    /// Unit of the values: the channel's (default) or one derived from it
+    /// (the channel's `spectrum_units`; others are a 400).
+    #[param(schema_with = unit_schema)]
+    unit: Option<String>,
+    /// Lowest frequency, Hz (0 to Nyquist; default 0).
+    #[param(minimum = 0.0)]
+    fmin: Option<f64>,
+    /// Highest frequency, Hz (fmin to Nyquist; default Nyquist).
+    #[param(minimum = 0.0)]
+    fmax: Option<f64>,
+    /// json (default), or a csv or svg download.
+    #[param(schema_with = format_schema)]
+    format: Option<String>,
+    /// The raw spectrum (default) or the envelope spectrum (channels with
+    /// envelope analysis).
+    #[param(schema_with = spectrum_kind_schema)]
+    spectrum: Option<String>,
+    /// The image's amplitude axis (format=svg only): linear (default) or log (dB).
+    #[param(schema_with = amp_schema)]
+    amp: Option<String>,
+}
+
+fn spectrum_kind_schema() -> utoipa::openapi::Object {
+    enum_schema(["raw", "envelope"])
+}
+
+/// A channel's latest averaged spectrum, scaled and cropped; or a CSV or
+/// SVG download of it.
+#[utoipa::path(get, path = "/api/v1/channels/{name}/spectrum", tag = "channels",
+    params(("name" = String, Path, description = "Channel name"), SpectrumQuery),
+    responses(
+        (status = 200, description = "The spectrum (JSON), or a download (`format=csv|svg`)",
+            content(
+                (SpectrumBody = "application/json"),
+                (String = "text/csv"),
+                (String = "image/svg+xml"),
+            )),
+        (status = 400, description = "A query parameter is unknown, repeated, out of range or does not apply to the channel", body = ErrorBody),
+        (status = 404, description = "No such channel", body = ErrorBody),
+        (status = 503, description = "No spectrum published yet", body = ErrorBody),
+    ))]
 pub async fn spectrum(
     Live(st): Live,
     Path(name): Path<String>,
     q: Result<Query<Vec<(String, String)>>, QueryRejection>,
 ) -> Result<Response, ApiError> {
-    let params = Params::new(
-        q,
-        &[
-            "scaling", "unit", "fmin", "fmax", "format", "spectrum", "amp",
-        ],
-    )?;
+    let params = Params::of::<SpectrumQuery>(q)?;
     let ch = channel_of(&st.app, &name)?;
     let spec = &ch.spec;
     let scaling = match params.get("scaling") {
@@ -929,9 +1223,11 @@ pub async fn spectrum(
 // Waveform
 // ---------------------------------------------------------------------------
 
-#[derive(Serialize)]
-struct WaveformBody<'a> {
+/// `GET /api/v1/channels/{name}/waveform` (JSON).
+#[derive(Serialize, ToSchema)]
+pub struct WaveformBody<'a> {
     channel: &'a str,
+    #[schema(value_type = String)]
     unit: &'static str,
     sample_rate_hz: f64,
     /// Stream index of `values[0]`.
@@ -945,16 +1241,48 @@ struct WaveformBody<'a> {
     /// Ranges kept by the band filter, Hz.
     pass_hz: Option<Vec<[f64; 2]>>,
     /// How the band signal is made.
+    #[schema(value_type = Option<String>)]
     filter: Option<&'static str>,
+    /// The block's samples, `1 / sample_rate_hz` apart.
+    #[schema(value_type = Vec<f32>)]
     values: &'a [f32],
 }
 
+/// The query of the waveform endpoint.
+#[derive(IntoParams)]
+#[into_params(parameter_in = Query)]
+#[allow(dead_code)] // describes the query string; `Params` reads it
+pub struct WaveformQuery {
+    /// json (default), or a csv or svg download.
+    #[param(schema_with = format_schema)]
+    format: Option<String>,
+    /// One of the channel's bands: its signal (band-pass on the block).
+    band: Option<String>,
+    /// The envelope signal (channels with envelope analysis).
+    envelope: Option<bool>,
+}
+
+/// The latest block of samples (or its envelope, or one band's signal); or
+/// a CSV or SVG download of it.
+#[utoipa::path(get, path = "/api/v1/channels/{name}/waveform", tag = "channels",
+    params(("name" = String, Path, description = "Channel name"), WaveformQuery),
+    responses(
+        (status = 200, description = "The waveform (JSON), or a download (`format=csv|svg`)",
+            content(
+                (WaveformBody = "application/json"),
+                (String = "text/csv"),
+                (String = "image/svg+xml"),
+            )),
+        (status = 400, description = "A query parameter is unknown, repeated or does not apply to the channel", body = ErrorBody),
+        (status = 404, description = "No such channel", body = ErrorBody),
+        (status = 503, description = "No block yet; the band follows a speed that is unknown now; or request-time DSP is busy", body = ErrorBody),
+    ))]
 pub async fn waveform(
     Live(st): Live,
     Path(name): Path<String>,
     q: Result<Query<Vec<(String, String)>>, QueryRejection>,
 ) -> Result<Response, ApiError> {
-    let params = Params::new(q, &["format", "band", "envelope"])?;
+    let params = Params::of::<WaveformQuery>(q)?;
     let ch = channel_of(&st.app, &name)?;
     let format = params.format()?;
     let envelope = match params.get("envelope") {

@@ -6,7 +6,7 @@
 use axum::http::StatusCode;
 use axum::response::{IntoResponse, Response};
 use axum::Json;
-use serde_json::json;
+use serde::Serialize;
 
 #[derive(Debug, thiserror::Error)]
 pub enum ApiError {
@@ -92,19 +92,55 @@ impl ApiError {
     }
 }
 
+/// The body of every error: `error` always; the other fields only for the
+/// errors that carry them. Keys in alphabetical order, as the API has
+/// always written them.
+#[derive(Debug, Serialize, utoipa::ToSchema)]
+pub struct ErrorBody {
+    /// The capture asked for (404 of a capture that is not on disk).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub capture: Option<String>,
+    /// Why the capture was never written (`capture_status` "lost"); null
+    /// for the other statuses. Present only with `capture`.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    #[schema(value_type = Option<String>)]
+    pub capture_lost_reason: Option<Option<String>>,
+    /// What became of the capture: "pending", "lost" or "pruned".
+    #[serde(skip_serializing_if = "Option::is_none")]
+    #[schema(value_type = String)]
+    pub capture_status: Option<&'static str>,
+    /// What went wrong, naming what the client sent.
+    pub error: String,
+    /// `/readyz`: the channels still waiting for a first spectrum.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub waiting: Option<Vec<String>>,
+}
+
+impl ApiError {
+    /// The JSON body this error is answered with.
+    pub fn body(&self) -> ErrorBody {
+        let mut body = ErrorBody {
+            capture: None,
+            capture_lost_reason: None,
+            capture_status: None,
+            error: self.to_string(),
+            waiting: None,
+        };
+        match self {
+            ApiError::Waiting(names) => body.waiting = Some(names.clone()),
+            ApiError::CaptureUnavailable { id, status, reason } => {
+                body.capture = Some(id.clone());
+                body.capture_status = Some(status);
+                body.capture_lost_reason = Some(reason.clone());
+            }
+            _ => {}
+        }
+        body
+    }
+}
+
 impl IntoResponse for ApiError {
     fn into_response(self) -> Response {
-        let status = self.status();
-        let body = match &self {
-            ApiError::Waiting(names) => json!({ "error": self.to_string(), "waiting": names }),
-            ApiError::CaptureUnavailable { id, status, reason } => json!({
-                "error": self.to_string(),
-                "capture": id,
-                "capture_status": status,
-                "capture_lost_reason": reason,
-            }),
-            _ => json!({ "error": self.to_string() }),
-        };
-        (status, Json(body)).into_response()
+        (self.status(), Json(self.body())).into_response()
     }
 }

@@ -23,6 +23,7 @@ pub mod error;
 pub mod export;
 pub mod gate;
 pub mod metrics;
+pub mod openapi;
 pub mod page;
 pub mod projection;
 pub mod reload;
@@ -148,6 +149,7 @@ pub fn router_with(st: HttpState) -> Router {
         .route("/api/v1/events", get(alarms::events))
         .route("/api/v1/events/{id}", get(alarms::event))
         .route("/api/v1/events/{id}/waveform", get(alarms::event_waveform))
+        .route("/api/v1/openapi.json", get(openapi::openapi_json))
         .route_layer(middleware::from_fn_with_state(st.clone(), count_matched))
         .fallback(count_unmatched)
         .method_not_allowed_fallback(api::method_not_allowed)

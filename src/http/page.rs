@@ -149,11 +149,27 @@ fn serve(i: usize, headers: &HeaderMap) -> Response {
 }
 
 /// `GET /`: the page.
+#[utoipa::path(get, path = "/", tag = "page", responses(
+    (status = 200, description = "The operator page", content_type = "text/html", body = String),
+    (status = 304, description = "Not modified (`If-None-Match` carried its ETag)"),
+))]
 pub async fn index(headers: HeaderMap) -> Response {
     serve(0, &headers)
 }
 
 /// `GET /assets/{name}`: one of [`ASSETS`]; any other name is a 404.
+#[utoipa::path(get, path = "/assets/{name}", tag = "page",
+    params(("name" = String, Path, description = "File name of one of the page's files (e.g. app.js)")),
+    responses(
+        (status = 200, description = "The file",
+            content(
+                (String = "text/css"),
+                (String = "text/javascript"),
+                (String = "text/html"),
+            )),
+        (status = 304, description = "Not modified (`If-None-Match` carried its ETag)"),
+        (status = 404, description = "No such file", body = crate::http::error::ErrorBody),
+    ))]
 pub async fn asset(Path(name): Path<String>, headers: HeaderMap) -> Response {
     match ASSETS.iter().position(|a| a.name == name) {
         Some(i) => serve(i, &headers),

@@ -23,7 +23,7 @@ use crate::config::{ChannelSpec, Config, ConfigError};
 pub type ConfigLoader = Arc<dyn Fn() -> Result<Config, ConfigError> + Send + Sync>;
 
 /// One problem that kept a reload out, with the config field at fault.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct Problem {
     pub path: String,
     pub message: String,
@@ -74,7 +74,7 @@ fn join(p: &[Problem]) -> String {
 }
 
 /// What a reload did, by name.
-#[derive(Debug, Clone, Default, PartialEq, Serialize)]
+#[derive(Debug, Clone, Default, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct ReloadSummary {
     pub kept: Vec<String>,
     /// Limits changed, everything else kept.

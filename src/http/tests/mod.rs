@@ -178,6 +178,7 @@ mod endpoints;
 mod export;
 mod exposition;
 mod live;
+mod openapi;
 mod page;
 
 /// The value of the series `name{labels}` in a text exposition.
