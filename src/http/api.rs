@@ -198,7 +198,10 @@ fn age_seconds(snap: &ChannelSnapshot, now_ns: u64) -> f64 {
     now_ns.saturating_sub(snap.published_unix_ns) as f64 * 1e-9
 }
 
-fn channel_of<'a>(app: &'a AppState, name: &str) -> Result<&'a Arc<ChannelShared>, ApiError> {
+pub(crate) fn channel_of<'a>(
+    app: &'a AppState,
+    name: &str,
+) -> Result<&'a Arc<ChannelShared>, ApiError> {
     app.channel(name)
         .ok_or_else(|| ApiError::UnknownChannel(name.to_string()))
 }

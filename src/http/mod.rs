@@ -139,6 +139,10 @@ pub fn router_with(st: HttpState) -> Router {
         .route("/api/v1/channels/{name}/spectrum", get(api::spectrum))
         .route("/api/v1/channels/{name}/waveform", get(api::waveform))
         .route("/api/v1/channels/{name}/trend", get(api::trend))
+        .route(
+            "/api/v1/channels/{name}/projection",
+            get(projection::projection),
+        )
         .route("/api/v1/alarms", get(alarms::list))
         .route("/api/v1/alarms/{channel}/{band}/ack", post(alarms::ack))
         .route(

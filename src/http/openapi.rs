@@ -19,7 +19,7 @@ use utoipa::openapi::security::{HttpAuthScheme, HttpBuilder, SecurityScheme};
 use utoipa::OpenApi;
 
 use crate::http::error::{ApiError, ErrorBody};
-use crate::http::{alarms, api, page, reload};
+use crate::http::{alarms, api, page, projection, reload};
 
 /// The document: every route of the router.
 #[derive(OpenApi)]
@@ -45,6 +45,7 @@ a machinery protection or safety system."
         api::spectrum,
         api::waveform,
         api::trend,
+        projection::projection,
         alarms::list,
         alarms::ack,
         alarms::relearn,

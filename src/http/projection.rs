@@ -15,10 +15,20 @@
 //! A projection is guidance for planning (README "Time to limit"), not a
 //! prediction of failure.
 
+use axum::extract::rejection::QueryRejection;
+use axum::extract::{Path, Query};
+use axum::Json;
+use serde::Serialize;
+use utoipa::{IntoParams, ToSchema};
+
 use crate::alarm::engine::AlarmView;
+use crate::clock::unix_now_ns;
 use crate::config::alarms::Direction;
 use crate::config::{AlarmTarget, ChannelAlarm};
 use crate::dsp::trend::{fit_trend, Growth, Projection, Reach, TrendError, MAX_POINTS};
+use crate::http::api::{channel_of, rfc3339_ns, Params};
+use crate::http::error::{ApiError, ErrorBody};
+use crate::http::Live;
 use crate::pipeline::trend::{TrendColumns, OVERALL_MEASURES};
 
 /// The significance level of the Mann–Kendall test, and 1 − the
@@ -126,6 +136,270 @@ pub fn project_alarms(
             }
         })
         .collect()
+}
+
+/// What a projection says, in words a reader keeps.
+pub const PROJECTION_CAUTION: &str = "a projection is guidance for planning \
+(when to look, when to plan the work), not a prediction of failure: a trend \
+can change at any time; defer to the machine maker and licensed practice";
+
+/// The query of the projection endpoint.
+#[derive(IntoParams)]
+#[into_params(parameter_in = Query)]
+#[allow(dead_code)] // describes the query string; `Params` reads it
+pub struct ProjectionQuery {
+    /// Seconds of trend fitted, newest last (default, and at most, what
+    /// the channel keeps: `[server] trend_seconds`; at least 10).
+    #[param(minimum = 10)]
+    seconds: Option<u64>,
+    /// `exponential` (default: a fit on ln(value), growth by the same
+    /// factor per unit time) or `linear` (a fit on the values).
+    #[param(value_type = Option<String>, pattern = "^(exponential|linear)$")]
+    growth: Option<String>,
+}
+
+/// The Mann–Kendall test of an alarm's trend.
+#[derive(Serialize, ToSchema)]
+pub struct TestBody {
+    /// S = Σ sign(yⱼ − yᵢ), i < j.
+    s: i64,
+    /// Var(S), tie corrected.
+    var_s: f64,
+    /// With the continuity correction.
+    z: f64,
+    /// Two-sided.
+    p: f64,
+    tau: f64,
+    /// p below the significance level.
+    significant: bool,
+}
+
+/// The Theil–Sen slope of an alarm's trend.
+#[derive(Serialize, ToSchema)]
+pub struct SlopeBody {
+    /// Linear growth: the alarm's unit per second. Exponential growth:
+    /// d ln(value)/dt per second (0.01 is about 1 % a second).
+    per_second: f64,
+    /// The interval at 1 − significance confidence (Sen 1968).
+    low_per_second: f64,
+    high_per_second: f64,
+    /// "<unit>/s", or "1/s" (of ln value) for exponential growth.
+    unit: String,
+    /// Exponential growth with a rising slope: ln 2 / slope, the seconds
+    /// in which the level doubles at that pace; else null.
+    doubling_seconds: Option<f64>,
+}
+
+/// One limit's answer.
+#[derive(Serialize, ToSchema)]
+pub struct LevelBody {
+    /// "alert" or "danger".
+    level: &'static str,
+    /// The limit in force (the alarm's unit).
+    limit: f64,
+    /// `no_significant_trend`, `away` (a significant trend moving away
+    /// from the limit), `beyond` (the fitted line is past the limit now) or
+    /// `crossing`.
+    outcome: &'static str,
+    /// `crossing`: seconds from now until the fitted line reaches the
+    /// limit; `beyond`: 0.
+    seconds_to_limit: Option<f64>,
+    /// `crossing`: with the steep end of the slope's interval.
+    earliest_seconds: Option<f64>,
+    /// `crossing`: with the shallow end; null when that end does not move
+    /// toward the limit (no bound).
+    latest_seconds: Option<f64>,
+    /// `crossing`: when, RFC 3339.
+    at: Option<String>,
+}
+
+/// One alarm's trend and where it leads.
+#[derive(Serialize, ToSchema)]
+pub struct AlarmProjectionBody {
+    /// The alarm's name (its band's, or overall-rms, overall-peak,
+    /// overall-crest-factor).
+    name: String,
+    /// The unit of the value and the limits ("1": dimensionless).
+    unit: &'static str,
+    /// "high" or "low": which side of the limits is abnormal.
+    direction: &'static str,
+    /// Points fitted (per-second extremes, thinned to at most 513).
+    points: usize,
+    /// Why there is no fit (too few points, a value not above zero for
+    /// the exponential model), else null.
+    no_fit: Option<String>,
+    test: Option<TestBody>,
+    slope: Option<SlopeBody>,
+    levels: Vec<LevelBody>,
+}
+
+/// `GET /api/v1/channels/{name}/projection`.
+#[derive(Serialize, ToSchema)]
+pub struct ProjectionBody {
+    channel: String,
+    /// When it was computed, RFC 3339.
+    at: Option<String>,
+    /// Seconds of trend fitted.
+    seconds: usize,
+    growth: &'static str,
+    /// The Mann–Kendall significance level (and 1 − the confidence of the
+    /// slope's interval).
+    significance: f64,
+    method: &'static str,
+    caution: &'static str,
+    alarms: Vec<AlarmProjectionBody>,
+}
+
+fn level_body(l: &LevelReach, now_s: f64) -> LevelBody {
+    let (outcome, to, earliest, latest, at) = match l.reach {
+        Reach::NoSignificantTrend => ("no_significant_trend", None, None, None, None),
+        Reach::Away => ("away", None, None, None, None),
+        Reach::Beyond => ("beyond", Some(0.0), None, None, None),
+        Reach::At {
+            at,
+            earliest,
+            latest,
+        } => (
+            "crossing",
+            Some((at - now_s).max(0.0)),
+            Some((earliest - now_s).max(0.0)),
+            latest.map(|t| (t - now_s).max(0.0)),
+            rfc3339_ns((at.max(0.0) * 1e9).min(u64::MAX as f64) as u64),
+        ),
+    };
+    LevelBody {
+        level: l.level,
+        limit: l.limit,
+        outcome,
+        seconds_to_limit: to,
+        earliest_seconds: earliest,
+        latest_seconds: latest,
+        at,
+    }
+}
+
+/// `GET /api/v1/channels/{name}/projection?seconds=N&growth=...`: for each
+/// alarm of the channel, the trend of what it watches over the channel's
+/// in-memory trend and the time its alert and danger limits are reached
+/// at that pace (module docs; README "Time to limit").
+#[utoipa::path(get, path = "/api/v1/channels/{name}/projection", tag = "channels",
+    params(("name" = String, Path, description = "Channel name"), ProjectionQuery),
+    responses(
+        (status = 200, description = "Each alarm's trend and time to its limits", body = ProjectionBody),
+        (status = 400, description = "A query parameter is unknown, repeated or out of range", body = ErrorBody),
+        (status = 404, description = "No such channel", body = ErrorBody),
+    ))]
+pub async fn projection(
+    Live(st): Live,
+    Path(name): Path<String>,
+    q: Result<Query<Vec<(String, String)>>, QueryRejection>,
+) -> Result<Json<ProjectionBody>, ApiError> {
+    let params = Params::of::<ProjectionQuery>(q)?;
+    let ch = channel_of(&st.app, &name)?;
+    let capacity = ch.trend.capacity_seconds();
+    let seconds = match params.get("seconds") {
+        None => capacity,
+        Some(v) => match v.trim().parse::<usize>() {
+            Ok(n) if n >= 10 => n.min(capacity),
+            _ => {
+                return Err(ApiError::BadQuery(format!(
+                    "seconds={v:?} is not a whole number of seconds, 10 or more"
+                )))
+            }
+        },
+    };
+    let growth = match params.get("growth") {
+        None | Some("exponential") => Growth::Exponential,
+        Some("linear") => Growth::Linear,
+        Some(g) => {
+            return Err(ApiError::BadQuery(format!(
+                "growth={g:?} is not known (known: exponential, linear)"
+            )))
+        }
+    };
+    let now_ns = unix_now_ns();
+    let now_s = now_ns as f64 * 1e-9;
+    let cols = ch.trend.read(seconds, now_ns / 1_000_000_000);
+    let spec = &ch.spec;
+    let views: Vec<AlarmView> = ch
+        .alarm_board
+        .load()
+        .as_ref()
+        .map(|b| b.alarms.clone())
+        .unwrap_or_default();
+    // Without a board (no alarm engine) no limit is in force.
+    let views = if views.len() == spec.alarms.len() {
+        views
+    } else {
+        let none = AlarmView {
+            state: crate::alarm::state::AlarmState::Normal,
+            latched: false,
+            acknowledged: false,
+            since_unix_ns: 0,
+            value: None,
+            alert_limit: None,
+            danger_limit: None,
+            transitions: [0; 4],
+            learning: None,
+        };
+        vec![none; spec.alarms.len()]
+    };
+    let alarms = project_alarms(&spec.alarms, &views, &cols, growth, now_s)
+        .into_iter()
+        .zip(&spec.alarms)
+        .map(|(p, a)| {
+            let (test, slope, no_fit) = match &p.fit {
+                Ok(f) => (
+                    Some(TestBody {
+                        s: f.test.s,
+                        var_s: f.test.var_s,
+                        z: f.test.z,
+                        p: f.test.p,
+                        tau: f.test.tau,
+                        significant: f.significant(),
+                    }),
+                    Some(SlopeBody {
+                        per_second: f.fit.slope,
+                        low_per_second: f.fit.low_slope,
+                        high_per_second: f.fit.high_slope,
+                        unit: match growth {
+                            Growth::Linear => format!("{}/s", a.unit.map_or("1", |u| u.symbol)),
+                            Growth::Exponential => "1/s".into(),
+                        },
+                        doubling_seconds: (growth == Growth::Exponential && f.fit.slope > 0.0)
+                            .then(|| std::f64::consts::LN_2 / f.fit.slope),
+                    }),
+                    None,
+                ),
+                Err(e) => (None, None, Some(e.to_string())),
+            };
+            AlarmProjectionBody {
+                name: p.name,
+                unit: a.unit.map_or("1", |u| u.symbol),
+                direction: match p.direction {
+                    Direction::High => "high",
+                    Direction::Low => "low",
+                },
+                points: p.points,
+                no_fit,
+                test,
+                slope,
+                levels: p.levels.iter().map(|l| level_body(l, now_s)).collect(),
+            }
+        })
+        .collect();
+    Ok(Json(ProjectionBody {
+        channel: spec.name.clone(),
+        at: rfc3339_ns(now_ns),
+        seconds,
+        growth: growth.as_str(),
+        significance: ALPHA,
+        method: "Mann-Kendall test (Mann 1945, Kendall 1975; ties and continuity corrected, \
+                 two-sided); Theil-Sen slope with Sen's (1968) interval, on ln(value) for \
+                 exponential growth; per-second extremes of the in-memory trend",
+        caution: PROJECTION_CAUTION,
+        alarms,
+    }))
 }
 
 #[cfg(test)]

@@ -177,3 +177,46 @@ async fn trend_refuses_bad_queries() {
     let r = get(&st, "/api/v1/channels/a/trend?seconds=100000").await;
     assert_eq!(r.status, StatusCode::OK);
 }
+
+/// The projection endpoint: its query is checked like the trend's, and a
+/// channel without trend points answers per alarm why there is no fit
+/// (no invented slope).
+#[tokio::test]
+async fn projection_refuses_bad_queries_and_says_why_there_is_no_fit() {
+    let cfg = parse_str(
+        "[server]\nlisten = \"127.0.0.1:0\"\n[alarms]\nstorage_dir = \"/nonexistent-never-opened\"\n\
+         [[source]]\nname = \"s\"\nkind = \"sim\"\n\
+         [[channel]]\nname = \"a\"\nsource = \"s\"\nindex = 0\nunit = \"g\"\nblock = 4096\n\
+         integration_low_cut_hz = 5.0\n\
+         overall_alarm = { rms = { alert = { limit = 1.0 } } }\n\
+         [[channel.band]]\nname = \"v\"\nlo_hz = 10\nhi_hz = 1000\nunit = \"mm/s\"\n\
+         [channel.band.alarm]\nalert = { limit = 2.0 }\ndanger = { limit = 4.0 }\n",
+    )
+    .expect("config");
+    let st = Arc::new(AppState::new(&cfg));
+    for q in ["seconds=9", "seconds=x", "growth=quadratic", "window=3"] {
+        let r = get(&st, &format!("/api/v1/channels/a/projection?{q}")).await;
+        assert_json_error(&r, StatusCode::BAD_REQUEST, "");
+    }
+    let r = get(&st, "/api/v1/channels/nope/projection").await;
+    assert_eq!(r.status, StatusCode::NOT_FOUND);
+    for q in ["", "?growth=linear&seconds=100000"] {
+        let r = get(&st, &format!("/api/v1/channels/a/projection{q}")).await;
+        assert_eq!(r.status, StatusCode::OK, "{}", r.body);
+        let v = r.json();
+        assert!(v["caution"]
+            .as_str()
+            .expect("caution")
+            .contains("not a prediction"));
+        let alarms = v["alarms"].as_array().expect("alarms");
+        assert_eq!(alarms.len(), 2, "{v}");
+        for a in alarms {
+            assert_eq!(a["points"], 0, "{a}");
+            assert!(
+                a["no_fit"].as_str().expect("why").contains("at least 10"),
+                "{a}"
+            );
+            assert!(a["test"].is_null() && a["slope"].is_null(), "{a}");
+        }
+    }
+}

@@ -176,8 +176,9 @@ async fn each_handler_takes_exactly_the_documented_query_keys() {
         );
         checked += 1;
     }
-    // spectrum, waveform, trend, one capture, a capture's waveform.
-    assert_eq!(checked, 5);
+    // spectrum, waveform, trend, projection, one capture, a capture's
+    // waveform.
+    assert_eq!(checked, 6);
 }
 
 /// Every `$ref` in `v`.
