@@ -138,6 +138,60 @@ pub fn project_alarms(
         .collect()
 }
 
+/// When each alarm of a channel reaches its limits, as of one
+/// computation: per alarm, per level (alert, danger), the Unix time in
+/// seconds the fitted line reaches the limit (the computation's time when
+/// it is already past it); None without a significant trend toward it.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct ChannelReach {
+    pub computed_s: f64,
+    pub alarms: Vec<[Option<f64>; 2]>,
+}
+
+/// [`ChannelReach`] of `ch` at `now_s`, over its whole in-memory trend,
+/// exponential growth (the API's defaults).
+pub fn channel_reach(ch: &crate::pipeline::state::ChannelShared, now_s: f64) -> ChannelReach {
+    let spec = &ch.spec;
+    let board = ch.alarm_board.load();
+    let Some(board) = board
+        .as_ref()
+        .filter(|b| b.alarms.len() == spec.alarms.len())
+    else {
+        return ChannelReach {
+            computed_s: now_s,
+            alarms: vec![[None, None]; spec.alarms.len()],
+        };
+    };
+    let cols = ch
+        .trend
+        .read(ch.trend.capacity_seconds(), now_s.max(0.0) as u64);
+    let alarms = project_alarms(
+        &spec.alarms,
+        &board.alarms,
+        &cols,
+        Growth::Exponential,
+        now_s,
+    )
+    .iter()
+    .map(|p| {
+        let mut out = [None, None];
+        for l in &p.levels {
+            let k = usize::from(l.level == "danger");
+            out[k] = match l.reach {
+                Reach::At { at, .. } => Some(at),
+                Reach::Beyond => Some(now_s),
+                Reach::NoSignificantTrend | Reach::Away => None,
+            };
+        }
+        out
+    })
+    .collect();
+    ChannelReach {
+        computed_s: now_s,
+        alarms,
+    }
+}
+
 /// What a projection says, in words a reader keeps.
 pub const PROJECTION_CAUTION: &str = "a projection is guidance for planning \
 (when to look, when to plan the work), not a prediction of failure: a trend \

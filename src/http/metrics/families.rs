@@ -49,9 +49,10 @@ pub(crate) enum Fixed {
     StorageWriteErrors,
     StorageWriteRetries,
     StorageRecordsLost,
+    AlarmTimeToLimit,
 }
 
-pub(crate) const FIXED: [(Fixed, &str, &str, MetricType, &[&str]); 39] = [
+pub(crate) const FIXED: [(Fixed, &str, &str, MetricType, &[&str]); 40] = [
     (
         Fixed::BandPeakFrequency,
         "bandwatch_band_peak_frequency_hertz",
@@ -324,6 +325,13 @@ pub(crate) const FIXED: [(Fixed, &str, &str, MetricType, &[&str]); 39] = [
         "Journal events, captures or baselines given up after their retries; a lost capture is reported with its reason by the event API.",
         MetricType::COUNTER,
         &["kind"],
+    ),
+    (
+        Fixed::AlarmTimeToLimit,
+        "bandwatch_alarm_time_to_limit_seconds",
+        "Seconds until the alarm's significant trend reaches its limit, by level (0: past it; absent: no significant trend toward it). Guidance, not a prediction.",
+        MetricType::GAUGE,
+        &["channel", "band", "level"],
     ),
 ];
 

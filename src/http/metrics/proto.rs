@@ -195,7 +195,14 @@ impl Collector for ProtoCollector {
             layout: &self.layout,
             metrics: vec![Vec::new(); FIXED.len() + self.layout.dynamic.len()],
         };
-        walk(&self.app, &self.layout, (self.clock)(), &mut sink);
+        let now_ns = (self.clock)();
+        let reach: Vec<_> = self
+            .app
+            .channels
+            .iter()
+            .map(|c| crate::http::projection::channel_reach(c, now_ns as f64 * 1e-9))
+            .collect();
+        walk(&self.app, &self.layout, now_ns, &reach, &mut sink);
         let mut out = Vec::new();
         for (f, metrics) in self.layout.families().zip(sink.metrics) {
             if metrics.is_empty() {

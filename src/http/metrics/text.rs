@@ -12,6 +12,7 @@ use prometheus::proto::MetricType;
 use super::families::FIXED;
 use super::lock;
 use super::walk::{walk, Fam, Labels, Layout, Sink, LEVELS, RECORD_KINDS};
+use crate::http::projection::ChannelReach;
 use crate::pipeline::state::AppState;
 
 /// lines.
@@ -179,6 +180,52 @@ pub struct PipelineCollector {
     family_order: Vec<usize>,
     /// One text buffer per family, kept from scrape to scrape.
     bufs: Mutex<Vec<String>>,
+    /// When each channel's alarms reach their limits, refreshed a few
+    /// channels per scrape.
+    reach: Mutex<ReachCache>,
+}
+
+/// Longest a channel's time to limit is reused before it is computed
+/// again, s: a scrape shows it at most this old (the gauge itself counts
+/// down to the scrape's time).
+pub const REACH_MAX_AGE_S: f64 = 30.0;
+
+/// Most time one scrape spends computing times to limit: the rest wait
+/// for the next scrape (round-robin), so a large installation's scrape
+/// stays fast and every channel is reached within a few scrapes.
+pub const REACH_BUDGET: std::time::Duration = std::time::Duration::from_millis(20);
+
+/// The times to limit of every channel and where the last refresh
+/// stopped.
+#[derive(Default)]
+struct ReachCache {
+    channels: Vec<ChannelReach>,
+    next: usize,
+}
+
+impl ReachCache {
+    /// Computes the channels whose answer is older than
+    /// [`REACH_MAX_AGE_S`] (or missing), from where the last refresh
+    /// stopped, until [`REACH_BUDGET`] is spent.
+    fn refresh(&mut self, app: &AppState, now_s: f64) {
+        let n = app.channels.len();
+        self.channels.resize_with(n, ChannelReach::default);
+        let t0 = std::time::Instant::now();
+        for k in 0..n {
+            let i = (self.next + k) % n;
+            let ch = &app.channels[i];
+            let r = &mut self.channels[i];
+            let fresh = r.computed_s > 0.0 && (now_s - r.computed_s).abs() < REACH_MAX_AGE_S;
+            if fresh || ch.spec.alarms.is_empty() {
+                continue;
+            }
+            *r = crate::http::projection::channel_reach(ch, now_s);
+            if t0.elapsed() >= REACH_BUDGET {
+                self.next = (i + 1) % n;
+                return;
+            }
+        }
+    }
 }
 
 impl PipelineCollector {
@@ -261,6 +308,7 @@ impl PipelineCollector {
             kinds: RECORD_KINDS.map(|k| label_set(&[("kind", k)])),
             family_order,
             bufs: Mutex::new(bufs),
+            reach: Mutex::new(ReachCache::default()),
         }
     }
 
@@ -279,10 +327,13 @@ impl PipelineCollector {
         for b in bufs.iter_mut() {
             b.clear();
         }
+        let mut reach = lock(&self.reach);
+        reach.refresh(&self.app, now_ns as f64 * 1e-9);
         walk(
             &self.app,
             &self.layout,
             now_ns,
+            &reach.channels,
             &mut TextSink { c: self, bufs },
         );
 

@@ -22,6 +22,7 @@ use crate::alarm::state::AlarmState;
 use crate::config::exposition::BandExport;
 use crate::config::{AlarmTarget, ChannelSpec};
 use crate::counters::{ChannelCounters, GapReason};
+use crate::http::projection::ChannelReach;
 use crate::pipeline::state::AppState;
 
 /// The values of the `kind` label of the alarm record families, in order.
@@ -333,15 +334,29 @@ impl<S: Sink> Sink for Trimmed<'_, S> {
 
 /// Visits every sample of `app` (ages against `now_ns`) into `sink`,
 /// leaving out what `[metrics]` trims.
-pub(crate) fn walk<S: Sink>(app: &AppState, layout: &Layout, now_ns: u64, sink: &mut S) {
+/// `reach`: per channel (by index), when its alarms reach their limits
+/// (`http::projection::channel_reach`; shorter or empty: none known).
+pub(crate) fn walk<S: Sink>(
+    app: &AppState,
+    layout: &Layout,
+    now_ns: u64,
+    reach: &[ChannelReach],
+    sink: &mut S,
+) {
     let mut trimmed = Trimmed {
         layout,
         inner: sink,
     };
-    walk_all(app, layout, now_ns, &mut trimmed);
+    walk_all(app, layout, now_ns, reach, &mut trimmed);
 }
 
-fn walk_all<S: Sink>(app: &AppState, layout: &Layout, now_ns: u64, sink: &mut S) {
+fn walk_all<S: Sink>(
+    app: &AppState,
+    layout: &Layout,
+    now_ns: u64,
+    reach: &[ChannelReach],
+    sink: &mut S,
+) {
     use Fam::Fixed as F;
     for &i in &layout.channel_order {
         let ch = &app.channels[i];
@@ -385,6 +400,18 @@ fn walk_all<S: Sink>(app: &AppState, layout: &Layout, now_ns: u64, sink: &mut S)
                         Labels::To(i, j, k),
                         v.transitions[s],
                     );
+                }
+                if let Some(r) = reach.get(i).and_then(|r| r.alarms.get(j)) {
+                    let now_s = now_ns as f64 * 1e-9;
+                    for (level, at) in r.iter().enumerate() {
+                        if let Some(at) = at {
+                            sink.gauge(
+                                F(Fixed::AlarmTimeToLimit),
+                                Labels::Level(i, j, level),
+                                (at - now_s).max(0.0),
+                            );
+                        }
+                    }
                 }
                 for (level, lim) in [v.alert_limit, v.danger_limit].into_iter().enumerate() {
                     let Some(lim) = lim else { continue };

@@ -475,3 +475,83 @@ fn the_handler_serves_the_cache() {
         Some(3.0)
     );
 }
+
+/// `bandwatch_alarm_time_to_limit_seconds`: a band rising 0.002 mm/s a
+/// second from 1 mm/s over the 600 s before the scrape is past its 2 mm/s
+/// alert (0 s) and reaches its 4 mm/s danger about 900 s after the
+/// newest point (exponential growth fitted: sooner than the straight
+/// line, later than now); a flat band has no series. Both encoders agree.
+#[test]
+fn time_to_limit_is_exported_only_for_a_significant_trend() {
+    use crate::alarm::engine::{AlarmBoard, AlarmView, HealthView};
+    use crate::alarm::state::AlarmState;
+    let cfg = parse_str(
+        "[server]\nlisten = \"127.0.0.1:0\"\n[alarms]\nstorage_dir = \"/nonexistent-never-opened\"\n\
+         [[source]]\nname = \"s\"\nkind = \"sim\"\n\
+         [[channel]]\nname = \"c\"\nsource = \"s\"\nindex = 0\nunit = \"g\"\nblock = 4096\n\
+         integration_low_cut_hz = 5.0\n\
+         [[channel.band]]\nname = \"rising\"\nlo_hz = 10\nhi_hz = 1000\nunit = \"mm/s\"\n\
+         [channel.band.alarm]\nalert = { limit = 2.0 }\ndanger = { limit = 4.0 }\n\
+         [[channel.band]]\nname = \"flat\"\nlo_hz = 1000\nhi_hz = 2000\nunit = \"mm/s\"\n\
+         [channel.band.alarm]\nalert = { limit = 2.0 }\ndanger = { limit = 4.0 }\n",
+    )
+    .expect("config");
+    let app = AppState::new(&cfg);
+    let ch = &app.channels[0];
+    let view = AlarmView {
+        state: AlarmState::Normal,
+        latched: false,
+        acknowledged: false,
+        since_unix_ns: 0,
+        value: None,
+        alert_limit: Some(2.0),
+        danger_limit: Some(4.0),
+        transitions: [0; 4],
+        learning: None,
+    };
+    ch.alarm_board.store(Some(Arc::new(AlarmBoard {
+        health: HealthView {
+            ok: true,
+            reasons: Default::default(),
+            since_unix_ns: 0,
+        },
+        alarms: vec![view, view],
+    })));
+    let now_s = golden_clock() / 1_000_000_000;
+    let ripple = [0.0, 0.01, -0.01, 0.005, -0.005];
+    for k in 0..600u64 {
+        let band = |v: f64| BandValue {
+            value: v,
+            ..BandValue::default()
+        };
+        let rising = 1.0 + 0.002 * k as f64 + ripple[k as usize % 5];
+        let flat = 1.0 + ripple[(k as usize * 3) % 5];
+        ch.trend.push(
+            now_s - 599 + k,
+            &crate::dsp::stats::Overall::default(),
+            &[band(rising), band(flat)],
+        );
+    }
+    let app = Arc::new(app);
+    let ours = metrics::Metrics::with_clock(app.clone(), golden_clock)
+        .render_fresh()
+        .expect("render");
+    let ours = String::from_utf8(ours).expect("utf-8");
+    let series = |band: &str, level: &str| -> Option<f64> {
+        let key = format!(
+            "bandwatch_alarm_time_to_limit_seconds{{channel=\"c\",band=\"{band}\",level=\"{level}\"}} "
+        );
+        ours.lines()
+            .find_map(|l| l.strip_prefix(key.as_str()))
+            .map(|v| v.parse().expect("number"))
+    };
+    assert_eq!(series("rising", "alert"), Some(0.0), "{ours}");
+    let danger = series("rising", "danger").expect("danger series");
+    // The straight line reaches 4 mm/s 900 s after the newest point; the
+    // exponential fit of a straight rise curves up, so sooner.
+    assert!(danger > 100.0 && danger < 900.0, "{danger}");
+    assert_eq!(series("flat", "alert"), None, "{ours}");
+    assert_eq!(series("flat", "danger"), None, "{ours}");
+    let theirs = String::from_utf8(metrics::proto::render(app, golden_clock)).expect("utf-8");
+    assert_eq!(ours, theirs);
+}
