@@ -229,19 +229,8 @@ awk -v v="$value" 'BEGIN { exit !(v + 0 >= 0.0005 && v + 0 <= 0.02) }' \
 
 # ---------------------------------------------------------------------------
 step "SIGTERM bandwatch: clean exit within 10 s"
-kill -TERM "$bw_pid"
-rc=""
-for _ in $(seq 1 100); do
-    if ! kill -0 "$bw_pid" 2>/dev/null; then
-        rc=0
-        wait "$bw_pid" || rc=$?
-        break
-    fi
-    sleep 0.1
-done
-[ -n "$rc" ] || fail "bandwatch still running 10 s after SIGTERM"
+expect_clean_exit "$bw_pid"
 bw_pid=""
-[ "$rc" = 0 ] || fail "bandwatch exited with status $rc after SIGTERM"
 echo "   exited 0"
 
 echo "prometheus_tls: OK"
