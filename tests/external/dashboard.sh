@@ -68,19 +68,6 @@ timeout 60 python3 "$checker" structure "$dashboard" || fail "the dashboard brea
 step "controls: the structure check catches each broken rule"
 timeout 60 python3 "$checker" selftest "$dashboard" || fail "the structure check missed a broken rule"
 
-# ---------------------------------------------------------------------------
-# A loopback TCP port nobody listens on right now.
-free_port() {
-    local p
-    for _ in $(seq 1 50); do
-        p=$((20000 + RANDOM % 40000))
-        if ! timeout 1 bash -c "exec 3<>/dev/tcp/127.0.0.1/$p" 2>/dev/null; then
-            echo "$p"
-            return 0
-        fi
-    done
-    return 1
-}
 
 bin="${BANDWATCH_BIN:-}"
 if [ -z "$bin" ]; then
@@ -122,11 +109,7 @@ curl -sf --max-time 5 -o "$work/metrics.prom" "$bw/metrics" || fail "GET /metric
 timeout 60 python3 "$checker" rule-metrics deploy/prometheus-rules.yml "$work/metrics.prom" \
     || fail "deploy/prometheus-rules.yml reads a metric bandwatch does not expose"
 
-prom=""
-for attempt in 1 2 3; do
-    port="$(free_port)" || fail "no free loopback port for Prometheus"
-    rm -rf "$work/data"
-    cat >"$work/prometheus.yml" <<PROM
+cat >"$work/prometheus.yml" <<PROM
 global:
   scrape_interval: 1s
   scrape_timeout: 1s
@@ -136,26 +119,7 @@ scrape_configs:
     static_configs:
       - targets: ["$bw_addr"]
 PROM
-    step "start prometheus on 127.0.0.1:$port (attempt $attempt)"
-    timeout 300 prometheus \
-        --config.file="$work/prometheus.yml" \
-        --storage.tsdb.path="$work/data" \
-        --web.listen-address="127.0.0.1:$port" \
-        --log.level=warn >"$work/prometheus.log" 2>&1 &
-    prom_pid=$!
-    for _ in $(seq 1 300); do
-        kill -0 "$prom_pid" 2>/dev/null || break
-        if curl -sf --max-time 2 -o /dev/null "http://127.0.0.1:$port/-/ready"; then
-            prom="http://127.0.0.1:$port"
-            break
-        fi
-        sleep 0.1
-    done
-    [ -n "$prom" ] && break
-    stop_pid "$prom_pid"
-    prom_pid=""
-done
-[ -n "$prom" ] || fail "Prometheus did not become ready (3 attempts)"
+start_prometheus "$work/prometheus.yml" "$work/data" "$work/prometheus.log"
 
 # Rates over $__rate_interval (1m) need two samples; wait for five scrapes.
 step "wait for five scrapes of the demo (up to 30 s)"

@@ -50,18 +50,6 @@ for tool in curl promtool prometheus timeout; do
         || fail "$tool not found (Debian: apt-get install -y prometheus curl)"
 done
 
-# A loopback TCP port nobody listens on right now.
-free_port() {
-    local p
-    for _ in $(seq 1 50); do
-        p=$((20000 + RANDOM % 40000))
-        if ! timeout 1 bash -c "exec 3<>/dev/tcp/127.0.0.1/$p" 2>/dev/null; then
-            echo "$p"
-            return 0
-        fi
-    done
-    return 1
-}
 
 # ---------------------------------------------------------------------------
 step "promtool check metrics tests/golden/metrics.prom"
@@ -116,11 +104,7 @@ echo "   clean (${series} series)${out:+: $out}"
 
 # ---------------------------------------------------------------------------
 query='bandwatch_band_rms_meters_per_second{channel="motor-de",band="overall-velocity"}'
-prom=""
-for attempt in 1 2 3; do
-    port="$(free_port)" || fail "no free loopback port for Prometheus"
-    rm -rf "$work/data"
-    cat >"$work/prometheus.yml" <<EOF
+cat >"$work/prometheus.yml" <<EOF
 global:
   scrape_interval: 1s
   scrape_timeout: 1s
@@ -130,26 +114,7 @@ scrape_configs:
     static_configs:
       - targets: ["$bw_addr"]
 EOF
-    step "start prometheus on 127.0.0.1:$port (attempt $attempt)"
-    timeout 300 prometheus \
-        --config.file="$work/prometheus.yml" \
-        --storage.tsdb.path="$work/data" \
-        --web.listen-address="127.0.0.1:$port" \
-        --log.level=warn >"$work/prometheus.log" 2>&1 &
-    prom_pid=$!
-    for _ in $(seq 1 300); do
-        kill -0 "$prom_pid" 2>/dev/null || break
-        if curl -sf --max-time 2 -o /dev/null "http://127.0.0.1:$port/-/ready"; then
-            prom="http://127.0.0.1:$port"
-            break
-        fi
-        sleep 0.1
-    done
-    [ -n "$prom" ] && break
-    stop_pid "$prom_pid"
-    prom_pid=""
-done
-[ -n "$prom" ] || fail "Prometheus did not become ready (3 attempts)"
+start_prometheus "$work/prometheus.yml" "$work/data" "$work/prometheus.log"
 
 step "query $query (up to 60 s)"
 value=""

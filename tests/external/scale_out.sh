@@ -82,17 +82,6 @@ python3 -c 'import bcrypt' 2>/dev/null \
 
 # A loopback TCP port nobody listens on right now (Prometheus cannot take
 # port 0 and tell us the port it got).
-free_port() {
-    local p
-    for _ in $(seq 1 50); do
-        p=$((20000 + RANDOM % 40000))
-        if ! timeout 1 bash -c "exec 3<>/dev/tcp/127.0.0.1/$p" 2>/dev/null; then
-            echo "$p"
-            return 0
-        fi
-    done
-    return 1
-}
 
 # ccurl ARGS...: curl to the central store (its CA, the reader account).
 ccurl() {

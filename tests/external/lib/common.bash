@@ -30,3 +30,47 @@ expect_clean_exit() {
     [ -n "$rc" ] || fail "bandwatch still running 10 s after SIGTERM"
     [ "$rc" = 0 ] || fail "bandwatch exited with status $rc after SIGTERM"
 }
+
+# A loopback TCP port nobody listens on right now.
+free_port() {
+    local p
+    for _ in $(seq 1 50); do
+        p=$((20000 + RANDOM % 40000))
+        if ! timeout 1 bash -c "exec 3<>/dev/tcp/127.0.0.1/$p" 2>/dev/null; then
+            echo "$p"
+            return 0
+        fi
+    done
+    return 1
+}
+
+# config data_dir log: Debian's prometheus with that config on a free
+# loopback port, its data dir emptied first; up to 3 attempts (a port
+# taken between the probe and the bind). Sets `prom` (its URL) and
+# `prom_pid` (for the caller's cleanup); the caller's `fail` otherwise.
+start_prometheus() {
+    local config="$1" data="$2" log="$3" port attempt
+    prom=""
+    for attempt in 1 2 3; do
+        port="$(free_port)" || fail "no free loopback port for Prometheus"
+        rm -rf "$data"
+        printf '== %s\n' "start prometheus on 127.0.0.1:$port (attempt $attempt)"
+        timeout 300 prometheus \
+            --config.file="$config" \
+            --storage.tsdb.path="$data" \
+            --web.listen-address="127.0.0.1:$port" \
+            --log.level=warn >"$log" 2>&1 &
+        prom_pid=$!
+        for _ in $(seq 1 300); do
+            kill -0 "$prom_pid" 2>/dev/null || break
+            if curl -sf --max-time 2 -o /dev/null "http://127.0.0.1:$port/-/ready"; then
+                prom="http://127.0.0.1:$port"
+                return 0
+            fi
+            sleep 0.1
+        done
+        stop_pid "$prom_pid"
+        prom_pid=""
+    done
+    fail "Prometheus did not become ready (3 attempts)"
+}
