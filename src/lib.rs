@@ -26,6 +26,7 @@ pub mod counters;
 pub mod daemon;
 pub mod dsp;
 pub mod frame;
+pub mod history;
 pub mod http;
 pub mod noise;
 pub mod pipeline;

@@ -30,6 +30,7 @@ const RANKS: &[(&str, u32, &str)] = &[
     ("dsp", 5, "stages"),
     ("source", 6, "stages"),
     ("alarm", 6, "stages"),
+    ("history", 6, "stages"),
     ("pipeline", 7, "assembly"),
     ("http", 8, "serving"),
     ("daemon", 9, "commands"),

@@ -208,6 +208,8 @@ pub struct ChannelAlarms {
     health_since_ns: u64,
     /// Set when something the board shows changed.
     dirty: bool,
+    /// Transitions since the worker last took them: (alarm, from, to).
+    transitions: Vec<(usize, AlarmState, AlarmState)>,
 }
 
 impl ChannelAlarms {
@@ -279,6 +281,7 @@ impl ChannelAlarms {
             since_ns: vec![ns(now); n],
             health_since_ns: ns(now),
             dirty: true,
+            transitions: Vec::new(),
         }
     }
 
@@ -594,6 +597,9 @@ impl ChannelAlarms {
         let unix = unix_now_ns();
         self.since_ns[i] = unix;
         self.dirty = true;
+        if self.transitions.len() < 64 {
+            self.transitions.push((i, t.from, t.to));
+        }
         let a = &self.specs[i];
         let st = self.machines[i].status();
         let limits = EventLimits {
@@ -675,6 +681,27 @@ impl ChannelAlarms {
             transitions: self.machines[i].transition_counts(),
             learning: self.learners[i].as_ref().map(|l| l.progress()),
         }
+    }
+
+    /// The transitions since the last call, as "<alarm> <from>-><to>"
+    /// with the alarm's target (the history stores a spectrum at each).
+    pub fn take_transitions(&mut self, mut f: impl FnMut(&AlarmTarget, String)) {
+        for (i, from, to) in self.transitions.drain(..) {
+            if let Some(a) = self.specs.get(i) {
+                f(
+                    &a.target,
+                    format!("{} {}->{}", a.name, from.as_str(), to.as_str()),
+                );
+            }
+        }
+    }
+
+    /// Each alarm's target and current state.
+    pub fn states(&self) -> impl Iterator<Item = (&AlarmTarget, AlarmState)> + '_ {
+        self.specs
+            .iter()
+            .zip(&self.machines)
+            .map(|(a, m)| (&a.target, m.status().state))
     }
 
     /// The board, if anything on it changed since the last call.

@@ -33,6 +33,10 @@ impl Issues {
         self.0.extend(issues);
     }
 
+    pub(crate) fn len(&self) -> usize {
+        self.0.len()
+    }
+
     pub(crate) fn is_empty(&self) -> bool {
         self.0.is_empty()
     }

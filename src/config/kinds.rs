@@ -94,6 +94,17 @@ pub enum AveragingMode {
     PeakHold,
 }
 
+impl AveragingMode {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            AveragingMode::None => "none",
+            AveragingMode::Linear => "linear",
+            AveragingMode::Exponential => "exponential",
+            AveragingMode::PeakHold => "peak-hold",
+        }
+    }
+}
+
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize)]
 #[serde(rename_all = "kebab-case")]
 pub enum Measure {

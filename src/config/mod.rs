@@ -30,6 +30,7 @@ pub mod environment;
 pub mod exposition;
 pub mod fixture;
 pub mod health;
+pub mod history;
 mod issue;
 mod kinds;
 mod raw;
@@ -38,6 +39,7 @@ pub mod web;
 pub mod zones;
 
 pub use check::{ring_bytes, validate, MAX_RING_BYTES_PER_CHANNEL, MAX_RING_BYTES_TOTAL};
+pub use history::HistorySpec;
 pub use issue::ConfigIssue;
 pub use kinds::{
     AveragingMode, Detrend, FlowControl, Measure, Parity, SecondConnection, SpectrumKind,
@@ -128,6 +130,9 @@ pub fn resolve_paths(raw: &mut RawConfig, dir: &Path, state_dir: Option<&Path>) 
         if let Some(t) = a.token_file.as_mut() {
             *t = against(dir, t);
         }
+    }
+    if let Some(f) = raw.history.as_mut().and_then(|h| h.file.as_mut()) {
+        *f = against(state_dir.unwrap_or(dir), f);
     }
     for s in &mut raw.sources {
         if let RawSource::Serial { device, .. } = s {

@@ -31,6 +31,8 @@ pub struct RawConfig {
     /// What `/metrics` leaves out (default: nothing).
     #[serde(default)]
     pub metrics: super::exposition::RawMetrics,
+    /// The history database (off when absent).
+    pub history: Option<super::history::RawHistory>,
 }
 
 /// Alarms on a channel's time-domain overall levels.

@@ -38,6 +38,8 @@ pub struct Config {
     pub trend_seconds: usize,
     /// What `/metrics` leaves out (`[metrics]`).
     pub exposition: super::exposition::ExpositionSpec,
+    /// The history database (`[history]`), when given.
+    pub history: Option<super::history::HistorySpec>,
     pub workers: usize,
     pub ring_seconds: f64,
     pub sources: Vec<SourceSpec>,

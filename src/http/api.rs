@@ -170,12 +170,7 @@ pub(crate) fn rfc3339_ns(ns: u64) -> Option<String> {
 }
 
 pub(crate) fn averaging_str(mode: AveragingMode) -> &'static str {
-    match mode {
-        AveragingMode::None => "none",
-        AveragingMode::Linear => "linear",
-        AveragingMode::Exponential => "exponential",
-        AveragingMode::PeakHold => "peak-hold",
-    }
+    mode.as_str()
 }
 
 /// Seconds between two publications of a channel: every `count` blocks for

@@ -31,6 +31,7 @@ use crate::alarm::engine::{AlarmCommand, AlarmContext, CaptureSetup, ChannelAlar
 use crate::alarm::{self, state::AlarmMemory};
 use crate::config::alarms::AlarmsSpec;
 use crate::config::{self as config_spec, ChannelSpec, Config};
+use crate::history::History;
 use crate::ring::{try_channel_ring, RingAllocError, RingWriter};
 use crate::shutdown::ShutdownSignal;
 use crate::source::{self, ChannelInput, SourceOutputs};
@@ -48,6 +49,8 @@ pub enum RunError {
     Http(#[source] std::io::Error),
     #[error("no source named {0:?} in the config")]
     UnknownSource(String),
+    #[error("cannot start the history writer thread: {0}")]
+    History(#[source] std::io::Error),
     #[error("channel {channel:?}: {source}")]
     Ring {
         channel: String,
@@ -103,6 +106,7 @@ pub struct Builder<'a> {
     gather: bool,
     blocks_per_turn: Option<usize>,
     only_source: Option<String>,
+    history: bool,
 }
 
 impl<'a> Builder<'a> {
@@ -116,6 +120,7 @@ impl<'a> Builder<'a> {
             gather: true,
             blocks_per_turn: None,
             only_source: None,
+            history: true,
         }
     }
 
@@ -140,6 +145,13 @@ impl<'a> Builder<'a> {
     /// sees every published result).
     pub fn blocks_per_turn(mut self, n: usize) -> Self {
         self.blocks_per_turn = Some(n);
+        self
+    }
+
+    /// Whether a `[history]` of the config is written (the daemon: yes;
+    /// `replay` and the bench rigs leave the file alone).
+    pub fn history(mut self, on: bool) -> Self {
+        self.history = on;
         self
     }
 
@@ -175,7 +187,12 @@ impl<'a> Builder<'a> {
             shared.push(Arc::new(ch));
             inboxes.push(inbox);
         }
+        let history = match (&config.history, self.history) {
+            (Some(h), true) => Some(History::start(h.clone()).map_err(RunError::History)?),
+            _ => None,
+        };
         let mut app = AppState::with_channels(config, shared);
+        app.history = history.as_ref().map(|h| h.shared.clone());
         if self.alarms == AlarmMode::FromConfig {
             app = app.with_token(load_token(config));
         }
@@ -197,6 +214,12 @@ impl<'a> Builder<'a> {
             dsp.set_gather(self.gather);
             if let Some(n) = self.blocks_per_turn {
                 dsp.set_blocks_per_turn(n);
+            }
+            if let Some(tap) = history
+                .as_ref()
+                .and_then(|h| h.tap(ch.spec.clone(), ch.window_enbw_bins))
+            {
+                dsp.set_history(tap);
             }
             match (self.alarms, &store) {
                 (AlarmMode::Off, _) => {}
@@ -233,6 +256,7 @@ impl<'a> Builder<'a> {
             store,
             mode: self.alarms,
             gather: self.gather,
+            history,
         })
     }
 
@@ -273,6 +297,8 @@ pub struct Assembly {
     store: Option<AlarmStore>,
     mode: AlarmMode,
     gather: bool,
+    /// The history's writer (after `dsps`: the taps go first on drop).
+    history: Option<History>,
 }
 
 impl Assembly {
@@ -287,6 +313,7 @@ impl Assembly {
             mut store,
             mode,
             gather,
+            history,
         } = self;
         let alarm_io = store.as_mut().and_then(|s| s.io.take());
         let (workers, wakers) = match Workers::start(config.workers, dsps) {
@@ -321,6 +348,7 @@ impl Assembly {
             mode,
             gather,
             sources,
+            history,
         })
     }
 
@@ -341,6 +369,7 @@ impl Assembly {
             channels: self.dsps,
             inputs,
             alarm_io: self.store.and_then(|mut s| s.io.take()),
+            _history: self.history,
         }
     }
 }
@@ -409,6 +438,9 @@ pub struct Pipeline {
     mode: AlarmMode,
     gather: bool,
     sources: Vec<RunningSource>,
+    /// The history's writer; declared after `workers`, so a dropped
+    /// pipeline stops the workers (and their taps) before joining it.
+    history: Option<History>,
 }
 
 impl Pipeline {
@@ -441,6 +473,10 @@ impl Pipeline {
         if let Some(io) = self.alarm_io.take() {
             let _ = tokio::task::spawn_blocking(move || io.stop()).await;
         }
+        // And their last intervals: the writer writes them and ends.
+        if let Some(h) = self.history.take() {
+            let _ = tokio::task::spawn_blocking(move || drop(h)).await;
+        }
     }
 }
 
@@ -453,6 +489,8 @@ pub struct Inline {
     pub channels: Vec<ChannelDsp>,
     inputs: Vec<Option<ChannelInput>>,
     alarm_io: Option<alarm::io::AlarmIo>,
+    /// After `channels`: their taps are dropped first. Only held.
+    _history: Option<History>,
 }
 
 impl Inline {

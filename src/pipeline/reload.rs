@@ -163,6 +163,9 @@ pub(crate) fn plan(old: &Config, new: &Config) -> Result<Plan, Vec<Problem>> {
     if !same(&old.web, &new.web) {
         restart("server.web_config", "TLS or basic auth");
     }
+    if old.history != new.history {
+        restart("history", "the history settings");
+    }
     if old.workers != new.workers {
         restart("dsp.workers", "the worker count");
     }
@@ -368,6 +371,13 @@ impl super::Pipeline {
             };
             let mut dsp = ChannelDsp::with_machines(ch.clone(), r, &old_state.machines);
             dsp.set_gather(self.gather);
+            if let Some(tap) = self
+                .history
+                .as_ref()
+                .and_then(|h| h.tap(ch.spec.clone(), ch.window_enbw_bins))
+            {
+                dsp.set_history(tap);
+            }
             let board = old.as_ref().and_then(|o| o.alarm_board.load_full());
             let old_spec = old.as_ref().map(|o| o.spec.clone());
             let carried = |band: &str| {
@@ -588,6 +598,7 @@ impl super::Pipeline {
         app.machines = old_state.machines.clone();
         app.token = old_state.token.clone();
         app.alarm_io = old_state.alarm_io.clone();
+        app.history = old_state.history.clone();
         app.captures_dir = old_state.captures_dir.clone();
         app.started_unix_ns = old_state.started_unix_ns;
         app.reloads = old_state.reloads.clone();

@@ -515,6 +515,8 @@ pub struct AppState {
     pub started_unix_ns: u64,
     /// What `/metrics` leaves out (`[metrics]`; a reload applies it).
     pub exposition: crate::config::exposition::ExpositionSpec,
+    /// The history's settings and counters (None without `[history]`).
+    pub history: Option<Arc<crate::history::HistoryShared>>,
 }
 
 impl AppState {
@@ -557,6 +559,7 @@ impl AppState {
             sources,
             started_unix_ns: unix_now_ns(),
             exposition: config.exposition.clone(),
+            history: None,
         }
     }
 

@@ -15,7 +15,9 @@ use std::thread::{self, JoinHandle, Thread};
 use std::time::{Duration, Instant};
 
 use crate::alarm::engine::ChannelAlarms;
+use crate::alarm::state::AlarmState;
 use crate::clock::unix_now_ns;
+use crate::config::AlarmTarget;
 use crate::config::{SpectrumKind, SpeedSource};
 use crate::counters::GapReason;
 use crate::dsp::average::Averager;
@@ -24,6 +26,9 @@ use crate::dsp::envelope::EnvelopeEngine;
 use crate::dsp::spectrum::SpectrumEngine;
 use crate::dsp::speed::{track_peak, TachDetector};
 use crate::dsp::stats;
+use crate::history::schema::OVERALL_SERIES;
+use crate::history::tap::Tap;
+use crate::history::{state_code, SpectrumRecord, StoreReason};
 use crate::pipeline::state::{ChannelShared, ChannelSnapshot, MachineShared, SignalTime};
 use crate::ring::{Mark, ReadEvent, RingReader};
 
@@ -102,6 +107,8 @@ pub struct ChannelDsp {
     /// longest it may wait.
     waiting: Option<(Instant, Duration)>,
     alarms: Option<Box<ChannelAlarms>>,
+    /// The channel's tap into the history (`[history]`).
+    history: Option<Box<Tap>>,
 }
 
 impl ChannelDsp {
@@ -214,6 +221,7 @@ impl ChannelDsp {
             gather: false,
             waiting: None,
             alarms: None,
+            history: None,
             reader,
             shared,
         }
@@ -304,6 +312,11 @@ impl ChannelDsp {
         self.alarms = Some(Box::new(alarms));
     }
 
+    /// Gives the channel its tap into the history.
+    pub fn set_history(&mut self, tap: Tap) {
+        self.history = Some(Box::new(tap));
+    }
+
     /// Publishes into `new` from now on (a reload that changed only this
     /// channel's limits): the latest snapshot and alarm board are carried
     /// over, the alarms take `new.spec`'s limits and keep their state.
@@ -319,11 +332,18 @@ impl ChannelDsp {
         if new.alarm_board.load().is_none() {
             new.alarm_board.store(self.shared.alarm_board.load_full());
         }
+        if let Some(h) = &mut self.history {
+            h.set_spec(new.spec.clone());
+        }
         self.shared = new;
     }
 
-    /// Shutdown: finishes what the alarms hold (captures in progress).
+    /// Shutdown: finishes what the alarms hold (captures in progress) and
+    /// hands the history its running interval.
     pub fn finish(&mut self) {
+        if let Some(h) = &mut self.history {
+            h.flush();
+        }
         if let Some(a) = &mut self.alarms {
             a.finish();
             a.tick();
@@ -694,8 +714,66 @@ impl ChannelDsp {
                 snap.speed_hz,
             );
         }
+        if let Some(h) = &mut self.history {
+            record_history(h, self.alarms.as_deref_mut(), &self.shared, &arc);
+        }
         self.spare = self.shared.snapshot.swap(Some(arc));
         self.shared.counters.spectra.fetch_add(1, Ordering::Relaxed);
+    }
+}
+
+/// The history's share of a publish: the series' alarm states and values
+/// into the running interval; the spectrum when the timer says so and at
+/// each alarm transition.
+fn record_history(
+    tap: &mut Tap,
+    alarms: Option<&mut ChannelAlarms>,
+    ch: &ChannelShared,
+    snap: &ChannelSnapshot,
+) {
+    let n_overall = OVERALL_SERIES.len();
+    let mut events = Vec::new();
+    {
+        let states = tap.states_mut();
+        states.iter_mut().for_each(|s| *s = None);
+        if let Some(a) = alarms {
+            for (target, state) in a.states() {
+                let i = match target {
+                    AlarmTarget::Band(b) => n_overall + b,
+                    AlarmTarget::OverallRms => 0,
+                    AlarmTarget::OverallPeak => 1,
+                    AlarmTarget::CrestFactor => 3,
+                };
+                let code = state_code(
+                    state == AlarmState::Alert,
+                    state == AlarmState::Danger,
+                    state == AlarmState::Inhibited,
+                );
+                if let Some(s) = states.get_mut(i) {
+                    *s = Some(s.map_or(code, |c| c.max(code)));
+                }
+            }
+            a.take_transitions(|_, e| events.push(e));
+        }
+    }
+    let published_s = snap.published_unix_ns / 1_000_000_000;
+    tap.push(published_s, &snap.overall, &snap.bands);
+    let fill = |r: &mut SpectrumRecord| {
+        r.t_ns = snap.timestamp_ns;
+        r.averages = snap.averages;
+        r.first_sample = snap.first_sample;
+        r.oldest_first_sample = snap.oldest_first_sample;
+        r.speed_hz = snap.speed_hz;
+        r.power = snap.power.clone();
+        r.envelope = snap.envelope_power.clone();
+        r.bands = snap.bands.clone();
+        r.enbw_bins = ch.window_enbw_bins;
+    };
+    for e in events {
+        tap.store_spectrum(StoreReason::Alarm, Some(e), snap.published_unix_ns, fill);
+    }
+    if tap.spectrum_due(published_s) {
+        tap.store_spectrum(StoreReason::Interval, None, snap.published_unix_ns, fill);
     }
 }
 

@@ -183,6 +183,7 @@ impl<'a> Run<'a> {
         let ring = RingSize::Headroom(1 << 17);
         let mut pipeline = Builder::new(config)
             .only_source(&source.name)
+            .history(false)
             .ring(ring)
             .alarms(AlarmMode::Off)
             .gather(false)
@@ -534,6 +535,7 @@ fn capture_config(spec: ChannelSpec, speed_hz: Option<f64>) -> Config {
         web: None,
         trend_seconds: crate::pipeline::trend::DEFAULT_TREND_SECONDS,
         exposition: Default::default(),
+        history: None,
         workers: 1,
         ring_seconds: 2.0,
         sources: vec![source],

@@ -38,6 +38,11 @@ pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
     let machines = machines::check_machines(&mut issues, &raw.machines, &raw.channels);
     let alarms = check_alarms_table(&mut issues, raw.alarms.as_ref(), &channels);
     let exposition = crate::config::exposition::check_metrics(&mut issues, &raw.metrics);
+    let history = crate::config::history::check_history(
+        &mut issues,
+        raw.history.as_ref(),
+        raw.alarms.as_ref().map(|a| a.storage_dir.as_path()),
+    );
 
     match (issues.is_empty(), listen) {
         (true, Some(listen)) => Ok(Config {
@@ -47,6 +52,7 @@ pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
             web,
             trend_seconds,
             exposition,
+            history,
             workers,
             ring_seconds: raw.dsp.ring_seconds,
             sources,
