@@ -194,6 +194,34 @@ pub(crate) fn check_history(
 /// The file's name when `[history] file` is not given.
 pub const DEFAULT_FILE: &str = "history.sqlite";
 
+/// The history's names of a channel's overall levels (those of the
+/// overall alarms, and two more): a band may not take one while
+/// `[history]` is on, so a series name means one thing.
+pub const OVERALL_SERIES: [&str; 5] = [
+    "overall-rms",
+    "overall-peak",
+    "overall-peak-to-peak",
+    "overall-crest-factor",
+    "overall-mean",
+];
+
+/// With `[history]`: no band named like an overall series.
+pub(crate) fn check_band_names(issues: &mut Issues, channels: &[crate::config::RawChannel]) {
+    for c in channels {
+        for b in &c.bands {
+            if OVERALL_SERIES.contains(&b.name.as_str()) {
+                issues.add(
+                    format!("channel {:?} band {:?}.name", c.name, b.name),
+                    format!(
+                        "{:?} is the history's name of an overall level; rename the band",
+                        b.name
+                    ),
+                );
+            }
+        }
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

@@ -26,8 +26,15 @@ pub const SCHEMA_VERSION: i64 = 1;
 /// writer commits) before it reports SQLITE_BUSY.
 pub const BUSY_TIMEOUT: Duration = Duration::from_secs(5);
 
+/// What the WAL file is truncated to after a checkpoint, bytes.
+pub const WAL_LIMIT_BYTES: i64 = 16 << 20;
+
 /// The tables (docs/history.md has the meaning of every column).
 const TABLES: &str = "
+CREATE TABLE IF NOT EXISTS meta (
+    key   TEXT PRIMARY KEY,
+    value INTEGER NOT NULL
+);
 CREATE TABLE IF NOT EXISTS series (
     id      INTEGER PRIMARY KEY,
     channel TEXT NOT NULL,
@@ -143,6 +150,10 @@ pub fn open_write(path: &Path) -> Result<Connection, OpenError> {
     conn.pragma_update(None, "synchronous", "NORMAL")
         .map_err(&e)?;
     conn.pragma_update(None, "foreign_keys", "ON").map_err(&e)?;
+    // The WAL is truncated back to this after a checkpoint, so the file
+    // and its WAL stay within max_mb plus this.
+    conn.pragma_update(None, "journal_size_limit", WAL_LIMIT_BYTES)
+        .map_err(&e)?;
     conn.execute_batch(TABLES).map_err(&e)?;
     if version == 0 {
         conn.pragma_update(None, "user_version", SCHEMA_VERSION)
@@ -175,15 +186,10 @@ pub fn open_read(path: &Path) -> Result<Connection, OpenError> {
     Ok(conn)
 }
 
-/// The series name of an overall level in the `series` table (the same
-/// names the overall alarms use).
-pub const OVERALL_SERIES: [&str; 5] = [
-    "overall-rms",
-    "overall-peak",
-    "overall-peak-to-peak",
-    "overall-crest-factor",
-    "overall-mean",
-];
+/// The series names of the overall levels in the `series` table (the
+/// same names the overall alarms use; reserved for band names when
+/// `[history]` is on).
+pub use crate::config::history::OVERALL_SERIES;
 
 #[cfg(test)]
 mod tests {

@@ -243,63 +243,80 @@ pub fn used_bytes(conn: &Connection) -> rusqlite::Result<u64> {
 /// Spectra retention may delete: neither a reference nor an alarm's.
 const DELETABLE: &str = "reference = 0 AND reason <> 'alarm'";
 
-/// One retention pass at `now_s` (see the module comment).
+/// One retention pass at `now_s` (see the module comment). Each step
+/// seeks by series and time (the points' key), never scans the table; the
+/// thinning starts where the last pass ended (`meta.thinned_through`).
 ///
 /// # Errors
 /// SQLite's error.
 pub fn retain(conn: &mut Connection, spec: &HistorySpec, now_s: u64) -> rusqlite::Result<Retained> {
     let mut out = Retained::default();
     let day = 86_400u64;
+    let hour = i64::from(THIN_SPAN_S);
     let keep_from = now_s.saturating_sub(u64::from(spec.keep_days) * day) as i64;
     let tx = conn.transaction()?;
-    out.points_deleted += tx.execute("DELETE FROM points WHERE t < ?1", [keep_from])? as u64;
+    let ids: Vec<i64> = tx
+        .prepare("SELECT id FROM series")?
+        .query_map([], |r| r.get(0))?
+        .collect::<Result<_, _>>()?;
+    {
+        let mut del = tx.prepare_cached("DELETE FROM points WHERE series = ?1 AND t < ?2")?;
+        for id in &ids {
+            out.points_deleted += del.execute(params![id, keep_from])? as u64;
+        }
+    }
     tx.execute("DELETE FROM holes WHERE t_to < ?1", [keep_from])?;
     if spec.thin_after_days > 0 {
         // Whole hours only: an hour is thinned once it is entirely older
         // than the bound.
-        let bound = now_s.saturating_sub(u64::from(spec.thin_after_days) * day);
-        let bound = (bound - bound % u64::from(THIN_SPAN_S)) as i64;
-        let n: i64 = tx.query_row(
-            "SELECT count(*) FROM points WHERE t < ?1 AND span < ?2",
-            params![bound, THIN_SPAN_S],
-            |r| r.get(0),
-        )?;
-        if n > 0 {
+        let bound = now_s.saturating_sub(u64::from(spec.thin_after_days) * day) as i64;
+        let bound = bound - bound % hour;
+        let from: i64 = tx
+            .query_row(
+                "SELECT value FROM meta WHERE key = 'thinned_through'",
+                [],
+                |r| r.get(0),
+            )
+            .optional()?
+            .unwrap_or(0)
+            .max(keep_from - keep_from % hour);
+        if bound > from {
             tx.execute_batch(
                 "CREATE TEMP TABLE IF NOT EXISTS thin (series INTEGER, t INTEGER, n INTEGER,
-                   n_bad INTEGER, min REAL, mean REAL, max REAL, last REAL, state INTEGER);
-                 DELETE FROM temp.thin;",
+                   n_bad INTEGER, min REAL, mean REAL, max REAL, last REAL, state INTEGER);",
             )?;
+            let mut clear = tx.prepare_cached("DELETE FROM temp.thin")?;
             // `last`: the last value of the hour's newest row that has one.
-            tx.execute(
+            let mut gather = tx.prepare_cached(
                 "INSERT INTO temp.thin
-                 SELECT series, t - t % ?2, sum(n), sum(n_bad), min(min),
+                 SELECT series, t - t % ?4, sum(n), sum(n_bad), min(min),
                         CASE WHEN sum(n) > 0 THEN sum(mean * n) / sum(n) END,
                         max(max),
                         (SELECT p2.last FROM points p2
-                          WHERE p2.series = p.series AND p2.t >= p.t - p.t % ?2
-                            AND p2.t < p.t - p.t % ?2 + ?2 AND p2.last IS NOT NULL
+                          WHERE p2.series = ?1 AND p2.t >= p.t - p.t % ?4
+                            AND p2.t < p.t - p.t % ?4 + ?4 AND p2.last IS NOT NULL
                           ORDER BY p2.t DESC LIMIT 1),
                         max(state)
-                 FROM points p WHERE t < ?1 AND span < ?2
-                 GROUP BY series, t - t % ?2",
-                params![bound, THIN_SPAN_S],
+                 FROM points p WHERE series = ?1 AND t >= ?2 AND t < ?3 AND span < ?4
+                 GROUP BY t - t % ?4",
             )?;
-            // An hour holding both an old hourly row and minute rows (not
-            // made by this code, but a file is a file): the minute rows win.
-            tx.execute(
-                "DELETE FROM points WHERE t < ?1 AND (span < ?2 OR EXISTS (
-                   SELECT 1 FROM temp.thin h WHERE h.series = points.series AND h.t = points.t))",
-                params![bound, THIN_SPAN_S],
+            let mut drop_rows = tx.prepare_cached(
+                "DELETE FROM points WHERE series = ?1 AND t >= ?2 AND t < ?3 AND span < ?4",
             )?;
-            tx.execute(
+            let mut put = tx.prepare_cached(
                 "INSERT OR REPLACE INTO points (series, t, span, n, n_bad, min, mean, max, last, state)
-                 SELECT series, t, ?1, n, n_bad, min, mean, max, last,
-                        CASE WHEN state IS NULL THEN NULL ELSE state END
-                 FROM temp.thin",
-                [THIN_SPAN_S],
+                 SELECT series, t, ?1, n, n_bad, min, mean, max, last, state FROM temp.thin",
             )?;
-            out.points_thinned = n as u64;
+            for id in &ids {
+                clear.execute([])?;
+                gather.execute(params![id, from, bound, hour])?;
+                out.points_thinned += drop_rows.execute(params![id, from, bound, hour])? as u64;
+                put.execute([hour])?;
+            }
+            tx.execute(
+                "INSERT OR REPLACE INTO meta (key, value) VALUES ('thinned_through', ?1)",
+                [bound],
+            )?;
         }
     }
     let spectra_from = now_s.saturating_sub(u64::from(spec.spectra_keep_days) * day) as i64;
@@ -327,7 +344,12 @@ pub fn retain(conn: &mut Connection, spec: &HistorySpec, now_s: u64) -> rusqlite
         }
         out.spectra_deleted += n;
     }
-    conn.execute_batch("PRAGMA incremental_vacuum;")?;
+    // Each step of the pragma frees one page: run it to the end.
+    {
+        let mut vacuum = conn.prepare("PRAGMA incremental_vacuum")?;
+        let mut rows = vacuum.query([])?;
+        while rows.next()?.is_some() {}
+    }
     out.used_bytes = used_bytes(conn)?;
     Ok(out)
 }

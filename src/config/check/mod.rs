@@ -43,6 +43,9 @@ pub fn validate(raw: &RawConfig) -> Result<Config, Vec<ConfigIssue>> {
         raw.history.as_ref(),
         raw.alarms.as_ref().map(|a| a.storage_dir.as_path()),
     );
+    if history.is_some() {
+        crate::config::history::check_band_names(&mut issues, &raw.channels);
+    }
 
     match (issues.is_empty(), listen) {
         (true, Some(listen)) => Ok(Config {

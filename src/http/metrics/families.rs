@@ -50,9 +50,16 @@ pub(crate) enum Fixed {
     StorageWriteRetries,
     StorageRecordsLost,
     AlarmTimeToLimit,
+    HistoryRecordsDropped,
+    HistoryPointsWritten,
+    HistorySpectraStored,
+    HistorySpectraDeleted,
+    HistoryWriteErrors,
+    HistoryQueued,
+    HistoryFileBytes,
 }
 
-pub(crate) const FIXED: [(Fixed, &str, &str, MetricType, &[&str]); 40] = [
+pub(crate) const FIXED: [(Fixed, &str, &str, MetricType, &[&str]); 47] = [
     (
         Fixed::BandPeakFrequency,
         "bandwatch_band_peak_frequency_hertz",
@@ -332,6 +339,55 @@ pub(crate) const FIXED: [(Fixed, &str, &str, MetricType, &[&str]); 40] = [
         "Seconds until the alarm's significant trend reaches its limit, by level (0: past it; absent: no significant trend toward it). Guidance, not a prediction.",
         MetricType::GAUGE,
         &["channel", "band", "level"],
+    ),
+    (
+        Fixed::HistoryRecordsDropped,
+        "bandwatch_history_records_dropped_total",
+        "History records (a channel's interval of aggregates, or a spectrum) not written, by reason: queue_full (the writer could not keep up), write_error (the file could not be written). Each loss is a hole in the history.",
+        MetricType::COUNTER,
+        &["reason"],
+    ),
+    (
+        Fixed::HistoryPointsWritten,
+        "bandwatch_history_points_written_total",
+        "Aggregate rows (one series over one interval) written to the history file.",
+        MetricType::COUNTER,
+        &[],
+    ),
+    (
+        Fixed::HistorySpectraStored,
+        "bandwatch_history_spectra_stored_total",
+        "Spectra written to the history file, by why they were stored (interval, alarm, request).",
+        MetricType::COUNTER,
+        &["reason"],
+    ),
+    (
+        Fixed::HistorySpectraDeleted,
+        "bandwatch_history_spectra_deleted_total",
+        "Stored spectra deleted by retention (age, or the file's max_mb).",
+        MetricType::COUNTER,
+        &[],
+    ),
+    (
+        Fixed::HistoryWriteErrors,
+        "bandwatch_history_write_errors_total",
+        "Failed opens, transactions or retention passes of the history file (see the log).",
+        MetricType::COUNTER,
+        &[],
+    ),
+    (
+        Fixed::HistoryQueued,
+        "bandwatch_history_queue_records",
+        "History records waiting for the writer thread.",
+        MetricType::GAUGE,
+        &[],
+    ),
+    (
+        Fixed::HistoryFileBytes,
+        "bandwatch_history_file_bytes",
+        "Bytes of the history file's pages in use, at the last retention pass.",
+        MetricType::GAUGE,
+        &[],
     ),
 ];
 

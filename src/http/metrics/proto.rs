@@ -168,6 +168,7 @@ impl ProtoSink<'_> {
                 vec![label("machine", &m.name), label("method", m.speed.as_str())]
             }
             Labels::Kind(k) => vec![label("kind", RECORD_KINDS[k])],
+            Labels::Word(name, value) => vec![label(name, value)],
         }
     }
 }

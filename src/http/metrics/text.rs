@@ -379,7 +379,7 @@ impl PipelineCollector {
             Labels::SourceKind(k) => &self.sources[k].1,
             Labels::Machine(k) => &self.machines[k],
             Labels::Kind(k) => &self.kinds[k],
-            Labels::Rejected(..) => return None,
+            Labels::Rejected(..) | Labels::Word(..) => return None,
         })
     }
 
@@ -389,6 +389,7 @@ impl PipelineCollector {
             Labels::Rejected(k, reason) => {
                 label_set(&[("source", &self.app.sources[k].name), ("reason", reason)])
             }
+            Labels::Word(name, value) => label_set(&[(name, value)]),
             _ => String::new(),
         }
     }

@@ -68,6 +68,8 @@ pub(crate) enum Labels<'a> {
     Machine(usize),
     /// `kind` = `RECORD_KINDS[k]`.
     Kind(usize),
+    /// One label whose name and value are fixed words (`reason`).
+    Word(&'static str, &'static str),
 }
 
 /// What an encoder does with each sample of the walk.
@@ -524,6 +526,49 @@ fn walk_all<S: Sink>(
             F(Fixed::AlarmCapturesPruned),
             Labels::None,
             io.captures_pruned.load(Relaxed),
+        );
+    }
+
+    if let Some(h) = &app.history {
+        let c = &h.counters;
+        for r in crate::history::DropReason::ALL {
+            sink.counter(
+                F(Fixed::HistoryRecordsDropped),
+                Labels::Word("reason", r.as_str()),
+                c.dropped(r),
+            );
+        }
+        sink.counter(
+            F(Fixed::HistoryPointsWritten),
+            Labels::None,
+            c.points_written.load(Relaxed),
+        );
+        for r in crate::history::StoreReason::ALL {
+            sink.counter(
+                F(Fixed::HistorySpectraStored),
+                Labels::Word("reason", r.as_str()),
+                c.stored(r),
+            );
+        }
+        sink.counter(
+            F(Fixed::HistorySpectraDeleted),
+            Labels::None,
+            c.spectra_deleted.load(Relaxed),
+        );
+        sink.counter(
+            F(Fixed::HistoryWriteErrors),
+            Labels::None,
+            c.write_errors.load(Relaxed),
+        );
+        sink.gauge(
+            F(Fixed::HistoryQueued),
+            Labels::None,
+            c.queued.load(Relaxed) as f64,
+        );
+        sink.gauge(
+            F(Fixed::HistoryFileBytes),
+            Labels::None,
+            c.file_bytes.load(Relaxed) as f64,
         );
     }
 
