@@ -12,6 +12,7 @@
 
 mod alarm_common;
 
+use std::collections::BTreeMap;
 use std::sync::atomic::Ordering;
 use std::sync::Arc;
 use std::time::{Duration, Instant};
@@ -125,10 +126,6 @@ fn a_simulated_year_stays_within_its_bound() {
     let mut ids = SeriesIds::default();
     let mut rng = Lcg(7);
     let series = 5 + spec.bands.len();
-    // The test's own hourly aggregates of day 40 (thinned by day 71).
-    let check_day = 40u64;
-    let mut expected: Vec<std::collections::BTreeMap<u64, (u32, f64, f64, f64, f64)>> =
-        vec![Default::default(); series];
     let mut kept_ids = Vec::new();
     let mut deletable = Vec::new();
     let days = 550u64;
@@ -138,25 +135,8 @@ fn a_simulated_year_stays_within_its_bound() {
             let t = T0 + d * DAY + i * 300;
             let mut aggs = vec![Aggregate::default(); series];
             for (k, a) in aggs.iter_mut().enumerate() {
-                let vals = raw_values(k, t, &mut rng);
-                for v in &vals {
-                    a.add(*v, Some(0));
-                }
-                if d == check_day {
-                    let hour = t - t % 3600;
-                    let e = expected[k].entry(hour).or_insert((
-                        0,
-                        f64::INFINITY,
-                        f64::NEG_INFINITY,
-                        0.0,
-                        0.0,
-                    ));
-                    e.0 += vals.len() as u32;
-                    e.1 = e.1.min(vals.iter().copied().fold(f64::INFINITY, f64::min));
-                    e.2 =
-                        e.2.max(vals.iter().copied().fold(f64::NEG_INFINITY, f64::max));
-                    e.3 += vals.iter().sum::<f64>();
-                    e.4 = *vals.last().unwrap();
+                for v in raw_values(k, t, &mut rng) {
+                    a.add(v, Some(0));
                 }
             }
             let rec = IntervalRecord {
@@ -249,6 +229,41 @@ fn a_simulated_year_stays_within_its_bound() {
     assert_eq!((short_old, long_new), (0, 0));
 }
 
+/// The test's own aggregate of an hour of raw values.
+#[derive(Clone)]
+struct Hour {
+    n: u32,
+    min: f64,
+    max: f64,
+    sum: f64,
+    last: f64,
+}
+
+impl Default for Hour {
+    fn default() -> Hour {
+        Hour {
+            n: 0,
+            min: f64::INFINITY,
+            max: f64::NEG_INFINITY,
+            sum: 0.0,
+            last: f64::NAN,
+        }
+    }
+}
+
+/// One row of `points` as read back.
+struct Row {
+    t: i64,
+    span: i64,
+    n: u32,
+    min: f64,
+    mean: f64,
+    max: f64,
+    last: f64,
+    state: i64,
+    n_bad: i64,
+}
+
 /// The thinning itself, on a short run: an hour of 5-minute rows becomes
 /// one row equal to the test's own aggregation of the raw values.
 #[test]
@@ -265,8 +280,7 @@ fn thinned_hours_equal_the_raw_aggregates() {
     let mut ids = SeriesIds::default();
     let mut rng = Lcg(11);
     let series = 5 + spec.bands.len();
-    let mut expected: Vec<std::collections::BTreeMap<u64, (u32, f64, f64, f64, f64)>> =
-        vec![Default::default(); series];
+    let mut expected: Vec<BTreeMap<u64, Hour>> = vec![BTreeMap::new(); series];
     let tx = conn.transaction().unwrap();
     for i in 0..(2 * DAY / 300) {
         let t = T0 + i * 300;
@@ -282,17 +296,12 @@ fn thinned_hours_equal_the_raw_aggregates() {
             for v in &vals {
                 a.add(*v, Some(0));
             }
-            let hour = t - t % 3600;
-            let e =
-                expected[k]
-                    .entry(hour)
-                    .or_insert((0, f64::INFINITY, f64::NEG_INFINITY, 0.0, 0.0));
-            e.0 += vals.len() as u32;
-            e.1 = e.1.min(vals.iter().copied().fold(f64::INFINITY, f64::min));
-            e.2 =
-                e.2.max(vals.iter().copied().fold(f64::NEG_INFINITY, f64::max));
-            e.3 += vals.iter().sum::<f64>();
-            e.4 = *vals.last().unwrap();
+            let e = expected[k].entry(t - t % 3600).or_default();
+            e.n += vals.len() as u32;
+            e.min = vals.iter().copied().fold(e.min, f64::min);
+            e.max = vals.iter().copied().fold(e.max, f64::max);
+            e.sum += vals.iter().sum::<f64>();
+            e.last = *vals.last().unwrap();
         }
         let rec = IntervalRecord {
             spec: spec.clone(),
@@ -326,32 +335,43 @@ fn thinned_hours_equal_the_raw_aggregates() {
     .iter()
     .enumerate()
     {
-        let rows: Vec<(i64, i64, u32, f64, f64, f64, f64, i64, i64)> = stmt
+        let rows: Vec<Row> = stmt
             .query_map(params![name], |r| {
-                Ok((
-                    r.get(0)?,
-                    r.get(1)?,
-                    r.get(2)?,
-                    r.get(3)?,
-                    r.get(4)?,
-                    r.get(5)?,
-                    r.get(6)?,
-                    r.get(7)?,
-                    r.get(8)?,
-                ))
+                Ok(Row {
+                    t: r.get(0)?,
+                    span: r.get(1)?,
+                    n: r.get(2)?,
+                    min: r.get(3)?,
+                    mean: r.get(4)?,
+                    max: r.get(5)?,
+                    last: r.get(6)?,
+                    state: r.get(7)?,
+                    n_bad: r.get(8)?,
+                })
             })
             .unwrap()
             .map(Result::unwrap)
             .collect();
         assert_eq!(rows.len(), 48, "{name}: one row an hour");
-        for (t, span, n, min, mean, max, last, state, n_bad) in rows {
-            let e = expected[k][&(t as u64)];
+        for Row {
+            t,
+            span,
+            n,
+            min,
+            mean,
+            max,
+            last,
+            state,
+            n_bad,
+        } in rows
+        {
+            let e = &expected[k][&(t as u64)];
             assert_eq!(span, 3600);
-            assert_eq!(n, e.0, "{name} {t}");
-            assert_eq!(min, e.1, "{name} {t}: min");
-            assert_eq!(max, e.2, "{name} {t}: max");
-            assert_eq!(last, e.4, "{name} {t}: last");
-            let m = e.3 / f64::from(e.0);
+            assert_eq!(n, e.n, "{name} {t}");
+            assert_eq!(min, e.min, "{name} {t}: min");
+            assert_eq!(max, e.max, "{name} {t}: max");
+            assert_eq!(last, e.last, "{name} {t}: last");
+            let m = e.sum / f64::from(e.n);
             assert!(
                 (mean - m).abs() <= 1e-12 * m.abs(),
                 "{name} {t}: mean {mean} vs {m}"
