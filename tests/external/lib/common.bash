@@ -74,3 +74,29 @@ start_prometheus() {
     done
     fail "Prometheus did not become ready (3 attempts)"
 }
+
+# bin config log: starts bandwatch on a loopback port of its choosing,
+# waits up to 15 s for the address it logs. Sets `bw_pid` and `bw` (its
+# URL); the caller's `fail` otherwise.
+start_bandwatch() {
+    local bin="$1" config="$2" log="$3"
+    : >"$log"
+    NO_COLOR=1 RUST_LOG=info "$bin" run --config "$config" --listen 127.0.0.1:0 >>"$log" 2>&1 &
+    bw_pid=$!
+    bw=""
+    for _ in $(seq 1 150); do
+        kill -0 "$bw_pid" 2>/dev/null || fail "bandwatch exited at start"
+        bw="$(grep -o 'http://127\.0\.0\.1:[0-9]*' "$log" | head -n 1 || true)"
+        [ -n "$bw" ] && return 0
+        sleep 0.1
+    done
+    fail "bandwatch did not log its listen address within 15 s"
+}
+
+# name: the value of an unlabelled sample (or the sum of a family's
+# samples) in $bw/metrics; 0 when absent.
+metric_sum() {
+    curl -sf --max-time 5 "$bw/metrics" | awk -v n="$1" '
+        $1 == n || index($1, n "{") == 1 { s += $2 }
+        END { printf "%d\n", s }'
+}
