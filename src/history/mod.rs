@@ -116,6 +116,9 @@ impl HistoryCounters {
 pub struct HistoryShared {
     pub spec: HistorySpec,
     pub counters: HistoryCounters,
+    /// Set when the `History` handle goes: the writer writes what is
+    /// queued and ends, even if a tap is still alive.
+    stopping: std::sync::atomic::AtomicBool,
 }
 
 /// One channel's aggregate of one series over one interval.
@@ -276,6 +279,7 @@ impl History {
         let shared = Arc::new(HistoryShared {
             spec,
             counters: HistoryCounters::default(),
+            stopping: std::sync::atomic::AtomicBool::new(false),
         });
         let thread = writer::spawn(shared.clone(), rx, writer::SystemClock)?;
         Ok(History {
@@ -294,9 +298,11 @@ impl History {
 
 impl Drop for History {
     fn drop(&mut self) {
-        // The taps hold clones: the thread ends once the workers are gone
-        // too (the pipeline stops them first) and the queue is written.
+        // The taps hold clones: the thread ends once they are gone too
+        // (the pipeline stops its workers first), or, if one outlives the
+        // handle, after writing what is queued now.
         self.tx = None;
+        self.shared.stopping.store(true, Ordering::Relaxed);
         if let Some(t) = self.thread.take() {
             let _ = t.join();
         }

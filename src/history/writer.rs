@@ -92,8 +92,10 @@ impl<C: WallClock> Writer<C> {
     fn run(mut self, rx: &Receiver<Record>) {
         self.connect();
         loop {
+            let stopping = self.shared.stopping.load(Ordering::Relaxed);
             let first = match rx.recv_timeout(Duration::from_secs(1)) {
                 Ok(r) => Some(r),
+                Err(RecvTimeoutError::Timeout) if stopping => break,
                 Err(RecvTimeoutError::Timeout) => None,
                 Err(RecvTimeoutError::Disconnected) => break,
             };
@@ -114,9 +116,22 @@ impl<C: WallClock> Writer<C> {
             if !batch.is_empty() {
                 self.write(&batch);
             }
+            if stopping && batch.len() < BATCH {
+                break; // what was queued when the handle went is written
+            }
             if Instant::now() >= self.maintain_at {
                 self.maintain();
             }
+        }
+        // Records queued between the last batch and now are written too;
+        // any sent after the queue is gone are counted by their tap.
+        let rest: Vec<Record> = rx.try_iter().collect();
+        self.shared
+            .counters
+            .queued
+            .fetch_sub(rest.len() as u64, Ordering::Relaxed);
+        if !rest.is_empty() {
+            self.write(&rest);
         }
         tracing::debug!("history writer stopped");
     }

@@ -69,6 +69,9 @@ pub(crate) struct DspRig {
     /// for every ring to wrap once, so that its pages are touched (as a
     /// daemon's are after its first seconds) and not counted as work.
     warm_up: usize,
+    /// The rest of the pipeline the channels came from (its history writer
+    /// among it), kept until the channels are gone.
+    rest: Option<Inline>,
 }
 
 impl DspRig {
@@ -83,7 +86,14 @@ impl DspRig {
         let mut pipeline = inline_pipeline(config, alarms)?;
         let writers = take_writers(&mut pipeline);
         let dsps = std::mem::take(&mut pipeline.channels);
-        DspRig::from_parts(config, dsps, writers, signal)
+        let mut rig = DspRig::from_parts(config, dsps, writers, signal)?;
+        rig.rest = Some(pipeline);
+        Ok(rig)
+    }
+
+    /// The history the channels write (a config with `[history]`).
+    pub(crate) fn history(&self) -> Option<Arc<crate::history::HistoryShared>> {
+        self.rest.as_ref().and_then(|p| p.state.history.clone())
     }
 
     /// A rig over some of a pipeline's channels and their ring writers (the
@@ -108,6 +118,7 @@ impl DspRig {
             writers,
             signal,
             next: 0,
+            rest: None,
         })
     }
 

@@ -26,6 +26,11 @@
 //!   CPU per open operator page at 64 channels (the overview by list +
 //!   details, by `/api/v1/overview`, and a channel view), with 0 and
 //!   `--page-clients` pages side by side, and the bytes of one update.
+//! - `history`: not a phase of the default run (`--only history`): the
+//!   DSP throughput the history's taps take at `--history-channels` (1024)
+//!   channels of 10 bands, at the defaults and at a stress setting, beside
+//!   the same rig without history; and the file's size per channel per
+//!   day (a simulated day written through the store).
 //! - `welch`: not a phase of the default run; the mode
 //!   `bench/compare_scipy.py` drives (`--signal FILE`).
 //!
@@ -42,6 +47,7 @@
 mod dsp;
 mod exposition;
 mod fft;
+mod history;
 mod http;
 pub use http::DspLoad;
 mod ingest;
@@ -100,6 +106,9 @@ pub struct BenchArgs {
     /// welch: channels in --signal.
     #[arg(long, default_value_t = 1)]
     pub signal_channels: usize,
+    /// history: channels of the DSP rigs (10 bands each).
+    #[arg(long, default_value_t = 1024)]
+    pub history_channels: usize,
     /// exposition: channel counts of the /metrics size and render rows.
     #[arg(long, value_delimiter = ',', default_value = "64,1024,4096")]
     pub exposition_channels: Vec<usize>,
@@ -343,6 +352,8 @@ pub enum Phase {
     Plant,
     /// CPU per open operator page (only when named).
     Page,
+    /// History writes' cost, file size per channel and day (only when named).
+    History,
     /// Welch spectra of --signal as JSON (for bench/compare_scipy.py).
     Welch,
 }
@@ -359,6 +370,7 @@ impl Phase {
             Phase::Exposition => "exposition",
             Phase::Plant => "plant",
             Phase::Page => "page",
+            Phase::History => "history",
             Phase::Welch => "welch",
         }
     }
@@ -461,6 +473,11 @@ pub fn run(args: &BenchArgs) -> Result<(), BenchError> {
     // Only when named: a minute or more of rounds.
     if let (true, Some(rt)) = (page, &rt) {
         page::page_phase(rt, args, &signal, &mut rows, &mut notes)?;
+    }
+
+    // Only when named: it writes history files.
+    if args.only.contains(&Phase::History) {
+        history::history_phase(args, &signal, &mut rows, &mut notes)?;
     }
 
     // Only when named: it runs the daemon at plant scale for minutes.
