@@ -61,7 +61,7 @@ fn a_good_environment_passes_and_nothing_is_left_behind() {
     let cfg = config(
         &dir,
         "127.0.0.1:0",
-        "storage_dir = \"data/deeper\"\ntoken_file = \"token\"",
+        "storage_dir = \"data/deeper\"\ntoken_file = \"token\"\n\n[history]",
         "",
     );
     let out = bandwatch(
@@ -104,7 +104,8 @@ fn every_problem_is_named_by_its_field() {
     let cfg = config(
         &dir,
         &server,
-        "storage_dir = \"plain-file/data\"\ntoken_file = \"token\"",
+        "storage_dir = \"plain-file/data\"\ntoken_file = \"token\"\n\n\
+         [history]\nfile = \"plain-file/hist/history.sqlite\"",
         &sources,
     );
     let path = cfg.to_str().expect("utf8");
@@ -114,6 +115,7 @@ fn every_problem_is_named_by_its_field() {
     for (field, what) in [
         ("alarms.storage_dir:", "not a directory"),
         ("alarms.token_file:", "mode 0644"),
+        ("history.file:", "not a directory"),
         ("server.listen:", "cannot listen"),
         ("source[1] \"box\".listen:", "cannot listen"),
         ("source[2] \"udp\".listen:", "cannot bind"),

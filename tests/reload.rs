@@ -185,9 +185,17 @@ async fn reload_keeps_changes_adds_removes_and_refuses() {
         },
     ));
     bad.listen = "127.0.0.1:1".parse().expect("addr");
+    // A history turned on by a reload needs a restart too.
+    bad.history = parse(&format!(
+        "{}\n[history]\nfile = {:?}\n",
+        config_text(&dir, &knobs),
+        dir.join("h.sqlite").display().to_string()
+    ))
+    .history;
+    assert!(bad.history.is_some());
     let e = p.reload(&bad).await.expect_err("needs a restart");
     let paths: Vec<&str> = e.problems().iter().map(|x| x.path.as_str()).collect();
-    assert_eq!(paths, ["server.listen", "dsp.workers"], "{e}");
+    assert_eq!(paths, ["server.listen", "history", "dsp.workers"], "{e}");
     assert!(
         Arc::ptr_eq(&p.live.load_full(), &st0),
         "a refused reload changes nothing"

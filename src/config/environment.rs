@@ -1,5 +1,6 @@
 //! What `bandwatch check` asks of the machine, beyond the file itself: the
-//! storage directory can be created and written, the token file is there,
+//! storage directory (and the history file's) can be created and written,
+//! the token file is there,
 //! readable and private, every serial device exists and every listen
 //! address is free. Each problem is a [`ConfigIssue`] under the field path
 //! that named the thing (`alarms.storage_dir`, `source[0] "daq".listen`).
@@ -35,6 +36,26 @@ pub fn check_environment(config: &Config) -> Vec<ConfigIssue> {
                         issues.extend(vec![i]);
                     }
                 }
+            }
+        }
+    }
+    if let Some(h) = &config.history {
+        // The file's directory, created and written as the writer would;
+        // an existing file must be a file the daemon can open for writing.
+        let dir = h.file.parent().unwrap_or(Path::new("."));
+        if let Err(m) = check_storage(dir) {
+            issues.add("history.file", m);
+        } else if let Ok(meta) = fs::metadata(&h.file) {
+            if !meta.is_file() {
+                issues.add(
+                    "history.file",
+                    format!("{} exists and is not a file", h.file.display()),
+                );
+            } else if let Err(e) = fs::OpenOptions::new().append(true).open(&h.file) {
+                issues.add(
+                    "history.file",
+                    format!("{} cannot be opened for writing: {e}", h.file.display()),
+                );
             }
         }
     }

@@ -121,6 +121,17 @@ pub struct HistoryShared {
     stopping: std::sync::atomic::AtomicBool,
 }
 
+impl HistoryShared {
+    /// Settings and zeroed counters (the writer's; tests and HTTP rigs).
+    pub fn new(spec: HistorySpec) -> HistoryShared {
+        HistoryShared {
+            spec,
+            counters: HistoryCounters::default(),
+            stopping: std::sync::atomic::AtomicBool::new(false),
+        }
+    }
+}
+
 /// One channel's aggregate of one series over one interval.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct Aggregate {
@@ -276,11 +287,7 @@ impl History {
     /// The thread could not be spawned.
     pub fn start(spec: HistorySpec) -> std::io::Result<History> {
         let (tx, rx) = std::sync::mpsc::sync_channel(spec.queue);
-        let shared = Arc::new(HistoryShared {
-            spec,
-            counters: HistoryCounters::default(),
-            stopping: std::sync::atomic::AtomicBool::new(false),
-        });
+        let shared = Arc::new(HistoryShared::new(spec));
         let thread = writer::spawn(shared.clone(), rx, writer::SystemClock)?;
         Ok(History {
             shared,

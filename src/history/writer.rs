@@ -61,6 +61,16 @@ struct Outage {
     error: String,
     /// Per channel: first and past-last second lost, records lost.
     lost: HashMap<String, (u64, u64, u64)>,
+    /// The queue-full holes the lost records carried, written on recovery.
+    carried: HashMap<String, (u64, u64, u64)>,
+}
+
+/// Widens a per-channel span by `from..to` and `n` records.
+fn widen(map: &mut HashMap<String, (u64, u64, u64)>, channel: &str, from: u64, to: u64, n: u64) {
+    let e = map.entry(channel.to_string()).or_insert((from, to, 0));
+    e.0 = e.0.min(from);
+    e.1 = e.1.max(to);
+    e.2 += n;
 }
 
 struct Writer<C> {
@@ -174,6 +184,7 @@ impl<C: WallClock> Writer<C> {
             self.outage = Some(Outage {
                 error,
                 lost: HashMap::new(),
+                carried: HashMap::new(),
             });
         }
     }
@@ -185,10 +196,10 @@ impl<C: WallClock> Writer<C> {
         if let Some(o) = &mut self.outage {
             for r in batch {
                 let t = r.time_s();
-                let e = o.lost.entry(r.channel().to_string()).or_insert((t, t, 0));
-                e.0 = e.0.min(t);
-                e.1 = e.1.max(t + 1);
-                e.2 += 1;
+                widen(&mut o.lost, r.channel(), t, t + 1, 1);
+                if let Some(l) = r.lost() {
+                    widen(&mut o.carried, r.channel(), l.from_s, l.to_s, l.records);
+                }
             }
         }
     }
@@ -234,15 +245,13 @@ impl<C: WallClock> Writer<C> {
         };
         let tx = conn.transaction()?;
         if let Some(o) = &self.outage {
-            for (ch, (from, to, n)) in &o.lost {
-                store::insert_hole(
-                    &tx,
-                    Some(ch),
-                    *from,
-                    *to,
-                    DropReason::WriteError.as_str(),
-                    *n,
-                )?;
+            for (reason, map) in [
+                (DropReason::WriteError, &o.lost),
+                (DropReason::QueueFull, &o.carried),
+            ] {
+                for (ch, (from, to, n)) in map {
+                    store::insert_hole(&tx, Some(ch), *from, *to, reason.as_str(), *n)?;
+                }
             }
         }
         let mut points = 0;

@@ -543,7 +543,9 @@ fn walk_all<S: Sink>(
             Labels::None,
             c.points_written.load(Relaxed),
         );
-        for r in crate::history::StoreReason::ALL {
+        // Label values in sorted order, as every family's samples are.
+        use crate::history::StoreReason;
+        for r in [StoreReason::Alarm, StoreReason::Interval, StoreReason::Request] {
             sink.counter(
                 F(Fixed::HistorySpectraStored),
                 Labels::Word("reason", r.as_str()),

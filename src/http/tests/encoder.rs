@@ -97,6 +97,24 @@ fn rich_state_trimmed(exposition: crate::config::exposition::ExpositionSpec) -> 
     let mut app = AppState::new(&cfg);
     app.exposition = exposition;
     app.started_unix_ns = TS_NS - 3_600_000_000_000;
+    let history = crate::history::HistoryShared::new(crate::config::HistorySpec {
+        file: "/nonexistent/history.sqlite".into(),
+        interval_s: 60,
+        keep_days: 365,
+        thin_after_days: 30,
+        spectrum_every_s: 600,
+        spectra_keep_days: 90,
+        max_bytes: 1 << 30,
+        queue: 8192,
+        projection_window_s: 86_400,
+    });
+    history.counters.dropped[0].store(7, Ordering::Relaxed);
+    history.counters.spectra_stored[1].store(3, Ordering::Relaxed);
+    history
+        .counters
+        .file_bytes
+        .store(1 << 40, Ordering::Relaxed);
+    app.history = Some(Arc::new(history));
     let app = Arc::new(app);
     // z-last: both bands valued; B-upper: one band out of service; a: none.
     publish(&app, 0, snapshot(TS_NS + 99_500_000_000));
@@ -186,6 +204,11 @@ fn direct_encoder_matches_the_prometheus_crate() {
         r#"bandwatch_machine_speed_hertz{machine="m1",method="fixed"} 25"#,
         r#"bandwatch_channel_mean_meters_per_second_squared{channel="B-upper"} -0"#,
         r#"bandwatch_channel_samples_received_total{channel="a"} 1152921504606847000"#,
+        r#"bandwatch_history_records_dropped_total{reason="queue_full"} 7"#,
+        r#"bandwatch_history_records_dropped_total{reason="write_error"} 0"#,
+        r#"bandwatch_history_spectra_stored_total{reason="alarm"} 3"#,
+        r#"bandwatch_history_file_bytes 1099511627776"#,
+        "bandwatch_history_queue_records 0",
     ] {
         assert!(ours.contains(series), "{series} missing:\n{ours}");
     }
