@@ -452,3 +452,104 @@ fn the_writer_rides_out_a_file_it_cannot_open() {
         "written {written} + lost {lost} != {s}"
     );
 }
+
+/// A channel driven by hand through the daemon's own pipeline: a tone
+/// that trips its band's alert. The history gets a spectrum stored at the
+/// transition (reason `alarm`, the event naming it), and aggregate rows
+/// whose state says alert for the band and nothing (no alarm) for an
+/// overall level without one.
+#[test]
+fn an_alarm_transition_stores_a_spectrum_and_states() {
+    use bandwatch::pipeline::{AlarmMode, Builder, RingSize};
+    let dir = TempDir::new("history-alarm");
+    let file = dir.path().join("h.sqlite");
+    let text = format!(
+        r#"
+[server]
+listen = "127.0.0.1:0"
+[alarms]
+storage_dir = "/nonexistent-not-used"
+[history]
+file = "{}"
+interval_s = 1
+spectrum_every_s = 0
+[[source]]
+name = "s"
+kind = "sim"
+[[channel]]
+name = "c"
+source = "s"
+index = 0
+unit = "g"
+block = 1024
+overlap = 0.0
+averaging = {{ mode = "none" }}
+health = {{ recover_s = 0.2 }}
+  [[channel.band]]
+  name = "all"
+  lo_hz = 10
+  hi_hz = 12000
+    [channel.band.alarm]
+    alert = {{ limit = 0.5 }}
+    danger = {{ limit = 1.0 }}
+"#,
+        file.display()
+    );
+    let cfg = parse_str(&text).unwrap_or_else(|e| panic!("{e:?}"));
+    let mut p = Builder::new(&cfg)
+        .ring(RingSize::Headroom(1 << 20))
+        .alarms(AlarmMode::InMemory)
+        .gather(false)
+        .assemble()
+        .unwrap()
+        .inline();
+    let mut w = p.take_inputs().pop().unwrap().writer;
+    // 3 s of a 500 Hz tone of 1.2 g peak (0.85 g RMS: above alert, below
+    // danger), in 0.1 s pieces, over about 2.5 s of wall clock so that
+    // the results fall in more than one 1 s interval.
+    let step = 2560usize;
+    for k in 0..30u64 {
+        let s = k * step as u64;
+        let x: Vec<f32> = (0..step)
+            .map(|i| {
+                (1.2 * (2.0 * std::f64::consts::PI * 500.0 * (s + i as u64) as f64 / 25_600.0)
+                    .sin()) as f32
+            })
+            .collect();
+        w.write(s, 1_800_000_000_000_000_000 + s * 39_062, &x);
+        p.drain();
+        std::thread::sleep(Duration::from_millis(80));
+    }
+    drop(w);
+    drop(p); // the taps hand over their intervals, the writer writes them
+    let conn = schema::open_read(&file).unwrap();
+    let events: Vec<(String, Option<String>, i64)> = conn
+        .prepare("SELECT reason, event, lines FROM spectra WHERE channel = 'c'")
+        .unwrap()
+        .query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))
+        .unwrap()
+        .map(Result::unwrap)
+        .collect();
+    assert!(
+        events.iter().any(|(reason, event, lines)| reason == "alarm"
+            && event
+                .as_deref()
+                .is_some_and(|e| e.starts_with("all ") && e.ends_with("->alert"))
+            && *lines == 513),
+        "no spectrum stored at the trip: {events:?}"
+    );
+    assert!(events.iter().all(|(r, ..)| r == "alarm"), "{events:?}");
+    let states: Vec<(String, Option<i64>)> = conn
+        .prepare(
+            "SELECT s.name, max(p.state) FROM points p JOIN series s ON s.id = p.series
+             WHERE s.channel = 'c' GROUP BY s.name ORDER BY s.name",
+        )
+        .unwrap()
+        .query_map([], |r| Ok((r.get(0)?, r.get(1)?)))
+        .unwrap()
+        .map(Result::unwrap)
+        .collect();
+    let of = |n: &str| states.iter().find(|(s, _)| s == n).map(|x| x.1);
+    assert_eq!(of("all"), Some(Some(1)), "{states:?}");
+    assert_eq!(of("overall-rms"), Some(None), "{states:?}");
+}

@@ -597,7 +597,10 @@ impl ChannelAlarms {
         let unix = unix_now_ns();
         self.since_ns[i] = unix;
         self.dirty = true;
-        if self.transitions.len() < 64 {
+        // Into or out of alert or danger: the history keeps a spectrum of
+        // each (not of a channel's health inhibiting or releasing).
+        let level = |s: AlarmState| matches!(s, AlarmState::Alert | AlarmState::Danger);
+        if self.transitions.len() < 64 && (level(t.from) || level(t.to)) {
             self.transitions.push((i, t.from, t.to));
         }
         let a = &self.specs[i];
@@ -683,8 +686,9 @@ impl ChannelAlarms {
         }
     }
 
-    /// The transitions since the last call, as "<alarm> <from>-><to>"
-    /// with the alarm's target (the history stores a spectrum at each).
+    /// The transitions into or out of alert or danger since the last call,
+    /// as "<alarm> <from>-><to>" with the alarm's target (the history
+    /// stores a spectrum at each).
     pub fn take_transitions(&mut self, mut f: impl FnMut(&AlarmTarget, String)) {
         for (i, from, to) in self.transitions.drain(..) {
             if let Some(a) = self.specs.get(i) {

@@ -545,7 +545,11 @@ fn walk_all<S: Sink>(
         );
         // Label values in sorted order, as every family's samples are.
         use crate::history::StoreReason;
-        for r in [StoreReason::Alarm, StoreReason::Interval, StoreReason::Request] {
+        for r in [
+            StoreReason::Alarm,
+            StoreReason::Interval,
+            StoreReason::Request,
+        ] {
             sink.counter(
                 F(Fixed::HistorySpectraStored),
                 Labels::Word("reason", r.as_str()),
