@@ -433,7 +433,8 @@ impl RawLines {
             })?,
             None => Vec::new(),
         };
-        s.bands = serde_json::from_str(&self.bands).map_err(|source| QueryError::Bands { id, source })?;
+        s.bands =
+            serde_json::from_str(&self.bands).map_err(|source| QueryError::Bands { id, source })?;
         Ok(())
     }
 }
@@ -512,7 +513,9 @@ pub fn pick_evenly(n: usize, max: usize) -> Vec<usize> {
     match max {
         0 => Vec::new(),
         1 => vec![n - 1],
-        m => (0..m).map(|i| (i * (n - 1) + (m - 1) / 2) / (m - 1)).collect(),
+        m => (0..m)
+            .map(|i| (i * (n - 1) + (m - 1) / 2) / (m - 1))
+            .collect(),
     }
 }
 
@@ -858,7 +861,10 @@ mod tests {
         store::insert_hole(&conn, Some("other"), 700, 720, "queue_full", 3).expect("hole");
         store::insert_hole(&conn, None, 5000, 6000, "write_error", 1).expect("hole");
         let all = series_points(&conn, "p2-de", "v", 0, 10_000, 10).expect("rows");
-        assert_eq!((all.kind.as_str(), all.stored, all.points.len()), ("band", 4, 4));
+        assert_eq!(
+            (all.kind.as_str(), all.stored, all.points.len()),
+            ("band", 4, 4)
+        );
         assert_eq!(all.points[2].n, 0);
         assert_eq!(all.points[2].min, None);
         let two = series_points(&conn, "p2-de", "v", 0, 10_000, 2).expect("rows");
@@ -884,7 +890,10 @@ mod tests {
         assert_eq!(two.holes[1].channel, None);
         // A range: the rows starting in it.
         let mid = series_points(&conn, "p2-de", "v", 650, 720, 10).expect("rows");
-        assert_eq!(mid.points.iter().map(|p| p.t).collect::<Vec<_>>(), [660, 720]);
+        assert_eq!(
+            mid.points.iter().map(|p| p.t).collect::<Vec<_>>(),
+            [660, 720]
+        );
         assert_eq!(mid.holes.len(), 1);
         assert!(matches!(
             series_points(&conn, "p2-de", "nope", 0, 1, 1),
@@ -915,7 +924,10 @@ mod tests {
         assert_eq!(got.block, 256);
         assert_eq!(got.bands[0].value, Some(2.0));
         assert!(got.lines_of(true).is_err());
-        assert!(matches!(spectrum(&conn, 999), Err(QueryError::NoSpectrum(999))));
+        assert!(matches!(
+            spectrum(&conn, 999),
+            Err(QueryError::NoSpectrum(999))
+        ));
         assert_eq!(reference_of(&conn, "p2-de").expect("ref"), None);
         store::mark_reference(&mut conn, a).expect("mark");
         assert_eq!(reference_of(&conn, "p2-de").expect("ref"), Some(a));
@@ -949,7 +961,11 @@ mod tests {
         )
         .expect_err("mismatch");
         let msg = err.to_string();
-        assert!(msg.contains("the live spectrum (3 lines") && msg.contains("stored spectrum 1 (129 lines"), "{msg}");
+        assert!(
+            msg.contains("the live spectrum (3 lines")
+                && msg.contains("stored spectrum 1 (129 lines"),
+            "{msg}"
+        );
     }
 
     #[test]
@@ -1001,7 +1017,13 @@ mod tests {
         .expect("ok")
         .expect("rows");
         // 5 spectra, 3 kept: the first, the middle and the last.
-        assert_eq!(few.rows.iter().map(|r| r.t_ns / 1_000_000_000).collect::<Vec<_>>(), [100, 102, 104]);
+        assert_eq!(
+            few.rows
+                .iter()
+                .map(|r| r.t_ns / 1_000_000_000)
+                .collect::<Vec<_>>(),
+            [100, 102, 104]
+        );
         for row in &few.rows {
             assert_eq!(row.values.len(), 7);
         }

@@ -12,7 +12,7 @@
 //! to now: `now`, `-7d`, `-12h`, `-30m`, `-90s`.
 
 use std::fmt::Write as _;
-use std::path::{Path as FsPath, PathBuf};
+use std::path::Path as FsPath;
 use std::sync::atomic::Ordering;
 use std::sync::Arc;
 
@@ -1078,7 +1078,7 @@ pub async fn store_spectrum(
         .into_response())
 }
 
-fn open_write(path: &PathBuf) -> Result<rusqlite::Connection, ApiError> {
+fn open_write(path: &FsPath) -> Result<rusqlite::Connection, ApiError> {
     schema::open_write(path).map_err(|e| {
         tracing::error!(error = %e, "cannot open the history file for writing");
         ApiError::Internal

@@ -156,10 +156,7 @@ pub fn router_with(st: HttpState) -> Router {
         .route("/api/v1/events", get(alarms::events))
         .route("/api/v1/events/{id}", get(alarms::event))
         .route("/api/v1/events/{id}/waveform", get(alarms::event_waveform))
-        .route(
-            "/api/v1/history/channels/{name}/trend",
-            get(history::trend),
-        )
+        .route("/api/v1/history/channels/{name}/trend", get(history::trend))
         .route(
             "/api/v1/history/channels/{name}/spectra",
             get(history::list_spectra).post(history::store_spectrum),
@@ -172,7 +169,10 @@ pub fn router_with(st: HttpState) -> Router {
             "/api/v1/history/channels/{name}/compare",
             get(history::compare),
         )
-        .route("/api/v1/history/spectra/{id}", get(history::stored_spectrum))
+        .route(
+            "/api/v1/history/spectra/{id}",
+            get(history::stored_spectrum),
+        )
         .route(
             "/api/v1/history/spectra/{id}/reference",
             post(history::mark_reference),
