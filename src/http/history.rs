@@ -160,6 +160,12 @@ fn ns_of(s: i64) -> i64 {
     s.saturating_mul(1_000_000_000)
 }
 
+/// The last nanosecond of second `s` (`to` is a whole second: the spectra
+/// within it count).
+fn end_ns(s: i64) -> i64 {
+    ns_of(s).saturating_add(999_999_999)
+}
+
 /// A whole number in `1 ..= max` (default `default`).
 fn count(params: &Params, key: &str, default: usize, max: usize) -> Result<usize, ApiError> {
     match params.get(key) {
@@ -322,7 +328,11 @@ pub async fn trend(
                 p.state.map(|s| s.to_string()).unwrap_or_default()
             );
         }
-        let file = export::filename(&[&name, &series, "history"], ns_of(from) as u64, "csv");
+        let file = export::filename(
+            &[&name, &series, "history"],
+            u64::try_from(ns_of(from)).unwrap_or(0),
+            "csv",
+        );
         return Ok(export::attachment(export::CSV, &file, out));
     }
     let p = &rows.points;
@@ -438,9 +448,7 @@ pub async fn list_spectra(
     let channel = name.clone();
     let listed = blocking(move || {
         let conn = open_read(&path)?;
-        // `to` is a whole second: the spectra within it count.
-        query::list_spectra(&conn, &channel, ns_of(from), ns_of(to) + 999_999_999, limit)
-            .map_err(api_error)
+        query::list_spectra(&conn, &channel, ns_of(from), end_ns(to), limit).map_err(api_error)
     })
     .await?;
     Ok(Json(SpectraList {
@@ -698,7 +706,7 @@ pub async fn waterfall(
     let channel = name.clone();
     let ask = WaterfallAsk {
         from_ns: ns_of(from),
-        to_ns: ns_of(to) + 999_999_999,
+        to_ns: end_ns(to),
         fmin_hz,
         fmax_hz,
         columns,
@@ -717,6 +725,14 @@ pub async fn waterfall(
             rfc3339_s(to)
         ))
     })?;
+    if w.columns.is_empty() {
+        return Err(ApiError::BadQuery(format!(
+            "fmin to fmax holds no spectral line of the stored spectra (lines every {} Hz \
+             up to {} Hz)",
+            w.df_hz,
+            w.df_hz * (w.nfft / 2) as f64
+        )));
+    }
     let unit = Unit::parse(&w.unit).ok_or_else(|| {
         tracing::error!(unit = %w.unit, "a stored spectrum's unit is not known");
         ApiError::Internal
@@ -762,7 +778,11 @@ pub async fn waterfall(
         } else {
             "waterfall"
         };
-        let file = export::filename(&[&name, what], ns_of(from) as u64, "csv");
+        let file = export::filename(
+            &[&name, what],
+            u64::try_from(ns_of(from)).unwrap_or(0),
+            "csv",
+        );
         return Ok(export::attachment(export::CSV, &file, out));
     }
     Ok(Json(WaterfallBody {

@@ -376,6 +376,12 @@ async fn list_waterfall_and_compare() {
             assert_eq!(f(v) as f32, want, "row {k} column {c}");
         }
     }
+    let r = get(
+        &st,
+        "/api/v1/history/channels/a/waterfall?from=-1h&fmin=20000",
+    )
+    .await;
+    assert_json_error(&r, StatusCode::BAD_REQUEST, "holds no spectral line");
     let csv = get(
         &st,
         "/api/v1/history/channels/a/waterfall?from=-1h&columns=4&format=csv",
