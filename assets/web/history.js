@@ -224,9 +224,13 @@ async function act(kind) {
     if (kind === "store") {
       const r = await api.storeNow(me.name, t);
       say(true, `stored the live spectrum as #${r.id}`);
+      // Shown at once: the list holds the range up to now on the source's
+      // clock, which a new spectrum may not be in yet.
+      await showStored(me, r.id);
     } else {
       await api.markReference(me.shownId, t);
       say(true, `#${me.shownId} is now the reference of its channel`);
+      await drawSpectrum(me);
     }
     await loadList(me);
   } catch (e) {
