@@ -107,7 +107,8 @@ async function loadTrend(me) {
   const lost = (t.holes || []).reduce((s, h) => s + h.lost, 0);
   $("hist-trend-facts").textContent = `${t.series} (${t.unit}) · ${t.t.length} points from ${t.stored_rows} stored rows`
     + `${t.stored_rows > t.t.length ? " (runs merged: min of minima, max of maxima, mean weighted)" : ""}`
-    + ` · ${lost ? `${lost} records lost in the range (hatched, with the reason)` : "no records lost in the range"}`;
+    + ` · ${lost ? `${lost} records lost in the range (hatched, with the reason)` : "no records lost in the range"}`
+    + `${trendPlot.clipped ? " · the time axis starts shortly before the first stored point" : ""}`;
   $("hist-projection").textContent = proj.text;
   $("hist-trend-downloads").replaceChildren(download(api.historyTrendUrl(name, { series, from, format: "csv" }), "trend CSV"));
 }
@@ -292,7 +293,10 @@ export function start(name, setLink) {
       const [detail, list] = await Promise.all([api.channel(name).catch((e) => e), api.getJSON("/api/v1/channels")]);
       if (!(detail instanceof Error)) {
         me.detail = detail;
+        const first = $("hist-series").dataset.sig === "";
         fill($("hist-series"), [...OVERALL, ...(detail.bands || []).map((b) => [b.name, `band ${b.name} (${b.unit} ${b.measure})`])]);
+        // A channel opens on its first alarm's series (the one with a projection).
+        if (first && detail.alarms && detail.alarms.length) $("hist-series").value = detail.alarms[0].band;
       }
       $("history-channels").replaceChildren(...list.channels.map((c) =>
         el("a", { href: `#/history/${encodeURIComponent(c.name)}`, text: c.name, ...(c.name === name ? { "aria-current": "page" } : {}) })));

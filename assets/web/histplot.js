@@ -96,7 +96,11 @@ export class HistoryTrendPlot {
     if (!s) { g.fillText("loading…", box.x + 8, box.y + 20); return; }
     // The time axis: the range asked for, stretched to the right to show
     // a limit crossing no further off than the range itself.
-    const t0 = s.from;
+    // A range mostly before the first stored point starts at that point
+    // (a new install, a range of a year): the points stay readable.
+    let t0 = s.from;
+    if (s.t.length && s.t[0] - s.from > 0.25 * (s.to - s.from)) t0 = Math.max(s.from, s.t[0] - 0.05 * (s.to - s.t[0]));
+    this.clipped = t0 > s.from;
     let t1 = Math.max(s.to, t0 + 1);
     const crossings = [];
     if (s.projection) {
@@ -371,7 +375,7 @@ export class WaterfallPlot {
       g.fillText(fmt(v), x, bar.y + bar.h + 16);
     }
     g.textAlign = "left";
-    g.fillText(`dB re 1 ${unit} (lower values: ${fmt(lo)} dB colour)`, bar.x + bar.w + 12, bar.y + 13);
+    g.fillText(`dB re 1 ${unit} (${fmt(lo)} dB and below: the darkest colour)`, bar.x + bar.w + 12, bar.y + 13);
     void h;
   }
 }

@@ -227,21 +227,28 @@ try {
   // --- History of pump-de (config/demo.toml [history]: a trend row every
   // 5 s, a stored spectrum every 20 s). Waits (bounded) until the file
   // holds two spectra, then opens the view from the channel view's link.
-  const spectraUrl = `${base}/api/v1/history/channels/pump-de/spectra`;
-  let storedCount = 0;
+  const histApi = `${base}/api/v1/history/channels/pump-de`;
+  // How many entries of `key` are not null.
+  const countOf = async (url, key) => {
+    const r = await fetch(url, { signal: AbortSignal.timeout(5000) }).catch(() => null);
+    return r && r.ok ? (await r.json())[key].filter((v) => v !== null).length : 0;
+  };
+  let storedCount = 0, rowCount = 0;
   for (const until = Date.now() + 70000; Date.now() < until;) {
-    const r = await fetch(spectraUrl, { signal: AbortSignal.timeout(5000) }).catch(() => null);
-    if (r && r.ok) storedCount = (await r.json()).spectra.length;
-    if (storedCount >= 2) break;
+    storedCount = await countOf(`${histApi}/spectra`, "spectra");
+    rowCount = await countOf(`${histApi}/trend?series=bpfo&from=-1h`, "mean");
+    if (storedCount >= 2 && rowCount >= 4) break;
     await new Promise((ok) => setTimeout(ok, 1000));
   }
   if (storedCount < 2) fail(`only ${storedCount} spectra stored 70 s into the demo (spectrum_every_s = 20)`);
+  if (rowCount < 4) fail(`only ${rowCount} trend rows with a value stored 70 s into the demo (interval_s = 5)`);
   await page.click("#channel-history");
   await page.locator("#sp-table tbody button[data-id]").first().waitFor({ timeout: 20000 });
   await page.locator('#hist-waterfall[data-rows]').waitFor({ timeout: 20000 });
   await page.locator('#hist-trend[data-points]').waitFor();
   const histPoints = Number(await page.getAttribute("#hist-trend", "data-points"));
-  if (histPoints < 3) fail(`history trend draws ${histPoints} points (a row every 5 s)`);
+  if (histPoints < 4) fail(`history trend draws ${histPoints} points, the API had ${rowCount} (a row every 5 s)`);
+  if (!/^bpfo /.test(await page.textContent("#hist-trend-facts"))) fail("the history view does not open on pump-de's alarm (bpfo)");
   const histInk = await inkOf(page, "#hist-trend");
   if (histInk < 200) fail(`history trend canvas has only ${histInk} dark pixels`);
   // The waterfall's cells: colours of the palette, never grey (the page's
