@@ -61,3 +61,17 @@ export const ack = (channelName, band, token) =>
   post(`/api/v1/alarms/${encodeURIComponent(channelName)}/${encodeURIComponent(band)}/ack`, token);
 export const relearn = (channelName, band, token) =>
   post(`/api/v1/alarms/${encodeURIComponent(channelName)}/${encodeURIComponent(band)}/relearn`, token);
+
+// The stored history (README "HTTP API", docs/history.md "Queries").
+const hist = (name) => `/api/v1/history/channels/${encodeURIComponent(name)}`;
+export const historyTrend = (name, params) => getJSON(`${hist(name)}/trend${q(params)}`);
+export const historyTrendUrl = (name, params) => `${hist(name)}/trend${q(params)}`;
+export const storedSpectra = (name, params) => getJSON(`${hist(name)}/spectra${q(params)}`);
+export const waterfall = (name, params) => getJSON(`${hist(name)}/waterfall${q(params)}`);
+export const waterfallUrl = (name, params) => `${hist(name)}/waterfall${q(params)}`;
+export const storedSpectrumUrl = (id, params) => `/api/v1/history/spectra/${encodeURIComponent(id)}${q(params)}`;
+export const storedSpectrum = (id, params) => getJSON(storedSpectrumUrl(id, params));
+export const compare = (name, params) => getJSON(`${hist(name)}/compare${q(params)}`);
+export const projection = (name) => getJSON(`${ch(name)}/projection`);
+export const storeNow = (name, token) => post(`${hist(name)}/spectra`, token);
+export const markReference = (id, token) => post(`/api/v1/history/spectra/${encodeURIComponent(id)}/reference`, token);

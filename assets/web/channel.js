@@ -177,6 +177,7 @@ function exports() {
 
 export function start(name, setLink) {
   $("channel-title").textContent = `Channel ${name}`;
+  $("channel-history").href = `#/history/${encodeURIComponent(name)}`;
   if (!plot) bindOnce();
   if (!current || current.name !== name) {
     for (const p of [plot, wave]) { p.data = null; p.view = null; p.cursor = null; p.limits = []; p.markers = []; p.draw(); }

@@ -53,6 +53,7 @@ export class SpectrumPlot {
     this.canvas = canvas;
     this.onCursor = onCursor;
     this.kind = opts.kind || "spectrum";
+    this.xLabel = opts.xLabel || null; // the x axis' title, when not the kind's own
     this.data = null; // { f0, df, values, unit }: x of values[i] is f0 + i·df
     this.view = null; // [fmin, fmax] or null for the full span
     this.log = false;
@@ -62,6 +63,8 @@ export class SpectrumPlot {
     // Alarm limits over a band's span: { lo, hi, value, state: "alert"|"danger", band }
     this.limits = [];
     this.markers = []; // vertical markers: { x, label }
+    // A second trace on the same lines (same f0, df), dashed: { values, label }
+    this.overlay = null;
     this.cursor = null; // line index
     this.drag = null;
     this.peak = null;
@@ -192,12 +195,15 @@ export class SpectrumPlot {
     const i0 = Math.max(0, Math.floor((fa - d.f0) / d.df));
     const i1 = Math.min(d.values.length - 1, Math.ceil((fb - d.f0) / d.df));
 
-    // Amplitude range over the visible lines.
+    // Amplitude range over the visible lines (of both traces).
     let top = -Infinity, bottom = Infinity;
-    for (let i = i0; i <= i1; i++) {
-      const v = this.amp(d.values[i]);
-      if (v > top) top = v;
-      if (v < bottom) bottom = v;
+    const ov = this.overlay && this.overlay.values.length === d.values.length ? this.overlay : null;
+    for (const vals of ov ? [d.values, ov.values] : [d.values]) {
+      for (let i = i0; i <= i1; i++) {
+        const v = this.amp(vals[i]);
+        if (v > top) top = v;
+        if (v < bottom) bottom = v;
+      }
     }
     if (this.waveform) {
       const m = Math.max(Math.abs(top), Math.abs(bottom)) * 1.12 || 1;
@@ -284,6 +290,32 @@ export class SpectrumPlot {
       g.setLineDash([]);
     }
 
+    // The overlay first, dashed and lighter, under the trace: the largest
+    // line of each pixel column, joined.
+    if (ov) {
+      g.strokeStyle = css("--muted"); g.lineWidth = 1.5; g.setLineDash([5, 3]);
+      g.beginPath();
+      let first = true;
+      const to = (x, v) => {
+        if (!Number.isFinite(v)) return;
+        if (first) { g.moveTo(x, yOf(v)); first = false; } else g.lineTo(x, yOf(v));
+      };
+      if ((i1 - i0 + 1) / box.w <= 1) {
+        for (let i = i0; i <= i1; i++) to(this.xOf(d.f0 + i * d.df), this.amp(ov.values[i]));
+      } else {
+        let i = i0;
+        for (let col = 0; col < box.w && i <= i1; col++) {
+          const fEnd = this.fOf(box.x + col + 1);
+          let hi = -Infinity;
+          while (i <= i1 && d.f0 + i * d.df < fEnd) { hi = Math.max(hi, this.amp(ov.values[i])); i++; }
+          to(box.x + col + 0.5, hi);
+        }
+      }
+      g.stroke(); g.setLineDash([]);
+      g.fillStyle = ink;
+      g.fillText(`dashed: ${ov.label}`, box.x + box.w - g.measureText(`dashed: ${ov.label}`).width - 6, box.y + 14);
+    }
+
     // The trace: min..max per pixel column (never skipping a line).
     g.strokeStyle = trace; g.lineWidth = 1.25;
     g.beginPath();
@@ -337,7 +369,7 @@ export class SpectrumPlot {
     g.strokeRect(box.x + 0.5, box.y + 0.5, box.w, box.h);
     g.textAlign = "center";
     for (const f of niceTicks(fa, fb, 8)) g.fillText(fmt(f), this.xOf(f), box.y + box.h + 16);
-    g.fillText(this.waveform ? "time (s)" : "frequency (Hz)", box.x + box.w / 2, box.y + box.h + 32);
+    g.fillText(this.xLabel || (this.waveform ? "time (s)" : "frequency (Hz)"), box.x + box.w / 2, box.y + box.h + 32);
     g.textAlign = "right";
     for (const v of niceTicks(bottom, top, 5)) g.fillText(fmt(v), box.x - 6, yOf(v) + 4);
     g.save(); g.translate(14, box.y + box.h / 2); g.rotate(-Math.PI / 2); g.textAlign = "center";

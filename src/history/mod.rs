@@ -23,6 +23,7 @@
 //! pipeline builds the taps and the writer, HTTP reads the file.
 
 pub mod codec;
+pub mod query;
 pub mod schema;
 pub mod store;
 pub mod tap;

@@ -80,7 +80,7 @@ impl Params {
             .map(|(_, v)| v.as_str())
     }
 
-    fn f64(&self, key: &str) -> Result<Option<f64>, ApiError> {
+    pub(crate) fn f64(&self, key: &str) -> Result<Option<f64>, ApiError> {
         self.get(key)
             .map(|v| {
                 v.trim().parse::<f64>().map_err(|_| {
@@ -931,7 +931,7 @@ pub struct SpectrumBody<'a> {
     #[schema(value_type = String)]
     scaling: &'static str,
     #[schema(value_type = String)]
-    window: &'static str,
+    window: &'a str,
     block: usize,
     nfft: usize,
     sample_rate_hz: f64,
@@ -943,7 +943,7 @@ pub struct SpectrumBody<'a> {
     enbw_hz: f64,
     averages: u32,
     #[schema(value_type = String)]
-    averaging: &'static str,
+    averaging: &'a str,
     /// Stream index of the first sample of the newest block.
     first_sample: u64,
     /// Stream index of the first sample of the oldest block averaged.
@@ -1020,36 +1020,8 @@ pub async fn spectrum(
     let params = Params::of::<SpectrumQuery>(q)?;
     let ch = channel_of(&st.app, &name)?;
     let spec = &ch.spec;
-    let scaling = match params.get("scaling") {
-        None => Scaling::Rms,
-        Some(s) => Scaling::parse(s).ok_or_else(|| {
-            ApiError::BadQuery(format!(
-                "scaling={s:?} is not known (known: {})",
-                Scaling::known()
-            ))
-        })?,
-    };
-    let to = match params.get("unit") {
-        None => spec.unit,
-        Some(s) => {
-            let u = Unit::parse(s).ok_or_else(|| {
-                ApiError::BadQuery(format!(
-                    "unit={s:?} is not known (known: {})",
-                    Unit::known()
-                ))
-            })?;
-            if !convertible(spec.unit, u) {
-                return Err(ApiError::BadQuery(format!(
-                    "unit={s:?} ({}) cannot be derived from channel {:?} in {} ({})",
-                    u.quantity.as_str(),
-                    spec.name,
-                    spec.unit,
-                    spec.unit.quantity.as_str()
-                )));
-            }
-            u
-        }
-    };
+    let scaling = parse_scaling(&params)?;
+    let to = parse_unit(&params, &spec.name, spec.unit)?;
     let format = params.format()?;
     let amp = Amp::parse(params.get("amp"), format)?;
     let range = line_range(
@@ -1060,61 +1032,38 @@ pub async fn spectrum(
     )
     .map_err(|e| ApiError::BadQuery(e.to_string()))?;
     let snap = latest_of(ch)?;
-    let envelope = match params.get("spectrum") {
-        None | Some("raw") => false,
-        Some("envelope") => true,
-        Some(other) => {
-            return Err(ApiError::BadQuery(format!(
-                "spectrum={other:?}: expected raw or envelope"
-            )))
-        }
+    let envelope = parse_kind(&params)?;
+    let src = SpectrumSource {
+        channel: &spec.name,
+        unit: spec.unit,
+        sample_rate_hz: spec.sample_rate_hz,
+        block: spec.block,
+        nfft: spec.nfft,
+        window: spec.window.as_str(),
+        enbw_hz: ch.noise_bandwidth_hz(),
+        averaging: averaging_str(spec.averaging),
+        averages: snap.averages,
+        first_sample: snap.first_sample,
+        oldest_first_sample: snap.oldest_first_sample,
+        timestamp_ns: snap.timestamp_ns,
+        speed_hz: snap.speed_hz,
+        integration_low_cut_hz: spec.integration_low_cut_hz,
+        power: &snap.power,
+        envelope: &snap.envelope_power,
     };
-    if envelope && snap.envelope_power.is_empty() {
-        return Err(ApiError::BadQuery(format!(
-            "channel {:?} has no envelope analysis configured",
-            spec.name
-        )));
-    }
-    if envelope && to.quantity != spec.unit.quantity {
-        return Err(ApiError::BadQuery(
-            "the envelope spectrum is in the channel's own quantity; drop unit= or use the channel's".into(),
-        ));
-    }
-    let conv = Conversion {
+    let ask = SpectrumAsk {
         scaling,
-        from: spec.unit,
         to,
-        low_cut_hz: spec.integration_low_cut_hz,
-        df_hz: spec.df_hz(),
-        noise_bw_hz: ch.noise_bandwidth_hz(),
-    };
-    let first = *range.start();
-    let values = conv.apply(
-        if envelope {
-            &snap.envelope_power
-        } else {
-            &snap.power
-        },
         range,
-    );
-    let f0_hz = first as f64 * spec.df_hz();
-    let unit = scaling.unit_label(to);
-    let what = if envelope {
-        "envelope-spectrum"
-    } else {
-        "spectrum"
+        envelope,
     };
+    src.check(&ask)?;
+    let values = src.values(&ask);
+    let f0_hz = *ask.range.start() as f64 * spec.df_hz();
+    let unit = scaling.unit_label(to);
     match format {
         Format::Json => {}
-        Format::Csv => {
-            let mut out = String::with_capacity(16 * values.len() + 64);
-            let _ = writeln!(out, "frequency_hz,{}_{}", scaling.as_str(), unit);
-            for (i, v) in values.iter().enumerate() {
-                let _ = writeln!(out, "{},{}", (first + i) as f64 * spec.df_hz(), v);
-            }
-            let name = export::filename(&[&spec.name, what], snap.timestamp_ns, "csv");
-            return Ok(export::attachment(export::CSV, &name, out));
-        }
+        Format::Csv => return Ok(src.csv(&ask, &values)),
         Format::Svg => {
             let (spans, notes) = band_table(ch, &snap, Some(envelope));
             let db = matches!(amp, Amp::Log);
@@ -1182,39 +1131,202 @@ pub async fn spectrum(
                 spans,
                 notes,
             };
+            let what = if envelope {
+                "envelope-spectrum"
+            } else {
+                "spectrum"
+            };
             let name = export::filename(&[&spec.name, what], snap.timestamp_ns, "svg");
             return Ok(export::attachment(export::SVG, &name, export::svg(&plot)));
         }
     }
-    let integrates = matches!(
-        (to.quantity.kinematic_order(), spec.unit.quantity.kinematic_order()),
-        (Some(a), Some(b)) if a < b
-    );
-    Ok(Json(SpectrumBody {
-        spectrum: if envelope { "envelope" } else { "raw" },
-        speed_hz: snap.speed_hz,
-        channel: &spec.name,
-        unit,
-        quantity: to.quantity.as_str(),
-        scaling: scaling.as_str(),
-        window: spec.window.as_str(),
-        block: spec.block,
-        nfft: spec.nfft,
-        sample_rate_hz: spec.sample_rate_hz,
-        resolution_hz: spec.sample_rate_hz / spec.block as f64,
-        df_hz: spec.df_hz(),
-        enbw_hz: ch.noise_bandwidth_hz(),
-        averages: snap.averages,
-        averaging: averaging_str(spec.averaging),
-        first_sample: snap.first_sample,
-        oldest_first_sample: snap.oldest_first_sample,
-        end_sample: snap.first_sample + spec.block as u64,
-        timestamp: rfc3339_ns(snap.timestamp_ns),
-        f0_hz,
-        integration_low_cut_hz: integrates.then_some(spec.integration_low_cut_hz),
-        values,
-    })
-    .into_response())
+    Ok(Json(src.body(&ask, values)).into_response())
+}
+
+/// `scaling=` (default rms).
+pub(crate) fn parse_scaling(params: &Params) -> Result<Scaling, ApiError> {
+    match params.get("scaling") {
+        None => Ok(Scaling::Rms),
+        Some(s) => Scaling::parse(s).ok_or_else(|| {
+            ApiError::BadQuery(format!(
+                "scaling={s:?} is not known (known: {})",
+                Scaling::known()
+            ))
+        }),
+    }
+}
+
+/// `unit=` (default the channel's `unit`): one derived from it.
+pub(crate) fn parse_unit(params: &Params, channel: &str, unit: Unit) -> Result<Unit, ApiError> {
+    let Some(s) = params.get("unit") else {
+        return Ok(unit);
+    };
+    let u = Unit::parse(s).ok_or_else(|| {
+        ApiError::BadQuery(format!(
+            "unit={s:?} is not known (known: {})",
+            Unit::known()
+        ))
+    })?;
+    if !convertible(unit, u) {
+        return Err(ApiError::BadQuery(format!(
+            "unit={s:?} ({}) cannot be derived from channel {channel:?} in {unit} ({})",
+            u.quantity.as_str(),
+            unit.quantity.as_str()
+        )));
+    }
+    Ok(u)
+}
+
+/// `spectrum=raw` (default) or `envelope`: whether the envelope is asked.
+pub(crate) fn parse_kind(params: &Params) -> Result<bool, ApiError> {
+    match params.get("spectrum") {
+        None | Some("raw") => Ok(false),
+        Some("envelope") => Ok(true),
+        Some(other) => Err(ApiError::BadQuery(format!(
+            "spectrum={other:?}: expected raw or envelope"
+        ))),
+    }
+}
+
+/// A frequency crop (`fmin=`, `fmax=`) of a spectrum of `bins` lines.
+pub(crate) fn parse_range(
+    params: &Params,
+    df_hz: f64,
+    bins: usize,
+) -> Result<std::ops::RangeInclusive<usize>, ApiError> {
+    line_range(params.f64("fmin")?, params.f64("fmax")?, df_hz, bins)
+        .map_err(|e| ApiError::BadQuery(e.to_string()))
+}
+
+/// What a spectrum's JSON (or CSV) is made from: the analysis settings and
+/// the lines, of the live snapshot or of a stored spectrum.
+pub(crate) struct SpectrumSource<'a> {
+    pub channel: &'a str,
+    /// The channel's unit (that of the power).
+    pub unit: Unit,
+    pub sample_rate_hz: f64,
+    pub block: usize,
+    pub nfft: usize,
+    pub window: &'a str,
+    /// The window's noise bandwidth, Hz.
+    pub enbw_hz: f64,
+    pub averaging: &'a str,
+    pub averages: u32,
+    pub first_sample: u64,
+    pub oldest_first_sample: u64,
+    pub timestamp_ns: u64,
+    pub speed_hz: Option<f64>,
+    pub integration_low_cut_hz: f64,
+    pub power: &'a [f32],
+    /// Empty without envelope analysis.
+    pub envelope: &'a [f32],
+}
+
+/// A spectrum request, parsed.
+pub(crate) struct SpectrumAsk {
+    pub scaling: Scaling,
+    pub to: Unit,
+    pub range: std::ops::RangeInclusive<usize>,
+    pub envelope: bool,
+}
+
+impl SpectrumSource<'_> {
+    pub(crate) fn df_hz(&self) -> f64 {
+        self.sample_rate_hz / self.nfft as f64
+    }
+
+    /// The envelope asked of a spectrum without one, or in another quantity.
+    pub(crate) fn check(&self, ask: &SpectrumAsk) -> Result<(), ApiError> {
+        if ask.envelope && self.envelope.is_empty() {
+            return Err(ApiError::BadQuery(format!(
+                "channel {:?} has no envelope analysis configured",
+                self.channel
+            )));
+        }
+        if ask.envelope && ask.to.quantity != self.unit.quantity {
+            return Err(ApiError::BadQuery(
+                "the envelope spectrum is in the channel's own quantity; drop unit= or use the channel's".into(),
+            ));
+        }
+        Ok(())
+    }
+
+    fn conversion(&self, ask: &SpectrumAsk) -> Conversion {
+        Conversion {
+            scaling: ask.scaling,
+            from: self.unit,
+            to: ask.to,
+            low_cut_hz: self.integration_low_cut_hz,
+            df_hz: self.df_hz(),
+            noise_bw_hz: self.enbw_hz,
+        }
+    }
+
+    /// The lines asked for, scaled (`http::scaling`).
+    pub(crate) fn values(&self, ask: &SpectrumAsk) -> Vec<f32> {
+        self.conversion(ask).apply(
+            if ask.envelope {
+                self.envelope
+            } else {
+                self.power
+            },
+            ask.range.clone(),
+        )
+    }
+
+    /// `values` scaled by `ask` already, as the spectrum's CSV download.
+    pub(crate) fn csv(&self, ask: &SpectrumAsk, values: &[f32]) -> Response {
+        let first = *ask.range.start();
+        let mut out = String::with_capacity(16 * values.len() + 64);
+        let _ = writeln!(
+            out,
+            "frequency_hz,{}_{}",
+            ask.scaling.as_str(),
+            ask.scaling.unit_label(ask.to)
+        );
+        for (i, v) in values.iter().enumerate() {
+            let _ = writeln!(out, "{},{}", (first + i) as f64 * self.df_hz(), v);
+        }
+        let what = if ask.envelope {
+            "envelope-spectrum"
+        } else {
+            "spectrum"
+        };
+        let name = export::filename(&[self.channel, what], self.timestamp_ns, "csv");
+        export::attachment(export::CSV, &name, out)
+    }
+
+    /// The JSON body of `values` (scaled by `ask` already).
+    pub(crate) fn body(&self, ask: &SpectrumAsk, values: Vec<f32>) -> SpectrumBody<'_> {
+        let integrates = matches!(
+            (ask.to.quantity.kinematic_order(), self.unit.quantity.kinematic_order()),
+            (Some(a), Some(b)) if a < b
+        );
+        SpectrumBody {
+            spectrum: if ask.envelope { "envelope" } else { "raw" },
+            speed_hz: self.speed_hz,
+            channel: self.channel,
+            unit: ask.scaling.unit_label(ask.to),
+            quantity: ask.to.quantity.as_str(),
+            scaling: ask.scaling.as_str(),
+            window: self.window,
+            block: self.block,
+            nfft: self.nfft,
+            sample_rate_hz: self.sample_rate_hz,
+            resolution_hz: self.sample_rate_hz / self.block as f64,
+            df_hz: self.df_hz(),
+            enbw_hz: self.enbw_hz,
+            averages: self.averages,
+            averaging: self.averaging,
+            first_sample: self.first_sample,
+            oldest_first_sample: self.oldest_first_sample,
+            end_sample: self.first_sample + self.block as u64,
+            timestamp: rfc3339_ns(self.timestamp_ns),
+            f0_hz: *ask.range.start() as f64 * self.df_hz(),
+            integration_low_cut_hz: integrates.then_some(self.integration_low_cut_hz),
+            values,
+        }
+    }
 }
 
 // ---------------------------------------------------------------------------

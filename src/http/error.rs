@@ -51,6 +51,15 @@ pub enum ApiError {
     /// alarm that is not latched).
     #[error("{0}")]
     Conflict(String),
+    /// The config has no `[history]`: nothing is stored.
+    #[error("no history here: the config has no [history] table")]
+    NoHistory,
+    /// `[history]` is on but its file does not exist (yet).
+    #[error("no history stored yet")]
+    NoHistoryYet,
+    /// Not in the history file: a series, a spectrum, a reference.
+    #[error("{0}")]
+    NotStored(String),
     /// No route for this path.
     #[error("no such endpoint")]
     NoRoute,
@@ -77,7 +86,10 @@ impl ApiError {
             | ApiError::UnknownAlarm(..)
             | ApiError::UnknownCapture(_)
             | ApiError::NoCaptureSpectrum(_)
-            | ApiError::CaptureUnavailable { .. } => StatusCode::NOT_FOUND,
+            | ApiError::CaptureUnavailable { .. }
+            | ApiError::NoHistory
+            | ApiError::NoHistoryYet
+            | ApiError::NotStored(_) => StatusCode::NOT_FOUND,
             ApiError::Unauthorized => StatusCode::UNAUTHORIZED,
             ApiError::Conflict(_) => StatusCode::CONFLICT,
             ApiError::BadQuery(_) => StatusCode::BAD_REQUEST,

@@ -7,6 +7,8 @@
 //! - `export`: CSV and SVG downloads (`?format=csv|svg`): the image writer
 //! - `metrics`: the Prometheus registry and the scrape-time collector
 //! - `error`: `ApiError`, the JSON error every failure is answered with
+//! - `history`: `/api/v1/history/…` (stored trends, spectra, waterfall,
+//!   compare; storing the live spectrum, marking a reference)
 //! - `gate`: the bound on request-time DSP (blocking threads, N at once)
 //! - `reload`: `POST /api/v1/reload` (config reload, bearer token)
 //! - `auth`: basic auth for every route (`[server] web_config` users)
@@ -22,6 +24,7 @@ pub mod auth;
 pub mod error;
 pub mod export;
 pub mod gate;
+pub mod history;
 pub mod metrics;
 pub mod openapi;
 pub mod page;
@@ -153,6 +156,27 @@ pub fn router_with(st: HttpState) -> Router {
         .route("/api/v1/events", get(alarms::events))
         .route("/api/v1/events/{id}", get(alarms::event))
         .route("/api/v1/events/{id}/waveform", get(alarms::event_waveform))
+        .route("/api/v1/history/channels/{name}/trend", get(history::trend))
+        .route(
+            "/api/v1/history/channels/{name}/spectra",
+            get(history::list_spectra).post(history::store_spectrum),
+        )
+        .route(
+            "/api/v1/history/channels/{name}/waterfall",
+            get(history::waterfall),
+        )
+        .route(
+            "/api/v1/history/channels/{name}/compare",
+            get(history::compare),
+        )
+        .route(
+            "/api/v1/history/spectra/{id}",
+            get(history::stored_spectrum),
+        )
+        .route(
+            "/api/v1/history/spectra/{id}/reference",
+            post(history::mark_reference),
+        )
         .route("/api/v1/openapi.json", get(openapi::openapi_json))
         .route_layer(middleware::from_fn_with_state(st.clone(), count_matched))
         .fallback(count_unmatched)

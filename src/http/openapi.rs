@@ -19,7 +19,7 @@ use utoipa::openapi::security::{HttpAuthScheme, HttpBuilder, SecurityScheme};
 use utoipa::OpenApi;
 
 use crate::http::error::{ApiError, ErrorBody};
-use crate::http::{alarms, api, page, projection, reload};
+use crate::http::{alarms, api, history, page, projection, reload};
 
 /// The document: every route of the router.
 #[derive(OpenApi)]
@@ -53,6 +53,13 @@ a machinery protection or safety system."
         alarms::events,
         alarms::event,
         alarms::event_waveform,
+        history::trend,
+        history::list_spectra,
+        history::store_spectrum,
+        history::stored_spectrum,
+        history::waterfall,
+        history::compare,
+        history::mark_reference,
         openapi_json,
     ),
     components(schemas(ErrorBody)),
@@ -61,6 +68,8 @@ a machinery protection or safety system."
         (name = "channels", description = "Channels: settings, levels, spectra, waveforms, trends"),
         (name = "alarms", description = "Alarm states and the operator actions (bearer token)"),
         (name = "events", description = "The alarm journal and waveform captures"),
+        (name = "history", description = "The history file: stored trends and spectra, \
+waterfall, comparison with a reference (`[history]`)"),
         (name = "config", description = "Config reload (bearer token)"),
         (name = "health", description = "Liveness and readiness"),
         (name = "metrics", description = "Prometheus exposition"),

@@ -76,6 +76,16 @@ pub const ASSETS: &[Asset] = &[
         body: include_str!("../../assets/web/channel.js"),
     },
     Asset {
+        name: "history.js",
+        content_type: "text/javascript; charset=utf-8",
+        body: include_str!("../../assets/web/history.js"),
+    },
+    Asset {
+        name: "histplot.js",
+        content_type: "text/javascript; charset=utf-8",
+        body: include_str!("../../assets/web/histplot.js"),
+    },
+    Asset {
         name: "trend.js",
         content_type: "text/javascript; charset=utf-8",
         body: include_str!("../../assets/web/trend.js"),

@@ -12,6 +12,13 @@
 //! `dsp::trend::MAX_POINTS` seconds are thinned to that many points by
 //! taking each run of consecutive points' extreme (same side) and its time.
 //!
+//! With `[history]`, an alarm whose series the history file holds is
+//! fitted over the stored aggregates instead: the last
+//! `[history] projection_window_s`, one point per stored interval (its
+//! `max` column for a high limit, `min` for a low one), thinned the same
+//! way; an alarm without stored rows falls back to the in-memory trend.
+//! Each alarm's answer says which (`source`) and the window fitted.
+//!
 //! A projection is guidance for planning (README "Time to limit"), not a
 //! prediction of failure.
 
@@ -24,11 +31,13 @@ use utoipa::{IntoParams, ToSchema};
 use crate::alarm::engine::AlarmView;
 use crate::clock::unix_now_ns;
 use crate::config::alarms::Direction;
-use crate::config::{AlarmTarget, ChannelAlarm};
+use crate::config::{AlarmTarget, ChannelAlarm, ChannelSpec};
 use crate::dsp::trend::{fit_trend, Growth, Projection, Reach, TrendError, MAX_POINTS};
+use crate::history::HistoryShared;
 use crate::http::api::{channel_of, rfc3339_ns, Params};
 use crate::http::error::{ApiError, ErrorBody};
 use crate::http::Live;
+use crate::pipeline::state::ChannelShared;
 use crate::pipeline::trend::{TrendColumns, OVERALL_MEASURES};
 
 /// The significance level of the Mann–Kendall test, and 1 − the
@@ -59,6 +68,13 @@ pub fn points(cols: &TrendColumns, series: usize, high: bool) -> (Vec<f64>, Vec<
         .zip(col)
         .filter_map(|(&t, v)| v.map(|v| (t as f64, f64::from(v))))
         .collect();
+    thin(&raw, high)
+}
+
+/// `raw` (time, value; oldest first) thinned to at most `MAX_POINTS`:
+/// runs of ⌈len / MAX_POINTS⌉ consecutive points, each run's extreme
+/// (the largest for `high`, else the smallest) at its own time.
+pub fn thin(raw: &[(f64, f64)], high: bool) -> (Vec<f64>, Vec<f64>) {
     let k = raw.len().div_ceil(MAX_POINTS).max(1);
     let better = |a: f64, b: f64| if high { a > b } else { a < b };
     raw.chunks(k)
@@ -68,6 +84,138 @@ pub fn points(cols: &TrendColumns, series: usize, high: bool) -> (Vec<f64>, Vec<
                 .reduce(|best, p| if better(p.1, best.1) { p } else { best })
         })
         .unzip()
+}
+
+/// The name of the history series an alarm watches (`schema::OVERALL_SERIES`
+/// or the band's name).
+pub fn stored_series(spec: &ChannelSpec, target: AlarmTarget) -> Option<&str> {
+    match target {
+        AlarmTarget::OverallRms => Some("overall-rms"),
+        AlarmTarget::OverallPeak => Some("overall-peak"),
+        AlarmTarget::CrestFactor => Some("overall-crest-factor"),
+        AlarmTarget::Band(j) => spec.bands.get(j).map(|b| b.name.as_str()),
+    }
+}
+
+fn direction_of(a: &ChannelAlarm) -> Direction {
+    a.spec
+        .alert
+        .or(a.spec.danger)
+        .map_or(Direction::High, |l| l.direction)
+}
+
+/// The (times, values) a fit is given.
+pub type Fitted = (Vec<f64>, Vec<f64>);
+
+/// Where the points of one alarm's fit came from.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Source {
+    /// The channel's in-memory trend (per-second extremes).
+    Memory,
+    /// The history file (per-interval extremes).
+    History,
+}
+
+impl Source {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Source::Memory => "memory",
+            Source::History => "history",
+        }
+    }
+}
+
+/// The points of one alarm's fit and where they came from.
+#[derive(Debug, Clone, PartialEq)]
+pub struct AlarmPoints {
+    pub x: Vec<f64>,
+    pub y: Vec<f64>,
+    pub source: Source,
+    /// Seconds of data asked for (the window fitted).
+    pub window_s: f64,
+}
+
+/// Per alarm of `spec`, its stored per-interval extremes (`max` for a high
+/// limit, `min` for a low one) from `from_s` on, thinned as [`points`]
+/// thins; None for an alarm whose series has no stored row there.
+///
+/// # Errors
+/// The file's error.
+pub fn stored_points(
+    conn: &rusqlite::Connection,
+    spec: &ChannelSpec,
+    from_s: i64,
+) -> Result<Vec<Option<Fitted>>, crate::history::query::QueryError> {
+    spec.alarms
+        .iter()
+        .map(|a| {
+            let Some(series) = stored_series(spec, a.target) else {
+                return Ok(None);
+            };
+            let high = direction_of(a) == Direction::High;
+            let raw = crate::history::query::extremes(conn, &spec.name, series, from_s, high)?;
+            Ok((!raw.is_empty()).then(|| thin(&raw, high)))
+        })
+        .collect()
+}
+
+/// The points of every alarm of `ch`: the stored ones over the last
+/// `history_window_s` where the history has them, else the in-memory
+/// trend's over its last `memory_seconds`. Opens the history file (when
+/// there is one) read-only: call it on a blocking thread.
+pub fn alarm_points(
+    history: Option<&HistoryShared>,
+    ch: &ChannelShared,
+    memory_seconds: usize,
+    history_window_s: Option<u64>,
+    now_s: f64,
+) -> Vec<AlarmPoints> {
+    let spec = &ch.spec;
+    let stored = history.filter(|h| h.spec.file.exists()).and_then(|h| {
+        let window = history_window_s.unwrap_or(h.spec.projection_window_s);
+        let from = (now_s as i64).saturating_sub(window as i64);
+        let read = crate::history::schema::open_read(&h.spec.file)
+            .map_err(|e| e.to_string())
+            .and_then(|c| stored_points(&c, spec, from).map_err(|e| e.to_string()));
+        match read {
+            Ok(p) => Some((p, window)),
+            Err(e) => {
+                tracing::warn!(error = %e, channel = %spec.name,
+                        "time to limit: cannot read the history; using the in-memory trend");
+                None
+            }
+        }
+    });
+    let mut cols = None;
+    spec.alarms
+        .iter()
+        .enumerate()
+        .map(|(i, a)| {
+            if let Some((p, window)) = &stored {
+                if let Some(Some((x, y))) = p.get(i) {
+                    return AlarmPoints {
+                        x: x.clone(),
+                        y: y.clone(),
+                        source: Source::History,
+                        window_s: *window as f64,
+                    };
+                }
+            }
+            let cols =
+                cols.get_or_insert_with(|| ch.trend.read(memory_seconds, now_s.max(0.0) as u64));
+            let (x, y) = points(
+                cols,
+                series_of(a.target),
+                direction_of(a) == Direction::High,
+            );
+            AlarmPoints {
+                x,
+                y,
+                source: Source::Memory,
+                window_s: memory_seconds as f64,
+            }
+        })
+        .collect()
 }
 
 /// One level's answer.
@@ -85,6 +233,8 @@ pub struct AlarmProjection {
     pub name: String,
     pub direction: Direction,
     pub points: usize,
+    pub source: Source,
+    pub window_s: f64,
     /// The fit and the test, or why there is none.
     pub fit: Result<Projection, TrendError>,
     pub levels: Vec<LevelReach>,
@@ -99,30 +249,53 @@ pub fn project_alarms(
     growth: Growth,
     now_s: f64,
 ) -> Vec<AlarmProjection> {
+    let pts: Vec<AlarmPoints> = alarms
+        .iter()
+        .map(|a| {
+            let (x, y) = points(
+                cols,
+                series_of(a.target),
+                direction_of(a) == Direction::High,
+            );
+            AlarmPoints {
+                x,
+                y,
+                source: Source::Memory,
+                window_s: cols.t.len() as f64,
+            }
+        })
+        .collect();
+    project_points(alarms, views, &pts, growth, now_s)
+}
+
+/// The projections of `alarms` over their points `pts` (one per alarm).
+pub fn project_points(
+    alarms: &[ChannelAlarm],
+    views: &[AlarmView],
+    pts: &[AlarmPoints],
+    growth: Growth,
+    now_s: f64,
+) -> Vec<AlarmProjection> {
     alarms
         .iter()
         .zip(views)
-        .map(|(a, v)| {
-            let direction = a
-                .spec
-                .alert
-                .or(a.spec.danger)
-                .map_or(Direction::High, |l| l.direction);
+        .zip(pts)
+        .map(|((a, v), p)| {
+            let direction = direction_of(a);
             let high = direction == Direction::High;
-            let (x, y) = points(cols, series_of(a.target), high);
             let limits: Vec<(&'static str, f64)> =
                 [("alert", v.alert_limit), ("danger", v.danger_limit)]
                     .into_iter()
                     .filter_map(|(l, lim)| lim.filter(|v| v.is_finite()).map(|v| (l, v)))
                     .collect();
-            let fit = fit_trend(&x, &y, growth, ALPHA);
+            let fit = fit_trend(&p.x, &p.y, growth, ALPHA);
             let levels = match &fit {
-                Ok(p) => limits
+                Ok(f) => limits
                     .iter()
                     .map(|&(level, limit)| LevelReach {
                         level,
                         limit,
-                        reach: p.reach(limit, high, now_s),
+                        reach: f.reach(limit, high, now_s),
                     })
                     .collect(),
                 Err(_) => Vec::new(),
@@ -130,7 +303,9 @@ pub fn project_alarms(
             AlarmProjection {
                 name: a.name.clone(),
                 direction,
-                points: x.len(),
+                points: p.x.len(),
+                source: p.source,
+                window_s: p.window_s,
                 fit,
                 levels,
             }
@@ -150,7 +325,20 @@ pub struct ChannelReach {
 
 /// [`ChannelReach`] of `ch` at `now_s`, over its whole in-memory trend,
 /// exponential growth (the API's defaults).
-pub fn channel_reach(ch: &crate::pipeline::state::ChannelShared, now_s: f64) -> ChannelReach {
+pub fn channel_reach(ch: &ChannelShared, now_s: f64) -> ChannelReach {
+    channel_reach_in(None, ch, now_s)
+}
+
+/// [`ChannelReach`] of `ch` at `now_s` with the API's defaults: over the
+/// stored history's `projection_window_s` where it has the alarm's series,
+/// else the whole in-memory trend; exponential growth. Reads the history
+/// file when there is one (a blocking read: the scrape's render runs on a
+/// blocking thread, within its time budget).
+pub fn channel_reach_in(
+    history: Option<&HistoryShared>,
+    ch: &ChannelShared,
+    now_s: f64,
+) -> ChannelReach {
     let spec = &ch.spec;
     let board = ch.alarm_board.load();
     let Some(board) = board
@@ -162,13 +350,11 @@ pub fn channel_reach(ch: &crate::pipeline::state::ChannelShared, now_s: f64) -> 
             alarms: vec![[None, None]; spec.alarms.len()],
         };
     };
-    let cols = ch
-        .trend
-        .read(ch.trend.capacity_seconds(), now_s.max(0.0) as u64);
-    let alarms = project_alarms(
+    let pts = alarm_points(history, ch, ch.trend.capacity_seconds(), None, now_s);
+    let alarms = project_points(
         &spec.alarms,
         &board.alarms,
-        &cols,
+        &pts,
         Growth::Exponential,
         now_s,
     )
@@ -277,8 +463,17 @@ pub struct AlarmProjectionBody {
     unit: &'static str,
     /// "high" or "low": which side of the limits is abnormal.
     direction: &'static str,
-    /// Points fitted (per-second extremes, thinned to at most 513).
+    /// Points fitted (per-second extremes of the in-memory trend, or
+    /// per-interval extremes of the stored history; thinned to at most 513).
     points: usize,
+    /// Where the points came from: "history" (the stored aggregates, when
+    /// `[history]` holds the alarm's series in the window) or "memory" (the
+    /// channel's in-memory trend).
+    source: &'static str,
+    /// Seconds of data fitted: the in-memory trend's (`seconds`), or the
+    /// stored history's (`[history] projection_window_s`, or `seconds` if
+    /// less).
+    window_s: f64,
     /// Why there is no fit (too few points, a value not above zero for
     /// the exponential model), else null.
     no_fit: Option<String>,
@@ -293,7 +488,8 @@ pub struct ProjectionBody {
     channel: String,
     /// When it was computed, RFC 3339.
     at: Option<String>,
-    /// Seconds of trend fitted.
+    /// Seconds of in-memory trend fitted (for alarms whose source is
+    /// "memory"; each alarm says its own `source` and `window_s`).
     seconds: usize,
     growth: &'static str,
     /// The Mann–Kendall significance level (and 1 − the confidence of the
@@ -333,8 +529,9 @@ fn level_body(l: &LevelReach, now_s: f64) -> LevelBody {
 }
 
 /// `GET /api/v1/channels/{name}/projection?seconds=N&growth=...`: for each
-/// alarm of the channel, the trend of what it watches over the channel's
-/// in-memory trend and the time its alert and danger limits are reached
+/// alarm of the channel, the trend of what it watches over the stored
+/// history (`[history]`, where it holds the series) or the channel's
+/// in-memory trend, and the time its alert and danger limits are reached
 /// at that pace (module docs; README "Time to limit").
 #[utoipa::path(get, path = "/api/v1/channels/{name}/projection", tag = "channels",
     params(("name" = String, Path, description = "Channel name"), ProjectionQuery),
@@ -349,12 +546,12 @@ pub async fn projection(
     q: Result<Query<Vec<(String, String)>>, QueryRejection>,
 ) -> Result<Json<ProjectionBody>, ApiError> {
     let params = Params::of::<ProjectionQuery>(q)?;
-    let ch = channel_of(&st.app, &name)?;
+    let ch = channel_of(&st.app, &name)?.clone();
     let capacity = ch.trend.capacity_seconds();
-    let seconds = match params.get("seconds") {
-        None => capacity,
-        Some(v) => match v.trim().parse::<usize>() {
-            Ok(n) if n >= 10 => n.min(capacity),
+    let asked = match params.get("seconds") {
+        None => None,
+        Some(v) => match v.trim().parse::<u64>() {
+            Ok(n) if n >= 10 => Some(n),
             _ => {
                 return Err(ApiError::BadQuery(format!(
                     "seconds={v:?} is not a whole number of seconds, 10 or more"
@@ -362,6 +559,7 @@ pub async fn projection(
             }
         },
     };
+    let seconds = asked.map_or(capacity, |n| (n.min(capacity as u64)) as usize);
     let growth = match params.get("growth") {
         None | Some("exponential") => Growth::Exponential,
         Some("linear") => Growth::Linear,
@@ -373,7 +571,24 @@ pub async fn projection(
     };
     let now_ns = unix_now_ns();
     let now_s = now_ns as f64 * 1e-9;
-    let cols = ch.trend.read(seconds, now_ns / 1_000_000_000);
+    // The stored history's window: projection_window_s, or less if asked.
+    let history = st.app.history.clone();
+    let window = history.as_ref().map(|h| {
+        asked.map_or(h.spec.projection_window_s, |n| {
+            n.min(h.spec.projection_window_s)
+        })
+    });
+    let pts = {
+        let ch = ch.clone();
+        tokio::task::spawn_blocking(move || {
+            alarm_points(history.as_deref(), &ch, seconds, window, now_s)
+        })
+        .await
+        .map_err(|e| {
+            tracing::error!(error = %e, "a projection task failed");
+            ApiError::Internal
+        })?
+    };
     let spec = &ch.spec;
     let views: Vec<AlarmView> = ch
         .alarm_board
@@ -398,7 +613,7 @@ pub async fn projection(
         };
         vec![none; spec.alarms.len()]
     };
-    let alarms = project_alarms(&spec.alarms, &views, &cols, growth, now_s)
+    let alarms = project_points(&spec.alarms, &views, &pts, growth, now_s)
         .into_iter()
         .zip(&spec.alarms)
         .map(|(p, a)| {
@@ -435,6 +650,8 @@ pub async fn projection(
                     Direction::Low => "low",
                 },
                 points: p.points,
+                source: p.source.as_str(),
+                window_s: p.window_s,
                 no_fit,
                 test,
                 slope,
@@ -450,7 +667,8 @@ pub async fn projection(
         significance: ALPHA,
         method: "Mann-Kendall test (Mann 1945, Kendall 1975; ties and continuity corrected, \
                  two-sided); Theil-Sen slope with Sen's (1968) interval, on ln(value) for \
-                 exponential growth; per-second extremes of the in-memory trend",
+                 exponential growth; per-interval extremes of the stored history where it \
+                 holds the series, else per-second extremes of the in-memory trend",
         caution: PROJECTION_CAUTION,
         alarms,
     }))

@@ -12,8 +12,10 @@
 #    PLAYWRIGHT_SKIP_BROWSER_DOWNLOAD=1: no browser is downloaded), through
 #    every view: overview, channel (spectrum, units, envelope, waveform,
 #    band signal, trend, CSV/SVG downloads), alarms (danger shown, wrong
-#    token refused, acknowledge), a capture and its downloads, a tablet's
-#    width; no console error, no request leaving the daemon (page.mjs
+#    token refused, acknowledge), a capture and its downloads, the history
+#    of pump-de (stored trend, waterfall, a stored spectrum opened; on the
+#    fast demo: store now, mark as reference, compare), a tablet's width;
+#    no console error, no request leaving the daemon (page.mjs
 #    lists every check);
 # 3. screenshots go to target/page-screenshots/ (README "The operator page").
 #

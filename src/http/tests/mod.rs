@@ -177,6 +177,7 @@ mod encoder;
 mod endpoints;
 mod export;
 mod exposition;
+mod history;
 mod live;
 mod openapi;
 mod page;

@@ -177,8 +177,9 @@ async fn each_handler_takes_exactly_the_documented_query_keys() {
         checked += 1;
     }
     // spectrum, waveform, trend, projection, one capture, a capture's
-    // waveform.
-    assert_eq!(checked, 6);
+    // waveform; the history's trend, spectra list, one spectrum,
+    // waterfall, compare.
+    assert_eq!(checked, 11);
 }
 
 /// Every `$ref` in `v`.
@@ -258,6 +259,8 @@ fn the_document_is_well_formed_openapi_3_1() {
     let expected: BTreeSet<String> = [
         "POST /api/v1/alarms/{channel}/{band}/ack",
         "POST /api/v1/alarms/{channel}/{band}/relearn",
+        "POST /api/v1/history/channels/{name}/spectra",
+        "POST /api/v1/history/spectra/{id}/reference",
         "POST /api/v1/reload",
     ]
     .map(String::from)

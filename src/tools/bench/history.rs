@@ -16,6 +16,12 @@
 //!   (1440 intervals, 144 spectra of the rig's own published spectrum per
 //!   channel), written through the store's statements, then the file's
 //!   pages in use per channel per day, split into aggregates and spectra.
+//! - `query`: into the same file, a year of one channel's 15 series as
+//!   retention leaves them at the defaults (hourly rows for days 31..365,
+//!   one a minute for the last 30); then the latency (p50, p99) of the
+//!   two reads the history endpoints do most: a year's trend of one series
+//!   merged to 1000 points, and a day's waterfall (144 stored spectra,
+//!   512 columns), each on a fresh read-only connection as a request has.
 
 use std::sync::Arc;
 use std::time::{Duration, Instant};
@@ -24,7 +30,7 @@ use super::dsp::DspRig;
 use super::input::{config_text, UNUSED_SOURCE};
 use super::{io_err, BenchArgs, BenchError, Row, Summary, FS, G_PER_COUNT};
 use crate::history::store::{self, SeriesIds};
-use crate::history::{schema, Aggregate, IntervalRecord, SpectrumRecord, StoreReason};
+use crate::history::{query, schema, Aggregate, IntervalRecord, SpectrumRecord, StoreReason};
 
 /// Five bands more than the bench's own five: 10 per channel.
 const EXTRA_BANDS: &str =
@@ -297,6 +303,122 @@ fn size_rows(
         "history size: one simulated day at the defaults for {CH} channels of 10 bands (+5 overall series), one transaction an hour; spectra of {} lines from the rig's own published spectrum ({} bytes raw each)",
         power.len(),
         4 * power.len()
+    ));
+    drop(conn);
+    query_rows(&cfg, &file, t0, rows, notes)
+}
+
+/// The `q`-quantile (0..=1) of `v` by the nearest rank.
+fn quantile(v: &[f64], q: f64) -> f64 {
+    let mut s: Vec<f64> = v.to_vec();
+    s.sort_by(f64::total_cmp);
+    if s.is_empty() {
+        return f64::NAN;
+    }
+    let rank = ((q * s.len() as f64).ceil() as usize).clamp(1, s.len());
+    s[rank - 1]
+}
+
+/// A year of the first channel's series before `t0` (module docs), then
+/// the query latencies.
+fn query_rows(
+    cfg: &crate::config::Config,
+    file: &std::path::Path,
+    t0: u64,
+    rows: &mut Vec<Row>,
+    notes: &mut Vec<String>,
+) -> Result<(), BenchError> {
+    const DAY: u64 = 86_400;
+    const RUNS: usize = 200;
+    let sql = |e: rusqlite::Error| BenchError::Lost(format!("history query: {e}"));
+    let open = |e: schema::OpenError| BenchError::Lost(format!("history query: {e}"));
+    let qerr = |e: query::QueryError| BenchError::Lost(format!("history query: {e}"));
+    let Some(spec) = cfg.channels.first().map(|c| Arc::new(c.clone())) else {
+        return Err(BenchError::Config("no channel".into()));
+    };
+    let mut conn = schema::open_write(file).map_err(open)?;
+    let mut ids = SeriesIds::default();
+    let year_start = t0 - 365 * DAY;
+    let thin_from = t0 - 30 * DAY;
+    let mut written = 0usize;
+    let mut t = year_start;
+    while t < t0 {
+        let tx = conn.transaction().map_err(sql)?;
+        let end = (t + DAY).min(t0);
+        while t < end {
+            let span: u32 = if t < thin_from { 3600 } else { 60 };
+            let series = (0..5 + spec.bands.len())
+                .map(|k| {
+                    let mut a = Aggregate::default();
+                    // A slow rise with a daily swing, as a band's level.
+                    let v = (1 + k) as f64
+                        * (1.0 + (t - year_start) as f64 / (365.0 * DAY as f64))
+                        * (1.0
+                            + 0.05 * ((t % DAY) as f64 / DAY as f64 * std::f64::consts::TAU).sin());
+                    a.add(v, Some(0));
+                    a
+                })
+                .collect();
+            let rec = IntervalRecord {
+                spec: spec.clone(),
+                t_s: t,
+                span_s: span,
+                series,
+                lost: None,
+            };
+            store::insert_interval(&tx, &mut ids, &rec).map_err(sql)?;
+            written += 5 + spec.bands.len();
+            t += u64::from(span);
+        }
+        tx.commit().map_err(sql)?;
+    }
+    drop(conn);
+    let name = spec.name.clone();
+    let (to_s, from_s) = ((t0 + DAY) as i64, (t0 + DAY - 365 * DAY) as i64);
+    let mut trend_ms = Vec::with_capacity(RUNS);
+    let mut trend_rows = 0;
+    for _ in 0..RUNS {
+        let start = Instant::now();
+        let conn = schema::open_read(file).map_err(open)?;
+        let got =
+            query::series_points(&conn, &name, "overall-rms", from_s, to_s, 1000).map_err(qerr)?;
+        trend_ms.push(start.elapsed().as_secs_f64() * 1e3);
+        trend_rows = got.stored;
+    }
+    let ask = query::WaterfallAsk {
+        from_ns: (t0 as i64) * 1_000_000_000,
+        to_ns: ((t0 + DAY) as i64) * 1_000_000_000,
+        fmin_hz: None,
+        fmax_hz: None,
+        columns: 512,
+        envelope: false,
+        max_spectra: 200,
+    };
+    let mut fall_ms = Vec::with_capacity(RUNS / 4);
+    let mut fall_rows = 0;
+    for _ in 0..RUNS / 4 {
+        let start = Instant::now();
+        let conn = schema::open_read(file).map_err(open)?;
+        let got = query::waterfall(&conn, &name, &ask).map_err(qerr)?;
+        fall_ms.push(start.elapsed().as_secs_f64() * 1e3);
+        fall_rows = got.map_or(0, |w| w.rows.len());
+    }
+    for (what, v) in [
+        (
+            format!("query a year's trend ({trend_rows} rows -> 1000 points)"),
+            &trend_ms,
+        ),
+        (
+            format!("query a day's waterfall ({fall_rows} spectra x 512 columns)"),
+            &fall_ms,
+        ),
+    ] {
+        rows.push(row(format!("{what} p50"), "ms", &[quantile(v, 0.5)]));
+        rows.push(row(format!("{what} p99"), "ms", &[quantile(v, 0.99)]));
+    }
+    notes.push(format!(
+        "history query: {written} aggregate rows of a year written for one channel beside the simulated day; {RUNS} trend and {} waterfall reads, each opening its own read-only connection",
+        RUNS / 4
     ));
     Ok(())
 }

@@ -224,6 +224,89 @@ try {
     await checkDownload(page, `#channel a.download:text-is("${link}")`, kind, "pump-de");
   }
 
+  // --- History of pump-de (config/demo.toml [history]: a trend row every
+  // 5 s, a stored spectrum every 20 s). Waits (bounded) until the file
+  // holds two spectra, then opens the view from the channel view's link.
+  const histApi = `${base}/api/v1/history/channels/pump-de`;
+  // How many entries of `key` are not null.
+  const countOf = async (url, key) => {
+    const r = await fetch(url, { signal: AbortSignal.timeout(5000) }).catch(() => null);
+    return r && r.ok ? (await r.json())[key].filter((v) => v !== null).length : 0;
+  };
+  let storedCount = 0, rowCount = 0;
+  for (const until = Date.now() + 70000; Date.now() < until;) {
+    storedCount = await countOf(`${histApi}/spectra`, "spectra");
+    rowCount = await countOf(`${histApi}/trend?series=bpfo&from=-1h`, "mean");
+    if (storedCount >= 2 && rowCount >= 4) break;
+    await new Promise((ok) => setTimeout(ok, 1000));
+  }
+  if (storedCount < 2) fail(`only ${storedCount} spectra stored 70 s into the demo (spectrum_every_s = 20)`);
+  if (rowCount < 4) fail(`only ${rowCount} trend rows with a value stored 70 s into the demo (interval_s = 5)`);
+  await page.click("#channel-history");
+  await page.locator("#sp-table tbody button[data-id]").first().waitFor({ timeout: 20000 });
+  await page.locator('#hist-waterfall[data-rows]').waitFor({ timeout: 20000 });
+  await page.locator('#hist-trend[data-points]').waitFor();
+  const histPoints = Number(await page.getAttribute("#hist-trend", "data-points"));
+  if (histPoints < 4) fail(`history trend draws ${histPoints} points, the API had ${rowCount} (a row every 5 s)`);
+  if (!/^bpfo /.test(await page.textContent("#hist-trend-facts"))) fail("the history view does not open on pump-de's alarm (bpfo)");
+  const histInk = await inkOf(page, "#hist-trend");
+  if (histInk < 200) fail(`history trend canvas has only ${histInk} dark pixels`);
+  // The waterfall's cells: colours of the palette, never grey (the page's
+  // background, grid and text are all greys).
+  const coloured = (sel) => page.$eval(sel, (c) => {
+    const d = c.getContext("2d").getImageData(0, 0, c.width, c.height).data;
+    let n = 0;
+    for (let i = 0; i < d.length; i += 4) if (Math.max(d[i], d[i + 1], d[i + 2]) - Math.min(d[i], d[i + 1], d[i + 2]) > 12) n++;
+    return n;
+  });
+  const wfCells = await coloured("#hist-waterfall");
+  if (wfCells < 5000) fail(`waterfall canvas has only ${wfCells} coloured pixels`);
+  if ((await coloured("#hist-legend")) < 500) fail("the waterfall's colour scale is not drawn");
+  const wfRows = Number(await page.getAttribute("#hist-waterfall", "data-rows"));
+  if (wfRows < 2) fail(`waterfall has ${wfRows} rows`);
+  // Both colour maps run dark to light: CIE 1976 L* (from sRGB by IEC
+  // 61966-2-1, D65 white; formulas from memory) rises along each ramp,
+  // so lightness alone orders the levels (colour-blind-safe option).
+  const lstar = await page.evaluate(async () => {
+    const { PALETTES, colourAt } = await import("/assets/histplot.js");
+    const lin = (c) => { const v = c / 255; return v <= 0.04045 ? v / 12.92 : ((v + 0.055) / 1.055) ** 2.4; };
+    const out = {};
+    for (const [k, p] of Object.entries(PALETTES)) {
+      out[k] = [];
+      for (let i = 0; i <= 100; i++) {
+        const [r, g, b] = colourAt(p.stops, i / 100);
+        const y = 0.2126 * lin(r) + 0.7152 * lin(g) + 0.0722 * lin(b);
+        out[k].push(y > 216 / 24389 ? 116 * Math.cbrt(y) - 16 : (24389 / 27) * y);
+      }
+    }
+    return out;
+  });
+  for (const [k, ls] of Object.entries(lstar)) {
+    for (let i = 1; i < ls.length; i++) if (!(ls[i] > ls[i - 1])) fail(`palette ${k}: L* does not rise at ${i}% (${ls[i - 1].toFixed(1)} -> ${ls[i].toFixed(1)})`);
+    if (ls[ls.length - 1] - ls[0] < 60) fail(`palette ${k}: L* spans only ${(ls[ls.length - 1] - ls[0]).toFixed(1)}`);
+  }
+  if (!lstar["blue-yellow"]) fail("no colour-blind-safe palette offered");
+  const projText = await page.textContent("#hist-projection");
+  if (!/projection|no alarm/.test(projText)) fail(`projection readout "${projText}"`);
+  if (!/guidance/.test(await page.textContent("#history-caution"))) fail("history caution missing");
+  await page.screenshot({ path: path.join(shots, "history-pump-de.png"), fullPage: true });
+  await page.selectOption("#wf-palette", "blue-yellow");
+  await page.fill("#wf-fmin", "0");
+  await page.fill("#wf-fmax", "1000");
+  await page.click("#wf-apply");
+  await page.locator('#wf-facts:has-text("Hz in")').waitFor();
+  await page.waitForTimeout(500);
+  if (!/^0–1000 Hz|^0–99\d/.test((await page.textContent("#wf-facts")).split(" · ")[1] || "")) {
+    fail(`waterfall crop reads "${await page.textContent("#wf-facts")}"`);
+  }
+  // One stored spectrum, opened from the list, is plotted.
+  await page.locator("#sp-table tbody button[data-id]").first().click();
+  await page.locator("#hist-spectrum[data-shown]").waitFor();
+  const spInk = await inkOf(page, "#hist-spectrum");
+  if (spInk < 300) fail(`stored spectrum plot has only ${spInk} dark pixels`);
+  if (!/stored #\d+ at /.test(await page.textContent("#sp-facts"))) fail(`stored spectrum facts "${await page.textContent("#sp-facts")}"`);
+  await page.screenshot({ path: path.join(shots, "history-pump-de-spectrum.png"), fullPage: true });
+
   // --- Alarms on the sped-up demo: BPFO trips to danger (latched). The
   // wrong token is entered first, so that both acknowledges come within a
   // second of the trip, while the simulated defect is still in danger.
@@ -279,12 +362,39 @@ try {
     await checkDownload(page, `#capture-downloads a:text-is("${link}")`, kind, null);
   }
 
+  // --- History on the sped-up demo with the token (kept in this tab by
+  // the alarm step): store the live spectrum now, mark it as reference,
+  // compare the shown spectrum with it (overlay, dB per line and band).
+  await page.goto(`${fast}/#/history/pump-de`, { waitUntil: "load" });
+  await page.locator("#sp-table tbody button[data-id]").first().waitFor({ timeout: 30000 });
+  await page.click("#sp-store");
+  await page.locator('#sp-message[data-outcome="ok"]').waitFor();
+  const storedMsg = await page.textContent("#sp-message");
+  const newId = (storedMsg.match(/#(\d+)/) || [])[1];
+  if (!newId) fail(`store now says "${storedMsg}"`);
+  // The stored one is shown at once (the sped-up simulator's clock runs
+  // ahead of the PC's, so the list up to "now" may not hold it yet).
+  await page.locator(`#hist-spectrum[data-shown="${newId}"]`).waitFor();
+  await page.click("#sp-reference");
+  await page.locator('#sp-message:has-text("is now the reference")').waitFor();
+  const marked = await (await fetch(`${fast}/api/v1/history/spectra/${newId}`, { signal: AbortSignal.timeout(5000) })).json();
+  if (!(marked.stored && marked.stored.reference === true)) fail(`#${newId} is not marked as reference in the API after the click`);
+  await page.locator('#sp-facts:has-text("the reference")').waitFor();
+  await page.selectOption("#cmp-of", "live");
+  await page.locator("#cmp:not([hidden])").waitFor();
+  await page.locator("#cmp-bands tbody tr").first().waitFor();
+  const cmpRows = await page.$$eval("#cmp-bands tbody tr", (r) => r.map((x) => x.textContent));
+  if (!cmpRows.some((t) => /\d dB/.test(t))) fail(`compare band table: ${cmpRows.join(" | ")}`);
+  if ((await inkOf(page, "#cmp-db")) < 200) fail("the dB difference plot is blank");
+  await page.screenshot({ path: path.join(shots, "history-compare.png"), fullPage: true });
+
   // --- A 10-inch tablet held upright (800 x 1280 CSS px): every view fits
   // the width (no sideways scrolling).
   await page.setViewportSize({ width: 800, height: 1280 });
   for (const [hash, ready, shot] of [["#/", "#channels tbody tr", "tablet-overview.png"],
     ["#/channel/pump-de", '#peak-readout[data-hz]:not([data-hz=""])', "tablet-channel.png"],
-    ["#/alarms", "#alarm-table tbody tr", "tablet-alarms.png"]]) {
+    ["#/alarms", "#alarm-table tbody tr", "tablet-alarms.png"],
+    ["#/history/pump-de", "#sp-table tbody button[data-id]", "tablet-history.png"]]) {
     await page.goto(`${fast}/${hash}`, { waitUntil: "load" });
     await page.locator(ready).first().waitFor();
     await page.waitForTimeout(300);
