@@ -323,12 +323,6 @@ pub struct ChannelReach {
     pub alarms: Vec<[Option<f64>; 2]>,
 }
 
-/// [`ChannelReach`] of `ch` at `now_s`, over its whole in-memory trend,
-/// exponential growth (the API's defaults).
-pub fn channel_reach(ch: &ChannelShared, now_s: f64) -> ChannelReach {
-    channel_reach_in(None, ch, now_s)
-}
-
 /// [`ChannelReach`] of `ch` at `now_s` with the API's defaults: over the
 /// stored history's `projection_window_s` where it has the alarm's series,
 /// else the whole in-memory trend; exponential growth. Reads the history

@@ -201,7 +201,13 @@ impl Collector for ProtoCollector {
             .app
             .channels
             .iter()
-            .map(|c| crate::http::projection::channel_reach(c, now_ns as f64 * 1e-9))
+            .map(|c| {
+                crate::http::projection::channel_reach_in(
+                    self.app.history.as_deref(),
+                    c,
+                    now_ns as f64 * 1e-9,
+                )
+            })
             .collect();
         walk(&self.app, &self.layout, now_ns, &reach, &mut sink);
         let mut out = Vec::new();

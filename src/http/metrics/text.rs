@@ -219,7 +219,7 @@ impl ReachCache {
             if fresh || ch.spec.alarms.is_empty() {
                 continue;
             }
-            *r = crate::http::projection::channel_reach(ch, now_s);
+            *r = crate::http::projection::channel_reach_in(app.history.as_deref(), ch, now_s);
             if t0.elapsed() >= REACH_BUDGET {
                 self.next = (i + 1) % n;
                 return;

@@ -337,7 +337,7 @@ impl<S: Sink> Sink for Trimmed<'_, S> {
 /// Visits every sample of `app` (ages against `now_ns`) into `sink`,
 /// leaving out what `[metrics]` trims.
 /// `reach`: per channel (by index), when its alarms reach their limits
-/// (`http::projection::channel_reach`; shorter or empty: none known).
+/// (`http::projection::channel_reach_in`; shorter or empty: none known).
 pub(crate) fn walk<S: Sink>(
     app: &AppState,
     layout: &Layout,

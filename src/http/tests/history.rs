@@ -514,4 +514,58 @@ async fn time_to_limit_fits_the_stored_history() {
     // The rows starting in the last hour: 59 or 60 (the clock's second).
     let n = j["alarms"][0]["points"].as_u64().expect("points");
     assert!((59..=60).contains(&n), "{n}");
+    time_to_limit_gauge_fits_the_stored_history(&st).await;
+}
+
+/// `bandwatch_alarm_time_to_limit_seconds` over the same stored rows: the
+/// scrape fits what the API fits by default (the stored history's
+/// window, exponential growth), so the gauge equals the API's
+/// `seconds_to_limit` but for the seconds between the two; band w (no
+/// stored value, an empty in-memory trend) has none.
+async fn time_to_limit_gauge_fits_the_stored_history(st: &Arc<AppState>) {
+    use crate::alarm::engine::{AlarmBoard, AlarmView, HealthView};
+    use crate::alarm::state::AlarmState;
+    let view = AlarmView {
+        state: AlarmState::Normal,
+        latched: false,
+        acknowledged: false,
+        since_unix_ns: 0,
+        value: None,
+        alert_limit: Some(20.0),
+        danger_limit: None,
+        transitions: [0; 4],
+        learning: None,
+    };
+    st.channels[0].alarm_board.store(Some(Arc::new(AlarmBoard {
+        health: HealthView {
+            ok: true,
+            reasons: Default::default(),
+            since_unix_ns: 0,
+        },
+        alarms: vec![view, view],
+    })));
+    let api = get(st, "/api/v1/channels/c/projection").await.json();
+    let level = &api["alarms"][0]["levels"][0];
+    assert_eq!(level["outcome"], "crossing", "{api}");
+    let want = f(&level["seconds_to_limit"]);
+    let text = metrics::Metrics::new(st.clone())
+        .render_fresh()
+        .expect("render");
+    let text = String::from_utf8(text).expect("utf-8");
+    let gauge = |band: &str| {
+        let key = format!(
+            "bandwatch_alarm_time_to_limit_seconds{{channel=\"c\",band=\"{band}\",level=\"alert\"}} "
+        );
+        text.lines()
+            .find_map(|l| l.strip_prefix(key.as_str()))
+            .map(|v| v.parse::<f64>().expect("number"))
+    };
+    let got = gauge("v").expect("a gauge for band v");
+    // The straight line reaches 20 from 6.99 in 1301 intervals of 60 s;
+    // the exponential fit (Theil–Sen on the logarithms) sooner.
+    assert!(got > 0.0 && got < 1301.0 * 60.0, "{got}");
+    assert!((got - want).abs() <= 5.0, "gauge {got}, API {want}");
+    assert_eq!(gauge("w"), None, "{text}");
+    let proto = String::from_utf8(metrics::proto::render(st.clone(), unix_now_ns)).expect("utf-8");
+    assert!(proto.contains("band=\"v\",level=\"alert\"}"), "{proto}");
 }
