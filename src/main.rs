@@ -644,6 +644,9 @@ fn check(config: &std::path::Path, state_dir: Option<&std::path::Path>, no_env: 
             w.users.len()
         );
     }
+    if let Some(h) = &c.history {
+        history_size(h, &c.channels);
+    }
     if no_env {
         return ExitCode::SUCCESS;
     }
@@ -661,6 +664,43 @@ fn check(config: &std::path::Path, state_dir: Option<&std::path::Path>, no_env: 
         eprintln!("  - {i}");
     }
     ExitCode::FAILURE
+}
+
+/// `check`: the history file's steady-state size against `max_mb`
+/// (`history::sizing`); a warning, not a failure, as it is an estimate.
+fn history_size(h: &bandwatch::config::HistorySpec, channels: &[bandwatch::config::ChannelSpec]) {
+    use bandwatch::history::sizing;
+    let e = sizing::estimate(h, channels);
+    let mb = |b: u64| b as f64 / (1u64 << 20) as f64;
+    println!(
+        "{}: about {:.0} MB at steady state: {:.0} MB of aggregates ({} rows, {} days), \
+         {:.0} MB of timer spectra at most ({} days, before compression); max_mb {:.0}",
+        h.file.display(),
+        mb(e.aggregate_bytes + e.spectra_bytes),
+        mb(e.aggregate_bytes),
+        e.rows,
+        h.keep_days,
+        mb(e.spectra_bytes),
+        h.spectra_keep_days,
+        mb(h.max_bytes)
+    );
+    if e.aggregates_over(h) {
+        eprintln!(
+            "warning: history: the aggregates alone (about {:.0} MB) exceed max_mb = {:.0}, and \
+             retention does not delete them for it: raise max_mb, or lower keep_days or \
+             thin_after_days, or raise interval_s (docs/history.md \"Sizing\")",
+            mb(e.aggregate_bytes),
+            mb(h.max_bytes)
+        );
+    } else if let Some(days) = sizing::SizeEstimate::spectra_days_fitting(&e, h) {
+        eprintln!(
+            "warning: history: max_mb = {:.0} leaves room for about {days:.0} days of timer \
+             spectra, not spectra_keep_days = {}: the oldest are deleted first \
+             (docs/history.md \"Sizing\")",
+            mb(h.max_bytes),
+            h.spectra_keep_days
+        );
+    }
 }
 
 #[cfg(test)]

@@ -276,3 +276,48 @@ fn state_dir_flag_and_state_directory_hold_a_relative_storage_dir() {
     assert!(!dir.join("data").exists(), "nothing beside the config");
     let _ = std::fs::remove_dir_all(&dir);
 }
+
+/// `check` prints the history file's steady-state size and warns (exit 0:
+/// it is an estimate) when `max_mb` cannot hold it. One channel of block
+/// 4096 (2049 lines), no band, the defaults: 5 series × (30 × 1440 + 335
+/// × 24) rows × 72 B = 18,446,400 B of aggregates; 144 spectra a day of
+/// 4 × 2049 + 512 B = 1,253,952 B a day (docs/history.md "Sizing").
+#[test]
+fn check_tells_whether_max_mb_holds_the_history() {
+    let dir = temp_dir("env-history-size");
+    let run = |max_mb: &str| {
+        let cfg = config(
+            &dir,
+            "127.0.0.1:0",
+            &format!("storage_dir = \"data\"\n\n[history]\n{max_mb}"),
+            "",
+        );
+        let out = bandwatch(
+            &["check", "--no-env", "--config", cfg.to_str().expect("utf8")],
+            Path::new("/"),
+        );
+        assert_eq!(out.status.code(), Some(0), "{}", stderr(&out));
+        (
+            String::from_utf8_lossy(&out.stdout).into_owned(),
+            stderr(&out),
+        )
+    };
+    let (out, err) = run("");
+    assert!(
+        out.contains("18 MB of aggregates (256200 rows, 365 days)"),
+        "{out}"
+    );
+    assert!(!err.contains("warning"), "{err}");
+    // (64 MiB − 18,446,400 B) / 1,253,952 B a day = 38.8 days.
+    let (_, err) = run("max_mb = 64");
+    assert!(
+        err.contains("room for about 39 days of timer spectra"),
+        "{err}"
+    );
+    let (_, err) = run("max_mb = 16");
+    assert!(
+        err.contains("the aggregates alone (about 18 MB) exceed max_mb = 16"),
+        "{err}"
+    );
+    let _ = std::fs::remove_dir_all(&dir);
+}

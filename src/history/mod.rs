@@ -25,6 +25,7 @@
 pub mod codec;
 pub mod query;
 pub mod schema;
+pub mod sizing;
 pub mod store;
 pub mod tap;
 pub mod writer;

@@ -337,6 +337,7 @@ fn query_rows(
         return Err(BenchError::Config("no channel".into()));
     };
     let mut conn = schema::open_write(file).map_err(open)?;
+    let before = store::used_bytes(&conn).map_err(sql)?;
     let mut ids = SeriesIds::default();
     let year_start = t0 - 365 * DAY;
     let thin_from = t0 - 30 * DAY;
@@ -372,7 +373,26 @@ fn query_rows(
         }
         tx.commit().map_err(sql)?;
     }
+    // The year's pages against what `check` estimates for one channel.
+    let year_bytes = store::used_bytes(&conn)
+        .map_err(sql)?
+        .saturating_sub(before);
     drop(conn);
+    if let Some(h) = &cfg.history {
+        let est = crate::history::sizing::estimate(h, std::slice::from_ref(&*spec));
+        rows.push(row(
+            "a year of one channel's aggregates, file".into(),
+            "bytes",
+            &[year_bytes as f64],
+        ));
+        let mut r = row(
+            "  bytes per row (check's estimate uses history::sizing::ROW_BYTES)".into(),
+            "bytes",
+            &[year_bytes as f64 / est.rows.max(1) as f64],
+        );
+        r.target = Some(format!("<= {}", crate::history::sizing::ROW_BYTES));
+        rows.push(r);
+    }
     let name = spec.name.clone();
     let (to_s, from_s) = ((t0 + DAY) as i64, (t0 + DAY - 365 * DAY) as i64);
     let mut trend_ms = Vec::with_capacity(RUNS);
