@@ -69,13 +69,7 @@ step "controls: the structure check catches each broken rule"
 timeout 60 python3 "$checker" selftest "$dashboard" || fail "the structure check missed a broken rule"
 
 
-bin="${BANDWATCH_BIN:-}"
-if [ -z "$bin" ]; then
-    step "cargo build --locked (debug)"
-    timeout 1800 cargo build --locked --quiet --bin bandwatch || fail "cargo build failed"
-    bin="${CARGO_TARGET_DIR:-$root/target}/debug/bandwatch"
-fi
-[ -x "$bin" ] || fail "no bandwatch binary at $bin"
+find_bandwatch_bin
 
 step "start bandwatch run --config config/demo.toml --listen 127.0.0.1:0"
 # Port 0: the kernel picks a free port, the log line names it (no race).

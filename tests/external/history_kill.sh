@@ -51,13 +51,7 @@ for tool in curl python3 timeout; do
     command -v "$tool" >/dev/null 2>&1 || fail "$tool not found"
 done
 
-bin="${BANDWATCH_BIN:-}"
-if [ -z "$bin" ]; then
-    step "cargo build --locked (debug)"
-    timeout 1800 cargo build --locked --quiet --bin bandwatch || fail "cargo build failed"
-    bin="${CARGO_TARGET_DIR:-$root/target}/debug/bandwatch"
-fi
-[ -x "$bin" ] || fail "no bandwatch binary at $bin"
+find_bandwatch_bin
 
 data="$work/data"
 db="$data/history.sqlite"

@@ -71,13 +71,7 @@ fi
 [ -n "$st" ] && [ -x "$st" ] \
     || fail "schemathesis not found: python3 -m venv .venv && .venv/bin/pip install -r tests/reference/requirements.txt"
 
-bin="${BANDWATCH_BIN:-}"
-if [ -z "$bin" ]; then
-    step "cargo build --locked (debug)"
-    timeout 1800 cargo build --locked --quiet --bin bandwatch || fail "cargo build failed"
-    bin="${CARGO_TARGET_DIR:-$root/target}/debug/bandwatch"
-fi
-[ -x "$bin" ] || fail "no bandwatch binary at $bin"
+find_bandwatch_bin
 
 # ---------------------------------------------------------------------------
 mkdir -p "$work/config"

@@ -60,13 +60,7 @@ done
 [ -d tests/external/web/node_modules/playwright-core ] \
     || fail "playwright-core not installed: (cd tests/external/web && PLAYWRIGHT_SKIP_BROWSER_DOWNLOAD=1 npm ci)"
 
-bin="${BANDWATCH_BIN:-}"
-if [ -z "$bin" ]; then
-    step "cargo build --locked (debug)"
-    timeout 1800 cargo build --locked --quiet --bin bandwatch || fail "cargo build failed"
-    bin="${CARGO_TARGET_DIR:-$root/target}/debug/bandwatch"
-fi
-[ -x "$bin" ] || fail "no bandwatch binary at $bin"
+find_bandwatch_bin
 
 # start_demo NAME CONFIG: runs `bandwatch run` on 127.0.0.1:0 with its own
 # state directory, waits for its address (10 s) and /readyz (30 s); sets

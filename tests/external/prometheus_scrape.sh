@@ -58,13 +58,7 @@ out="$(timeout 30 promtool check metrics <tests/golden/metrics.prom 2>&1)" \
 echo "   clean${out:+: $out}"
 
 # ---------------------------------------------------------------------------
-bin="${BANDWATCH_BIN:-}"
-if [ -z "$bin" ]; then
-    step "cargo build --locked (debug)"
-    timeout 1800 cargo build --locked --quiet --bin bandwatch || fail "cargo build failed"
-    bin="${CARGO_TARGET_DIR:-$root/target}/debug/bandwatch"
-fi
-[ -x "$bin" ] || fail "no bandwatch binary at $bin"
+find_bandwatch_bin
 
 step "start bandwatch run --config config/demo.toml --listen 127.0.0.1:0"
 # Port 0: the kernel picks a free port, the log line names it (no race).

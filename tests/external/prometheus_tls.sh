@@ -87,13 +87,7 @@ grep -q "^web_config = " "$work/bandwatch.toml" || fail "could not add web_confi
 echo "   $work/web.yml: user $user, hash ${hash:0:7}…"
 
 # ---------------------------------------------------------------------------
-bin="${BANDWATCH_BIN:-}"
-if [ -z "$bin" ]; then
-    step "cargo build --locked (debug)"
-    timeout 1800 cargo build --locked --quiet --bin bandwatch || fail "cargo build failed"
-    bin="${CARGO_TARGET_DIR:-$root/target}/debug/bandwatch"
-fi
-[ -x "$bin" ] || fail "no bandwatch binary at $bin"
+find_bandwatch_bin
 
 step "bandwatch check"
 out="$(timeout 30 "$bin" check --config "$work/bandwatch.toml" 2>&1)" \

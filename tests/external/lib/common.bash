@@ -1,6 +1,19 @@
 # Helpers the external checks share (sourced, not run: .ci/run runs only
 # tests/external/*.sh).
 
+# Sets `bin` to the binary under test: $BANDWATCH_BIN, or a debug build
+# of this checkout (cargo, at most 30 min). Uses the caller's `step` and
+# `fail`, and `root` (the checkout).
+find_bandwatch_bin() {
+    bin="${BANDWATCH_BIN:-}"
+    if [ -z "$bin" ]; then
+        step "cargo build --locked (debug)"
+        timeout 1800 cargo build --locked --quiet --bin bandwatch || fail "cargo build failed"
+        bin="${CARGO_TARGET_DIR:-$root/target}/debug/bandwatch"
+    fi
+    [ -x "$bin" ] || fail "no bandwatch binary at $bin"
+}
+
 stop_pid() { # pid: TERM, wait up to 10 s, then KILL
     local pid="$1"
     [ -n "$pid" ] || return 0
