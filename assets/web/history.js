@@ -11,6 +11,13 @@ import { SpectrumPlot } from "./plot.js";
 import { HistoryTrendPlot, WaterfallPlot, PALETTES } from "./histplot.js";
 import { token } from "./alarms.js";
 
+// A band's difference as shown: one decimal, a sign, never "-0.0".
+function signedDb(db) {
+  if (db == null || !Number.isFinite(db)) return "–";
+  const t = db.toFixed(1);
+  return t === "0.0" || t === "-0.0" ? "±0.0 dB" : `${db > 0 ? "+" : ""}${t} dB`;
+}
+
 const PERIOD_MS = 5000;
 const $ = (id) => document.getElementById(id);
 const OVERALL = [
@@ -209,7 +216,7 @@ async function drawSpectrum(me) {
         el("th", { scope: "row", text: b.name }),
         el("td", { class: "num", text: `${num(b.value)} ${b.unit}` }),
         el("td", { class: "num", text: `${num(b.reference)} ${b.unit}` }),
-        el("td", { class: "num", text: b.db == null ? "–" : `${b.db >= 0 ? "+" : ""}${b.db.toFixed(1)} dB` }))));
+        el("td", { class: "num", text: signedDb(b.db) }))));
     }
   } catch (e) {
     $("sp-facts").replaceChildren(badge("fault", e.message));
