@@ -225,7 +225,7 @@ try {
   }
 
   // --- History of pump-de (config/demo.toml [history]: a trend row every
-  // 5 s, a stored spectrum every 20 s). Waits (bounded) until the file
+  // second, a stored spectrum every 20 s). Waits (bounded) until the file
   // holds two spectra, then opens the view from the channel view's link.
   const histApi = `${base}/api/v1/history/channels/pump-de`;
   // How many entries of `key` are not null.
@@ -241,13 +241,13 @@ try {
     await new Promise((ok) => setTimeout(ok, 1000));
   }
   if (storedCount < 2) fail(`only ${storedCount} spectra stored 70 s into the demo (spectrum_every_s = 20)`);
-  if (rowCount < 4) fail(`only ${rowCount} trend rows with a value stored 70 s into the demo (interval_s = 5)`);
+  if (rowCount < 4) fail(`only ${rowCount} trend rows with a value stored 70 s into the demo (interval_s = 1)`);
   await page.click("#channel-history");
   await page.locator("#sp-table tbody button[data-id]").first().waitFor({ timeout: 20000 });
   await page.locator('#hist-waterfall[data-rows]').waitFor({ timeout: 20000 });
   await page.locator('#hist-trend[data-points]').waitFor();
   const histPoints = Number(await page.getAttribute("#hist-trend", "data-points"));
-  if (histPoints < 4) fail(`history trend draws ${histPoints} points, the API had ${rowCount} (a row every 5 s)`);
+  if (histPoints < 4) fail(`history trend draws ${histPoints} points, the API had ${rowCount} (a row every second)`);
   if (!/^bpfo /.test(await page.textContent("#hist-trend-facts"))) fail("the history view does not open on pump-de's alarm (bpfo)");
   const histInk = await inkOf(page, "#hist-trend");
   if (histInk < 200) fail(`history trend canvas has only ${histInk} dark pixels`);
