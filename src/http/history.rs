@@ -129,17 +129,25 @@ pub(crate) fn parse_time(key: &str, value: &str, now_s: i64) -> Result<i64, ApiE
         .map_err(|_| bad())
 }
 
-/// `from` and `to` (defaults -1d and now), Unix seconds, from ≤ to.
+/// The last second [`time_range`] reaches: 9999-12-31T23:59:59Z, the
+/// last RFC 3339 can write.
+const LAST_SECOND: i64 = 253_402_300_799;
+
+/// `from` and `to` (defaults -1d and now), Unix seconds, from ≤ to. Times
+/// before 1970 or after [`LAST_SECOND`] are taken as those ends (nothing
+/// is stored outside them), so `-99999d` means "from the start".
 fn time_range(params: &Params) -> Result<(i64, i64), ApiError> {
     let now_s = (unix_now_ns() / 1_000_000_000) as i64;
     let from = match params.get("from") {
         None => now_s - 86_400,
         Some(v) => parse_time("from", v, now_s)?,
-    };
+    }
+    .clamp(0, LAST_SECOND);
     let to = match params.get("to") {
         None => now_s,
         Some(v) => parse_time("to", v, now_s)?,
-    };
+    }
+    .clamp(0, LAST_SECOND);
     if from > to {
         return Err(ApiError::BadQuery(format!(
             "from ({}) is after to ({})",
@@ -150,10 +158,21 @@ fn time_range(params: &Params) -> Result<(i64, i64), ApiError> {
     Ok((from, to))
 }
 
+/// Unix second `s` as RFC 3339 (`1970-01-01T00:00:00Z` for 0); a second
+/// outside what RFC 3339 can write as its number.
 fn rfc3339_s(s: i64) -> String {
-    rfc3339_ns(u64::try_from(s).unwrap_or(0).saturating_mul(1_000_000_000))
-        .map(|t| t.replace(".000000000Z", "Z"))
-        .unwrap_or_else(|| s.to_string())
+    match time::OffsetDateTime::from_unix_timestamp(s) {
+        Ok(t) if (0..=LAST_SECOND).contains(&s) => format!(
+            "{:04}-{:02}-{:02}T{:02}:{:02}:{:02}Z",
+            t.year(),
+            u8::from(t.month()),
+            t.day(),
+            t.hour(),
+            t.minute(),
+            t.second()
+        ),
+        _ => s.to_string(),
+    }
 }
 
 fn ns_of(s: i64) -> i64 {
@@ -179,13 +198,15 @@ fn count(params: &Params, key: &str, default: usize, max: usize) -> Result<usize
     }
 }
 
-/// `format=json` (default) or `csv`.
+/// `format=json` (default) or `csv`; anything else is a 400 naming the
+/// two (these endpoints draw no image).
 fn json_or_csv(params: &Params) -> Result<Format, ApiError> {
-    match params.format()? {
-        Format::Svg => Err(ApiError::BadQuery(
-            "format=\"svg\" is not offered here (known: json, csv)".into(),
-        )),
-        f => Ok(f),
+    match params.get("format") {
+        None | Some("json") => Ok(Format::Json),
+        Some("csv") => Ok(Format::Csv),
+        Some(other) => Err(ApiError::BadQuery(format!(
+            "format={other:?} is not offered here (known: json, csv)"
+        ))),
     }
 }
 

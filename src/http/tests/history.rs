@@ -171,6 +171,24 @@ async fn times_are_checked_and_named() {
     assert_json_error(&r, StatusCode::BAD_REQUEST, "is after to");
     let r = get(&st, "/api/v1/history/channels/a/waterfall?columns=0").await;
     assert_json_error(&r, StatusCode::BAD_REQUEST, "columns=\"0\"");
+    // These endpoints draw no image: the error names what they offer.
+    for f in ["xml", "svg"] {
+        let r = get(&st, &format!("/api/v1/history/channels/a/trend?format={f}")).await;
+        assert_json_error(&r, StatusCode::BAD_REQUEST, "(known: json, csv)");
+    }
+    // Far past and far future: the ends of what RFC 3339 writes, echoed
+    // as times (the file exists, empty).
+    drop(schema::open_write(&file(&st)).expect("create"));
+    let r = get(
+        &st,
+        "/api/v1/history/channels/a/spectra?from=-99999999d&to=9999-12-31T23:59:59Z",
+    )
+    .await;
+    assert_eq!(r.status, StatusCode::OK, "{}", r.body);
+    let j = r.json();
+    assert_eq!(j["from"], "1970-01-01T00:00:00Z", "{j}");
+    assert_eq!(j["to"], "9999-12-31T23:59:59Z", "{j}");
+    assert_eq!(j["spectra"].as_array().map(Vec::len), Some(0), "{j}");
     let now = 1_800_000_000;
     assert_eq!(
         crate::http::history::parse_time("from", "-7d", now).ok(),
