@@ -115,6 +115,15 @@ export class HistoryTrendPlot {
     }
     if (!Number.isFinite(top)) { top = 1; bottom = 0; }
     for (const l of [s.alert, s.danger]) if (l != null && l > top && l < 3 * top) top = l;
+    // A limit the projection reaches within the time axis is always on the
+    // scale, so the dash-dotted line is seen to meet it.
+    if (s.projection) {
+      for (const l of s.projection.levels) {
+        if (l.cross == null || l.cross > t1 || !Number.isFinite(l.limit)) continue;
+        if (l.limit > top) top = l.limit;
+        if (l.limit < bottom) bottom = l.limit;
+      }
+    }
     for (const l of [s.alert, s.danger]) if (l != null && l < bottom && l > bottom / 3) bottom = l;
     const pad = (top - bottom) * 0.08 || Math.abs(top) * 0.1 || 1;
     top += pad; bottom = Math.max(bottom - pad, Math.min(0, bottom));

@@ -80,7 +80,7 @@ def sub(old, new):
 sub('storage_dir = "../demo-data"', 'storage_dir = "%s"' % data)
 sub('token_file = "demo-token"', 'token_file = "%s"' % token)
 sub("[history]\n", '[history]\nfile = "%s"\n' % file)
-sub("interval_s = 5", "interval_s = 1")
+assert "\ninterval_s = 1\n" in text, "the demo's [history] interval_s is no longer 1"
 sub("spectrum_every_s = 20", "spectrum_every_s = 10")
 print(text)
 PY

@@ -65,7 +65,7 @@ def sub(old, new):
     text = text.replace(old, new, 1)
 sub('storage_dir = "../demo-data"', 'storage_dir = "%s"' % data)
 sub('token_file = "demo-token"', 'token_file = "%s"' % token)
-sub("interval_s = 5", "interval_s = 1")
+assert "\ninterval_s = 1\n" in text, "the demo's [history] interval_s is no longer 1"
 sub("spectrum_every_s = 20", "spectrum_every_s = 10")
 print(text)
 PY
