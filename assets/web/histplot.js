@@ -10,18 +10,10 @@
 //   down (newest at the top), amplitude in dB by colour, with its scale.
 
 import { niceTicks } from "./plot.js";
+import { css, fmt, drawLimits } from "./trend.js";
 
 const PAD = { l: 76, r: 16, t: 14, b: 36 };
 
-function css(name) {
-  return getComputedStyle(document.documentElement).getPropertyValue(name).trim() || "#000";
-}
-
-function fmt(v) {
-  const a = Math.abs(v);
-  if (a !== 0 && (a >= 1e5 || a < 1e-3)) return v.toExponential(1);
-  return Number(v.toPrecision(4)).toString();
-}
 
 // Sizes the canvas to its CSS box (sharp on high-density screens).
 function prepare(c) {
@@ -220,23 +212,7 @@ export class HistoryTrendPlot {
     }
     g.restore();
 
-    for (const [state, v] of [["alert", s.alert], ["danger", s.danger]]) {
-      if (v == null) continue;
-      const text = `${state === "danger" ? "◆ danger" : "▲ alert"} ${fmt(v)}`;
-      if (v > top || v < bottom) {
-        g.fillStyle = ink;
-        g.fillText(`${text} (${v > top ? "above" : "below"} the scale)`, box.x + 4, box.y + (state === "danger" ? 14 : 28));
-        continue;
-      }
-      const y = Math.round(yOf(v)) + 0.5;
-      g.setLineDash(state === "danger" ? [8, 3] : [3, 3]);
-      g.strokeStyle = css(state === "danger" ? "--danger" : "--alert-ink");
-      g.lineWidth = 2;
-      g.beginPath(); g.moveTo(box.x, y); g.lineTo(box.x + box.w, y); g.stroke();
-      g.setLineDash([]); g.lineWidth = 1;
-      g.fillStyle = ink;
-      g.fillText(text, box.x + 4, y - 3);
-    }
+    drawLimits(g, box, s, top, bottom, yOf, ink);
 
     g.fillStyle = ink; g.strokeStyle = ink;
     g.strokeRect(box.x + 0.5, box.y + 0.5, box.w, box.h);
