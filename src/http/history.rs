@@ -161,18 +161,14 @@ fn time_range(params: &Params) -> Result<(i64, i64), ApiError> {
 /// Unix second `s` as RFC 3339 (`1970-01-01T00:00:00Z` for 0); a second
 /// outside what RFC 3339 can write as its number.
 fn rfc3339_s(s: i64) -> String {
-    match time::OffsetDateTime::from_unix_timestamp(s) {
-        Ok(t) if (0..=LAST_SECOND).contains(&s) => format!(
-            "{:04}-{:02}-{:02}T{:02}:{:02}:{:02}Z",
-            t.year(),
-            u8::from(t.month()),
-            t.day(),
-            t.hour(),
-            t.minute(),
-            t.second()
-        ),
-        _ => s.to_string(),
-    }
+    time::OffsetDateTime::from_unix_timestamp(s)
+        .ok()
+        .filter(|_| (0..=LAST_SECOND).contains(&s))
+        .and_then(|t| {
+            t.format(&time::format_description::well_known::Rfc3339)
+                .ok()
+        })
+        .unwrap_or_else(|| s.to_string())
 }
 
 fn ns_of(s: i64) -> i64 {

@@ -38,14 +38,7 @@ cleanup() {
 trap cleanup EXIT
 
 step() { printf '== %s\n' "$*"; }
-fail() {
-    printf 'history_kill: FAIL: %s\n' "$*" >&2
-    if [ -s "$work/bandwatch.log" ]; then
-        printf -- '--- last lines of the daemon log:\n' >&2
-        tail -n 20 "$work/bandwatch.log" >&2
-    fi
-    exit 1
-}
+fail() { fail_with_daemon_log history_kill "$*"; }
 
 for tool in curl python3 timeout; do
     command -v "$tool" >/dev/null 2>&1 || fail "$tool not found"

@@ -1,6 +1,17 @@
 # Helpers the external checks share (sourced, not run: .ci/run runs only
 # tests/external/*.sh).
 
+# fail_with_daemon_log NAME MESSAGE: "NAME: FAIL: MESSAGE" on stderr, the
+# last 20 lines of $work/bandwatch.log when there are any, exit 1.
+fail_with_daemon_log() {
+    printf '%s: FAIL: %s\n' "$1" "$2" >&2
+    if [ -s "$work/bandwatch.log" ]; then
+        printf -- '--- last lines of the daemon log:\n' >&2
+        tail -n 20 "$work/bandwatch.log" >&2
+    fi
+    exit 1
+}
+
 # Sets `bin` to the binary under test: $BANDWATCH_BIN, or a debug build
 # of this checkout (cargo, at most 30 min). Uses the caller's `step` and
 # `fail`, and `root` (the checkout).
